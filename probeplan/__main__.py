@@ -1,0 +1,7 @@
+"""``python -m probeplan``."""
+
+import sys
+
+from probeplan.cli import main
+
+sys.exit(main())
