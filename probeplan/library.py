@@ -40,6 +40,9 @@ __all__ = [
     "user_tissue",
     "user_tissue_names",
     "user_spectra",
+    "user_filters",
+    "user_camera",
+    "user_camera_names",
     "entries",
     "lookup",
     "did_you_mean",
@@ -222,7 +225,7 @@ def _optics_entries() -> list[LibraryEntry]:
     return rows
 
 
-_PROVIDERS: list = []  # filled below once dots and optics are available
+_PROVIDERS = [_dots_entries, _optics_entries]
 
 
 def _user_entries() -> list[LibraryEntry]:
@@ -232,11 +235,44 @@ def _user_entries() -> list[LibraryEntry]:
         entry = _read_toml(folder / "tissues" / f"{name}.toml")
         rows.append(LibraryEntry("tissue", name, str(entry.get("description", "user tissue")),
                                  str(entry.get("source", "user file")), origin=str(folder / "tissues" / f"{name}.toml")))
-    for kind in ("emission", "absorption", "filter"):
+    for kind in ("emission", "absorption"):
         for name, spec in user_spectra(kind).items():
             rows.append(LibraryEntry(f"{kind} spectrum", name, f"user {kind} spectrum, {spec.range_nm[0]:g}-"
                                      f"{spec.range_nm[1]:g} nm", spec.provenance, origin="user library"))
+    for name, filt in user_filters().items():
+        rows.append(LibraryEntry("filter", name, filt.description, str(folder / "filters"), origin="user library"))
+    for name in user_camera_names():
+        cam = user_camera(name)
+        rows.append(LibraryEntry("camera", name, cam.description or "user camera", cam.source, origin="user library"))
     return rows
+
+
+def user_filters() -> dict[str, Any]:
+    """Filters from ``filters/*.csv`` in the user library (percent and OD checked as on the CLI)."""
+    from probeplan.optics import read_filter_csv
+
+    out: dict[str, Any] = {}
+    for path in _user_files("filters", "*.csv") + _user_files("filters", "*.tsv"):
+        out.update(read_filter_csv(path))
+    return out
+
+
+def user_camera_names() -> list[str]:
+    """Names of cameras in the user library folder (``cameras/NAME.toml``)."""
+    return [p.stem for p in _user_files("cameras", "*.toml")]
+
+
+def user_camera(name: str):
+    """A camera from ``cameras/NAME.toml`` in the user library folder."""
+    from probeplan.optics import camera_from_dict
+
+    path = user_library_dir() / "cameras" / f"{name}.toml"
+    if name not in user_camera_names():
+        raise input_error("camera", f"no user camera {name!r} in {path.parent}", "add it there or use a built-in camera")
+    try:
+        return camera_from_dict(name, _read_toml(path), source=str(path))
+    except (InputError, TypeError, KeyError) as exc:
+        raise input_error(str(path), str(exc), "correct the camera file (see probeplan/data/cameras.toml)") from None
 
 
 def entries(kind: str | None = None) -> list[LibraryEntry]:
