@@ -1,0 +1,136 @@
+"""The forward model at depth: signal, backgrounds, SBR/SNR, blur and the escaping spectrum."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+import scipy.constants as const
+from scipy import integrate
+
+from probeplan import dots, optics, transport
+from probeplan.errors import InputError
+from probeplan.fluorescence import (
+    Autofluorescence,
+    depth_at_threshold,
+    depth_profile,
+    disc_escape_fraction,
+    photons_per_s_per_mw,
+    probe_rate_e_per_s,
+)
+from probeplan.tissue import Tissue
+
+
+@pytest.fixture(scope="module")
+def setup():
+    return dict(
+        probe=dots.make_probe("CdTe", 700.0),
+        source=optics.Laser(640.0),
+        emission_filter=optics.parse_filter("700/30"),
+        camera=optics.camera("si-deep-depletion").with_binning(2),
+        lens=optics.Lens(4.0, 0.1),
+    )
+
+
+def _profile(setup, **kw):
+    args = dict(irradiance_mw_per_cm2=10.0, exposure_s=0.01, depth_mm=np.linspace(0.5, 8, 31),
+                target_size_mm=3.0, concentration_uM=0.2, uptake_ratio=5.0, warn=False)
+    args.update(kw)
+    probe = args.pop("probe", setup["probe"])
+    tissue = args.pop("tissue", "soft tissue")
+    emission_filter = args.pop("emission_filter", setup["emission_filter"])
+    return depth_profile(tissue, probe, source=setup["source"], emission_filter=emission_filter,
+                         camera=setup["camera"], lens=setup["lens"], **args)
+
+
+def test_photon_rate_against_scipy_constants():
+    # E = h c / lambda (CODATA, via scipy.constants): photons per second in 1 mW at 800 nm.
+    expected = 1e-3 / (const.h * const.c / 800e-9)
+    assert float(photons_per_s_per_mw(800.0)) == pytest.approx(expected, rel=1e-12)
+
+
+@pytest.mark.parametrize(("radius", "depth", "mu_a", "mu_sp"), [(1.0, 2.0, 0.1, 10.0), (3.0, 5.0, 0.3, 12.0),
+                                                                (0.5, 1.0, 0.05, 20.0)])
+def test_disc_escape_equals_integral_of_farrell_exitance(radius, depth, mu_a, mu_sp):
+    # Closed form against numerical integration (scipy.integrate.quad) of the image-source surface flux
+    # of Farrell, Patterson & Wilson 1992 as implemented in probeplan.transport.
+    def integrand(rho):
+        return 2 * math.pi * rho * float(transport.point_source_exitance_per_mm2(rho, depth, mu_a, mu_sp))
+
+    numeric, _ = integrate.quad(integrand, 0.0, radius, limit=200)
+    assert float(disc_escape_fraction(radius, depth, mu_a, mu_sp)) == pytest.approx(numeric, rel=1e-6)
+
+
+def test_disc_escape_tends_to_total_escape():
+    total = transport.point_source_escape(np.array([1.0, 4.0]), 0.2, 10.0)
+    np.testing.assert_allclose(disc_escape_fraction(np.inf, np.array([1.0, 4.0]), 0.2, 10.0), total, rtol=1e-12)
+
+
+def test_signal_is_linear_in_concentration_and_irradiance(setup):
+    kw = dict(source=setup["source"], emission_filter=setup["emission_filter"], camera=setup["camera"],
+              lens=setup["lens"], depth_mm=[1.0, 3.0])
+    a = probe_rate_e_per_s("soft tissue", setup["probe"], irradiance_mw_per_cm2=10.0, concentration_uM=0.1, **kw)
+    b = probe_rate_e_per_s("soft tissue", setup["probe"], irradiance_mw_per_cm2=20.0, concentration_uM=0.3, **kw)
+    np.testing.assert_allclose(b, 6.0 * a, rtol=1e-12)
+
+
+def test_snr_and_sbr_follow_their_definitions(setup):
+    p = _profile(setup)
+    b = p.background_e
+    np.testing.assert_allclose(p.sbr, (p.signal_e + b) / b)
+    np.testing.assert_allclose(p.contrast, p.signal_e / b)
+    np.testing.assert_allclose(p.snr, p.signal_e / np.sqrt(p.signal_e + b + p.read_noise_e**2))
+    assert np.all(np.diff(p.signal_e) < 0)  # deeper targets are dimmer
+    assert np.all(np.diff(p.blur_fwhm_mm) > 0)  # and blurrier
+
+
+def test_depth_at_threshold_interpolates(setup):
+    p = _profile(setup)
+    d = depth_at_threshold(p, 1.2)
+    i = int(np.nonzero(p.sbr < 1.2)[0][0])
+    assert p.depth_mm[i - 1] <= d <= p.depth_mm[i]
+    assert depth_at_threshold(p, 1.0) == math.inf
+    assert depth_at_threshold(p, 1e6) == 0.0
+
+
+def test_background_scales_with_uptake_ratio_and_autofluorescence_switch(setup):
+    base = _profile(setup, uptake_ratio=5.0)
+    half = _profile(setup, uptake_ratio=10.0)
+    assert half.uptake_background_e == pytest.approx(base.uptake_background_e / 2, rel=1e-9)
+    off = _profile(setup, autofluorescence=Autofluorescence(0.0))
+    assert off.autofluorescence_e == 0.0 and base.autofluorescence_e > 0
+
+
+def test_leakage_follows_blocking_od(setup):
+    # Excitation 640 nm lies far outside a 700/30 band: transmission there is the 10^-OD floor.
+    od6 = _profile(setup, emission_filter=optics.Bandpass(700.0, 30.0, blocking_od=6.0))
+    od4 = _profile(setup, emission_filter=optics.Bandpass(700.0, 30.0, blocking_od=4.0))
+    assert od4.leakage_e / od6.leakage_e == pytest.approx(100.0, rel=1e-3)
+
+
+def test_escaping_spectrum_red_shifts_with_depth(setup):
+    # Haemoglobin absorbs far more at 600 nm than at 660 nm (Prahl's table), so the escaping
+    # spectrum of an orange-red probe moves to longer wavelengths as the target goes deeper.
+    probe = dots.make_probe("CdSe", 630.0, fwhm_nm=40.0)
+    bloody = Tissue("bloody", blood_fraction=0.05, saturation=0.7, water_fraction=0.7, a_per_cm=15.0, b=1.2)
+    p = depth_profile(
+        bloody, probe, source=optics.Laser(532.0), irradiance_mw_per_cm2=10.0, emission_filter=optics.Longpass(560.0),
+        camera=setup["camera"], lens=setup["lens"], exposure_s=0.01, depth_mm=[1.0, 3.0, 6.0], warn=False)
+    assert p.escaped_peak_nm[0] < p.escaped_peak_nm[1] < p.escaped_peak_nm[2]
+
+
+@pytest.mark.parametrize(
+    ("kw", "match"),
+    [
+        ({"depth_mm": [-1.0, 2.0]}, "depth_mm"),
+        ({"depth_mm": [float("nan")]}, "NaN"),
+        ({"uptake_ratio": 0.5}, "uptake_ratio"),
+        ({"exposure_s": 0.0}, "exposure_s"),
+        ({"irradiance_mw_per_cm2": float("nan")}, "irradiance"),
+        ({"tissue": "skn"}, "did you mean 'skin'"),
+    ],
+)
+def test_bad_input_refused(setup, kw, match):
+    with pytest.raises(InputError, match=match):
+        _profile(setup, **kw)
