@@ -30,6 +30,16 @@ __all__ = [
 ]
 
 
+#: Mode of written files before the process umask (as ``open()`` would create them).
+_FILE_MODE = 0o666
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 @contextlib.contextmanager
 def atomic_path(target: str | Path, *, suffix: str | None = None) -> Iterator[Path]:
     """Yield a temporary path beside ``target``; rename it onto ``target`` on success.
@@ -44,6 +54,7 @@ def atomic_path(target: str | Path, *, suffix: str | None = None) -> Iterator[Pa
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=suffix or ".part", dir=folder)
     os.close(fd)
     tmp_path = Path(tmp)
+    os.chmod(tmp_path, _FILE_MODE & ~_umask())  # mkstemp makes 0600; outputs get the usual file mode
     try:
         yield tmp_path
         os.replace(tmp_path, target)

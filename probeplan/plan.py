@@ -153,6 +153,7 @@ class Plan:
     statistics: dict[str, Any] | None
     path: Path | None = None
     text: str = field(default="", repr=False)
+    source: str = field(default="", repr=False)  #: name used in messages (the file path, or the text's source)
 
     @property
     def folder(self) -> Path:
@@ -334,7 +335,7 @@ def parse_plan_text(text: str, *, source: str = "<plan>", path: Path | None = No
     """Parse and validate plan TOML text (see the module docs for the schema)."""
     data = parse_toml_text(text, source=source)
     out = _validate(data, text, source)
-    return Plan(path=path, text=text, **out)
+    return Plan(path=path, text=text, source=source, **out)
 
 
 def load_plan(path: str | Path) -> Plan:
@@ -347,5 +348,5 @@ def load_plan(path: str | Path) -> Plan:
     """
     data, text = load_toml(path)
     out = _validate(data, text, str(path))
-    return Plan(path=Path(path), text=text, **out)
+    return Plan(path=Path(path), text=text, source=str(path), **out)
 

@@ -24,7 +24,8 @@ from probeplan import RESEARCH_USE_CAUTION, __version__
 from probeplan.errors import input_error
 from probeplan.outputs import write_csv_atomic, write_json_atomic, write_text_atomic
 
-__all__ = ["Report", "Table", "write_report", "HEAVY_METAL_CAUTION", "LASER_CAUTION", "figure_png_bytes"]
+__all__ = ["Report", "Table", "write_report", "HEAVY_METAL_CAUTION", "LASER_CAUTION", "figure_png_bytes", "plan_report",
+           "report_pdf_bytes"]
 
 #: Shown whenever a plan uses a Cd- or Pb-containing probe.
 HEAVY_METAL_CAUTION = (
@@ -91,6 +92,8 @@ def figure_png_bytes(fig, *, dpi: int = 110) -> bytes:
 
 
 def _cell(value: Any) -> str:
+    if value is None:
+        return "–"
     if isinstance(value, bool):
         return "yes" if value else "no"
     if isinstance(value, float):
@@ -193,3 +196,122 @@ def write_report(report: Report, out_dir: str | Path) -> dict[str, Path]:
     })
     written["html"] = write_text_atomic(out / "report.html", render_html(report))
     return written
+
+
+# ---------------------------------------------------------------------------
+# The study plan report
+# ---------------------------------------------------------------------------
+
+#: Columns of the rule table, in order.
+_CHECK_COLUMNS = ["rule", "description", "value", "comparison", "limit", "unit", "passed", "source", "example_only"]
+
+
+def plan_report(evaluation) -> Report:
+    """The report of an evaluated study plan (:func:`probeplan.evaluate.evaluate_plan`).
+
+    Cautions (research use only, who decides, laser, heavy metals when a Cd- or
+    Pb-containing probe is used), a summary with the failed rules and the
+    predicted problems, the rule table, every evaluation table, the SBR/SNR/blur
+    against depth figure (target depth marked), the spectra/filters/crosstalk
+    figure, and the model assumptions.  Figures are rendered now, so building
+    the report does all the work before anything is written.
+    """
+    from probeplan.fluorescence import DEFAULT_SBR_THRESHOLD, emission_grid_nm
+    from probeplan.plots import channels_figure, depth_figure
+
+    ev = evaluation
+    plan = ev.plan
+    study = plan.study
+    subtitle = " · ".join(x for x in (study.get("protocol_id", ""), f"plan {plan.path}" if plan.path else "",
+                                      "rules: " + (", ".join(ev.rules.files) or "probeplan defaults")) if x)
+    report = Report(title=study["title"], subtitle=subtitle)
+    if plan.acquisition["source"] == "laser":
+        report.cautions.append(LASER_CAUTION)
+    else:
+        report.cautions.append("Bright LED excitation can also heat skin and harm eyes; the skin limits here are the "
+                               "laser maximum permissible exposure rules, applied as a planning figure.")
+    if ev.heavy_metals:
+        report.cautions.append(HEAVY_METAL_CAUTION.format(metals=" and ".join(
+            {"Cd": "cadmium", "Pb": "lead"}.get(m, m) for m in ev.heavy_metals)))
+    if any(c.example_only for c in ev.checks):
+        report.cautions.append("Some limits are probeplan's example values (marked example only): the institution "
+                               "must set its own in a rules file (--rules).")
+    n_fail = len(ev.failed)
+    if n_fail:
+        report.summary.append(f"{n_fail} of {len(ev.checks)} rule checks FAIL: "
+                              + "; ".join(f"{c.rule_id} ({c.description}: {c.value:.4g} {c.comparison} "
+                                          f"{c.limit:.4g} {c.unit} does not hold)" for c in ev.failed))
+    else:
+        report.summary.append(f"All {len(ev.checks)} rule checks pass.")
+    if study.get("description"):
+        report.summary.append(study["description"])
+    report.summary += [f"Predicted problem: {w}" for w in ev.warnings]
+    rows = []
+    for c in ev.checks:
+        row = c.as_row()
+        if c.example_only and "example only" not in c.source:
+            row["source"] = f"{row['source']} (example only)"
+        rows.append(row)
+    report.add_table("checks", "Rules checked", rows, _CHECK_COLUMNS,
+                     note="Each value is compared with the limit as shown; 'example only' marks a probeplan example "
+                          "value the institution has not set.")
+    for table in ev.tables:
+        report.add_table(table.name, table.title, table.rows, table.columns, note=table.note)
+    depth = plan.target["depth_mm"]
+    fig = depth_figure(ev.profiles, sbr_threshold=DEFAULT_SBR_THRESHOLD, target_depth_mm=depth)
+    report.add_figure(f"SBR, SNR and blur against target depth in {plan.target['tissue']}, each probe in its own "
+                      f"channel; dotted line: the target depth ({depth:g} mm); dashed: SBR "
+                      f"{DEFAULT_SBR_THRESHOLD:g} (common practice, not a standard).", fig)
+    rep = ev.channel_report
+    model = ev.model
+    fig = channels_figure(emission_grid_nm(model.probes), model.probes, model.channels, rep.crosstalk[0],
+                          rep.probe_names, rep.channel_names, depth_mm=depth)
+    report.add_figure("Emission spectra with the emission filter bands and the excitation line (left); crosstalk "
+                      f"at the target depth ({depth:g} mm) (right).", fig)
+    report.assumptions = list(ev.assumptions)
+    return report
+
+
+def report_pdf_bytes(report: Report) -> bytes:
+    """The report as a PDF (matplotlib): cautions and summary, each table as text, each figure on its own page."""
+    import textwrap
+
+    import matplotlib.image as mpimg
+    from matplotlib.backends.backend_pdf import PdfPages
+    from matplotlib.figure import Figure
+
+    from probeplan.outputs import table_to_csv_text
+
+    buf = io.BytesIO()
+    width = 110
+
+    def text_page(pdf, lines: list[str]) -> None:
+        for start in range(0, max(len(lines), 1), 60):
+            fig = Figure(figsize=(8.27, 11.69))
+            fig.text(0.05, 0.97, "\n".join(lines[start:start + 60]), va="top", ha="left", family="monospace",
+                     fontsize=6.5)
+            pdf.savefig(fig)
+
+    with PdfPages(buf) as pdf:
+        lines = [report.title, report.subtitle, ""]
+        for text in [RESEARCH_USE_CAUTION, *report.cautions, "", *report.summary]:
+            lines += textwrap.wrap(text, width) or [""]
+        text_page(pdf, lines)
+        for table in report.tables:
+            body = [table.title, *textwrap.wrap(table.note, width), ""]
+            for row in table_to_csv_text(table.rows, table.cols()).splitlines():
+                body += textwrap.wrap(row, width) or [""]
+            text_page(pdf, body)
+        for caption, png in report.figures:
+            fig = Figure(figsize=(11.69, 8.27))
+            ax = fig.add_axes((0.02, 0.12, 0.96, 0.86))
+            ax.imshow(mpimg.imread(io.BytesIO(png), format="png"))
+            ax.set_axis_off()
+            fig.text(0.03, 0.08, "\n".join(textwrap.wrap(caption, 150)), va="top", fontsize=8)
+            pdf.savefig(fig)
+        lines = ["Model assumptions", ""]
+        for a in report.assumptions:
+            lines += textwrap.wrap("- " + a, width)
+        lines += ["", f"Written by probeplan {__version__}."]
+        text_page(pdf, lines)
+    return buf.getvalue()
