@@ -1,0 +1,163 @@
+"""Batched exact NNLS checked against scipy.optimize.nnls (the reference implementation named in
+REFERENCES.md "Unmixing"; Lawson & Hanson 1974) to 1e-6 relative."""
+
+import numpy as np
+import pytest
+import scipy.optimize
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from probeplan.errors import InputError
+from probeplan.nnls import (
+    STATUS_CONSTRAINED,
+    STATUS_INTERIOR,
+    STATUS_NAN,
+    STATUS_SATURATED,
+    lstsq_pixels,
+    nnls_pixels,
+)
+
+ENGINES = ["numba", "numpy"]
+
+
+def _scipy(M, Y):
+    # outside check: scipy.optimize.nnls, one pixel at a time
+    return np.stack([scipy.optimize.nnls(M, Y[:, i].astype(np.float64))[0] for i in range(Y.shape[1])], axis=1)
+
+
+def _assert_close(x, ref, rel=1e-6):
+    scale = np.maximum(np.abs(ref).max(axis=0), 1e-300)
+    err = np.abs(np.asarray(x, np.float64) - ref).max(axis=0) / scale
+    assert err.max() <= rel, err.max()
+
+
+def _gaussian_references(C, K, rng):
+    # realistic: Gaussian emission bands sampled by C channels (common practice, no source)
+    centres = np.linspace(0.15, 0.85, K) + rng.normal(0, 0.02, K)
+    ch = np.linspace(0, 1, C)[:, None]
+    M = np.exp(-0.5 * ((ch - centres) / 0.12) ** 2) + 0.01
+    return M / M.sum(axis=0)
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+@pytest.mark.parametrize(("C", "K"), [(3, 1), (4, 2), (8, 4), (16, 7), (6, 6), (12, 10)])
+def test_random_matches_scipy(engine, C, K):
+    rng = np.random.default_rng(C * 100 + K)
+    M = rng.random((C, K))
+    X = rng.random((K, 600)) * (rng.random((K, 600)) > 0.4)  # many exactly-zero abundances
+    Y = M @ X + rng.normal(0, 0.05, (C, 600))
+    x, status = nnls_pixels(M, Y, engine=engine)
+    _assert_close(x, _scipy(M, Y))
+    assert (x >= 0).all()
+    assert set(np.unique(status)) <= {STATUS_INTERIOR, STATUS_CONSTRAINED}
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_realistic_poisson_matches_scipy(engine):
+    rng = np.random.default_rng(5)
+    M = _gaussian_references(8, 4, rng)
+    X = rng.gamma(1.0, 200.0, (4, 2000)) * (rng.random((4, 2000)) > 0.3)
+    Y = rng.poisson(M @ X + 5.0).astype(np.uint16)
+    x, _ = nnls_pixels(M, Y, engine=engine)
+    _assert_close(x, _scipy(M, Y))
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_noiseless_exact_zeros_and_ties(engine):
+    # exactly-zero abundances without noise: the unconstrained solution is 0 up to rounding
+    M = np.array([[1.0, 0.0, 0.5], [0.0, 1.0, 0.5], [1.0, 1.0, 0.0], [0.5, 0.5, 1.0]])
+    X = np.array([[1.0, 0.0, 0.0, 2.0, 0.0], [0.0, 0.0, 3.0, 2.0, 0.0], [0.0, 1.0, 0.0, 0.0, 0.0]])
+    Y = M @ X
+    # ties: mirror-symmetric columns and symmetric data give equal gradients for two components
+    Ms = np.array([[1.0, 0.2], [0.2, 1.0], [0.6, 0.6]])
+    Ys = np.array([[1.0, -1.0, 0.0], [1.0, -1.0, 0.0], [1.0, -1.0, 0.0]])
+    for A, B in ((M, Y), (Ms, Ys)):
+        x, _ = nnls_pixels(A, B, engine=engine)
+        ref = _scipy(A, B)
+        np.testing.assert_allclose(x, ref, rtol=1e-6, atol=1e-12 * max(1.0, np.abs(ref).max()))
+    x, _ = nnls_pixels(M, Y, engine=engine)
+    np.testing.assert_allclose(x, X, atol=1e-12)
+
+
+def test_large_k_active_set_path_matches_scipy():
+    rng = np.random.default_rng(11)
+    M = rng.random((20, 14))
+    X = rng.random((14, 300)) * (rng.random((14, 300)) > 0.5)
+    Y = M @ X + rng.normal(0, 0.1, (20, 300))
+    x, _ = nnls_pixels(M, Y, engine="numba")
+    _assert_close(x, _scipy(M, Y))
+    with pytest.raises(InputError, match="engine"):
+        nnls_pixels(M, Y, engine="numpy")
+
+
+def test_float32_input_float64_arithmetic():
+    rng = np.random.default_rng(2)
+    M = _gaussian_references(8, 4, rng)
+    Y = (M @ rng.random((4, 500)) * 1000 + rng.normal(0, 5, (8, 500))).astype(np.float32)
+    x, _ = nnls_pixels(M, Y)
+    assert x.dtype == np.float32
+    x64, _ = nnls_pixels(M, Y.astype(np.float64))
+    assert x64.dtype == np.float64
+    _assert_close(x64, _scipy(M, Y))  # float64 arithmetic on the float32 values
+    _assert_close(x, _scipy(M, Y), rel=1e-6)
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_nan_and_saturation_status(engine):
+    M = np.array([[1.0, 0.2], [0.3, 1.0], [0.5, 0.5]])
+    Y = np.array([[1.0, np.nan, 5.0, 1.0], [1.0, 1.0, 1.0, -3.0], [1.0, 1.0, 1.0, 1.0]])
+    x, status = nnls_pixels(M, Y, saturation=4.0, engine=engine)
+    assert status.tolist()[:3] == [STATUS_INTERIOR, STATUS_NAN, STATUS_SATURATED]
+    assert status[3] == STATUS_CONSTRAINED
+    assert np.isnan(x[:, 1:3]).all() and np.isfinite(x[:, [0, 3]]).all()
+
+
+def test_kkt_conditions_hold():
+    # Karush-Kuhn-Tucker conditions of NNLS (Lawson & Hanson 1974, ch. 23)
+    rng = np.random.default_rng(3)
+    M = rng.random((10, 5))
+    Y = rng.normal(0, 1, (10, 1000))
+    x, _ = nnls_pixels(M, Y)
+    w = M.T @ (Y - M @ x)
+    scale = np.abs(M.T @ Y).max()
+    assert (w[x > 0] == pytest.approx(0, abs=1e-9 * scale))
+    assert (w[x == 0] <= 1e-9 * scale).all()
+
+
+def test_lstsq_matches_numpy_lstsq():
+    # outside check: numpy.linalg.lstsq
+    rng = np.random.default_rng(4)
+    M = rng.random((6, 3))
+    Y = rng.normal(0, 1, (6, 200))
+    x, status = lstsq_pixels(M, Y)
+    np.testing.assert_allclose(x, np.linalg.lstsq(M, Y, rcond=None)[0], rtol=1e-10, atol=1e-12)
+    assert (status == STATUS_INTERIOR).all()
+
+
+def test_shape_errors():
+    with pytest.raises(InputError, match="data"):
+        nnls_pixels(np.ones((3, 2)), np.ones((4, 5)))
+    with pytest.raises(InputError, match="engine"):
+        nnls_pixels(np.ones((3, 2)), np.ones((3, 5)), engine="gpu")
+    with pytest.raises(TypeError):
+        nnls_pixels(np.ones((3, 2)), np.ones((3, 5), dtype=complex))
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    st.integers(1, 5).flatmap(
+        lambda k: st.tuples(
+            st.just(k),
+            st.integers(k, 8),
+            st.integers(0, 2**31 - 1),
+        )
+    )
+)
+def test_property_matches_scipy(params):
+    K, C, seed = params
+    rng = np.random.default_rng(seed)
+    M = rng.random((C, K)) + 0.05 * np.eye(C, K)
+    Y = rng.normal(0, 1, (C, 20)) * 10
+    for engine in ENGINES:
+        x, _ = nnls_pixels(M, Y, engine=engine)
+        _assert_close(x, _scipy(M, Y))
