@@ -1,0 +1,64 @@
+"""The demo study: its files come from the seeded generator, and the whole job recovers the ground truth."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from probeplan.cli import main
+from probeplan.demo import DEMO_FILES, demo_folder, generate_demo_files, run_demo
+from probeplan.io import read_stack
+from probeplan.references import read_references_csv
+
+
+def test_shipped_demo_files_are_the_generator_output(tmp_path):
+    generate_demo_files(tmp_path)
+    folder = demo_folder()
+    for name in DEMO_FILES:
+        if name.endswith(".csv"):
+            a = read_references_csv(folder / name, normalise=None)
+            b = read_references_csv(tmp_path / name, normalise=None)
+            np.testing.assert_allclose(a.matrix, b.matrix, rtol=1e-12)
+            assert a.component_names == b.component_names
+        else:
+            np.testing.assert_array_equal(read_stack(folder / name)[0], read_stack(tmp_path / name)[0], err_msg=name)
+
+
+@pytest.fixture(scope="module")
+def demo_result(tmp_path_factory):
+    return run_demo(tmp_path_factory.mktemp("demo") / "out")
+
+
+def test_demo_recovers_ground_truth_within_predicted_uncertainty(demo_result):
+    # Gaussian statistics: about 95.4 % of estimates lie within ±2 standard errors and 68.3 % within ±1
+    # (common practice); the Poisson counts here are large enough for the normal approximation.
+    for row in demo_result.summary["recovery"]:
+        assert 0.93 <= row["within_2_sigma"] <= 0.975, row
+        assert 0.64 <= row["within_1_sigma"] <= 0.72, row
+
+
+def test_demo_writes_report_and_passes_its_rules(demo_result):
+    assert demo_result.rules_passed
+    html = demo_result.report.read_text()
+    assert "For research use only" in html and "cadmium" in html
+    for name in ("roi_statistics.csv", "ground_truth.csv", "unmix_qc.csv", "checks.csv", "report.json"):
+        assert (demo_result.report.parent / name).is_file(), name
+    assert (demo_result.out_dir / "unmix" / "abundance.ome.tif").is_file()
+
+
+def test_demo_roi_tbr_finds_the_targeted_probe(demo_result):
+    import csv
+
+    rows = list(csv.DictReader(open(demo_result.report.parent / "roi_statistics.csv")))
+    tbr = {(r["roi"], r["component"]): float(r["tbr"]) for r in rows}
+    # The scene puts probe A in the tumour and probe B in the node at the target concentration,
+    # 4x the background uptake (the plan's uptake ratio).
+    assert tbr[("tumour", "probe A (700)")] == pytest.approx(4.0, rel=0.1)
+    assert tbr[("node", "probe B (780)")] == pytest.approx(4.0, rel=0.1)
+
+
+def test_demo_command(tmp_path, capsys):
+    assert main(["demo", "--out", str(tmp_path / "d")]) == 0
+    out = capsys.readouterr().out
+    assert "report:" in out and str(tmp_path / "d") in out
+    assert main(["demo", "--out", str(tmp_path / "d" / "report" / "report.html")]) == 2
