@@ -44,6 +44,7 @@ __all__ = [
     "condition_number",
     "noise_amplification",
     "unmixed_snr",
+    "reference_spectra",
     "SEPARABLE_CONDITION_LIMIT",
 ]
 
@@ -185,6 +186,41 @@ def response_matrix(
                 target_size_mm=target_size_mm, concentration_uM=1.0,
             )
     return out
+
+
+def reference_spectra(
+    tissue: str | Tissue,
+    probes,
+    channels,
+    *,
+    irradiance_mw_per_cm2: float,
+    depth_mm: float,
+    target_size_mm: float = 2.0,
+    gain_e_per_count: float = 1.0,
+):
+    """Reference spectra predicted by the channel model at one depth, for unmixing.
+
+    Entry (c, k) is the camera counts per µM of probe k in channel c in that
+    channel's exposure (1 s when unset): the response matrix × exposure ÷ gain.
+    Unmixing with these references (not normalised) gives abundances in µM.
+
+    Returns
+    -------
+    probeplan.references.ReferenceSpectra
+    """
+    from probeplan.references import references_from_matrix
+
+    if not gain_e_per_count > 0:
+        raise input_error("gain_e_per_count", f"got {gain_e_per_count!r}", "give the camera gain in e-/count (> 0)")
+    resp = response_matrix(tissue, probes, channels, irradiance_mw_per_cm2=irradiance_mw_per_cm2,
+                           depth_mm=[float(depth_mm)], target_size_mm=target_size_mm)[0]
+    exposure = np.array([float(getattr(ch, "exposure_s", None) or 1.0) for ch in channels])
+    return references_from_matrix(
+        resp * exposure[:, None] / gain_e_per_count,
+        [str(getattr(p, "name", f"probe {i + 1}")) for i, p in enumerate(probes)],
+        [str(getattr(ch, "name", f"channel {i + 1}")) for i, ch in enumerate(channels)],
+        normalise=None,
+    )
 
 
 @dataclass

@@ -55,7 +55,7 @@ from typing import Any
 
 import numpy as np
 
-from probeplan.errors import InputError, ProbeplanWarning, input_error
+from probeplan.errors import AssumptionWarning, InputError, ProbeplanWarning, input_error
 from probeplan.plan import Plan
 from probeplan.rules import RuleCheck, Rules, check_value, default_rules
 from probeplan.tomlsource import format_path, line_of
@@ -66,6 +66,7 @@ __all__ = [
     "PlanModel",
     "plan_model",
     "evaluate_plan",
+    "plan_references",
     "on_time_with_overhead_s",
     "SCHEDULE_NOTES",
     "S_PER_MIN",
@@ -320,6 +321,22 @@ def plan_model(plan: Plan, rules: Rules | None = None) -> PlanModel:
 # ---------------------------------------------------------------------------
 # Evaluation
 # ---------------------------------------------------------------------------
+
+
+def plan_references(plan: Plan, rules: Rules | None = None, *, depth_mm: float | None = None):
+    """Reference spectra of a plan's probes in its channels, predicted at the target depth (or ``depth_mm``).
+
+    Counts per µM in each channel's exposure (gain 1 e⁻/count); see
+    :func:`probeplan.channels.reference_spectra`.
+    """
+    from probeplan.channels import reference_spectra
+
+    m = plan_model(plan, rules)
+    depth = plan.target["depth_mm"] if depth_mm is None else depth_mm
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", AssumptionWarning)
+        return reference_spectra(m.tissue, m.probes, m.channels, irradiance_mw_per_cm2=m.irradiance_mw_per_cm2,
+                                 depth_mm=depth, target_size_mm=plan.target["size_mm"])
 
 
 def evaluate_plan(plan: Plan, rules: Rules | None = None) -> Evaluation:

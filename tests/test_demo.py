@@ -62,3 +62,26 @@ def test_demo_command(tmp_path, capsys):
     out = capsys.readouterr().out
     assert "report:" in out and str(tmp_path / "d") in out
     assert main(["demo", "--out", str(tmp_path / "d" / "report" / "report.html")]) == 2
+
+
+def test_references_from_the_channel_model_match_the_demo_references():
+    # The demo's reference CSV was written from the channel model; predicting the references from the
+    # plan (probeplan unmix --references-from-plan) must give the same probe columns.
+    from probeplan.evaluate import plan_references
+    from probeplan.plan import load_plan
+
+    predicted = plan_references(load_plan(demo_folder() / "plan.toml"))
+    shipped = read_references_csv(demo_folder() / "references.csv", normalise=None)
+    k = len(predicted.component_names)
+    assert predicted.component_names == shipped.component_names[:k]
+    assert predicted.channel_names == shipped.channel_names
+    np.testing.assert_allclose(predicted.matrix, shipped.matrix[:, :k], rtol=1e-9)
+
+
+def test_unmix_command_with_references_from_plan(tmp_path, capsys):
+    folder = demo_folder()
+    out = tmp_path / "a.ome.tif"
+    assert main(["unmix", str(folder / "stack.tif"), "--references-from-plan", str(folder / "plan.toml"),
+                 "--dark", str(folder / "dark.tif"), "--out", str(out)]) == 0
+    abundance, _ = read_stack(out)
+    assert abundance.shape == (3, 128, 128)

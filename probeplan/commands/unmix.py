@@ -15,7 +15,10 @@ _STACK_SUFFIXES = (".tif", ".tiff")
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("stack", help="TIFF/OME-TIFF stack (C,Y,X), (C,Z,Y,X), (T,C,Y,X), or a folder of stacks")
-    parser.add_argument("--references", required=True, help="reference spectra CSV: channel,<component>,...")
+    refs = parser.add_mutually_exclusive_group(required=True)
+    refs.add_argument("--references", help="reference spectra CSV: channel,<component>,...")
+    refs.add_argument("--references-from-plan", metavar="PLAN",
+                      help="predict the reference spectra from a study plan's probes and channels at its target depth")
     parser.add_argument("--out", required=True, help="abundance OME-TIFF to write (a folder when STACK is a folder)")
     parser.add_argument("--method", choices=("nnls", "ls", "wls"), default="nnls",
                         help="nnls: exact non-negative LS (default); ls: unconstrained; wls: Poisson-weighted LS")
@@ -106,7 +109,14 @@ def run(args: argparse.Namespace) -> int:
 
     stack = Path(args.stack)
     out = Path(args.out)
-    refs = read_references_csv(args.references)
+    if args.references_from_plan:
+        from probeplan.evaluate import plan_references
+        from probeplan.plan import load_plan
+
+        refs = plan_references(load_plan(args.references_from_plan))
+        args.references = args.references_from_plan
+    else:
+        refs = read_references_csv(args.references)
     rect_rois = [r for r in args.roi if not r.lower().endswith(_STACK_SUFFIXES)]
     label_files = [r for r in args.roi if r.lower().endswith(_STACK_SUFFIXES)]
     if len(label_files) > 1:
