@@ -98,7 +98,8 @@ SCHEDULE_NOTES = (
     "on the same skin site (positions may overlap under a broad spot); sessions are hours apart and are checked "
     "one at a time.",
     "Cumulative heavy-metal dose per animal = sum of the doses of every Cd- or Pb-containing probe (nmol of dots per kg).",
-    "Probe k is read in channel k (the plan's order) for its SBR, SNR and blur; the channel model uses every channel.",
+    "Each probe's SBR, SNR and blur are read in its own channel (where it responds most at the target depth); "
+    "the channel model uses every channel.",
 )
 
 
@@ -617,21 +618,23 @@ def _imaging(plan: Plan, model: PlanModel) -> dict[str, Any]:
                   lens=model.lens, target_size_mm=tgt["size_mm"], concentration_uM=tgt["concentration_uM"],
                   uptake_ratio=tgt["uptake_ratio"])
     profiles, notes, problems = [], [], []
-    for k, probe in enumerate(model.probes):
-        ch = model.channels[k]
-        with _located(plan, ("probes", k)):
-            profiles.append(depth_profile(model.tissue, probe, emission_filter=ch.emission_filter,
-                                          exposure_s=ch.exposure_s, depth_mm=depth, **common))
     with _located(plan, ("acquisition", "channels")):
         report = channel_report(model.tissue, model.probes, model.channels, depth_mm=[tgt["depth_mm"]],
                                 irradiance_mw_per_cm2=model.irradiance_mw_per_cm2, target_size_mm=tgt["size_mm"],
                                 concentration_uM=tgt["concentration_uM"], uptake_ratio=tgt["uptake_ratio"])
+    # each probe is read in its own channel: the one where it responds most at the target depth
+    own = [int(np.argmax(report.response_e_per_s_per_uM[0, :, k])) for k in range(len(model.probes))]
+    for k, probe in enumerate(model.probes):
+        ch = model.channels[own[k]]
+        with _located(plan, ("probes", k)):
+            profiles.append(depth_profile(model.tissue, probe, emission_filter=ch.emission_filter,
+                                          exposure_s=ch.exposure_s, depth_mm=depth, **common))
     rows = []
     for k, prof in enumerate(profiles):
-        ch = model.channels[k]
+        ch = model.channels[own[k]]
         rows.append({
             "probe": prof.probe, "material": model.probes[k].material, "channel": ch.name,
-            "filter": plan.acquisition["channels"][k]["filter"], "exposure_s": ch.exposure_s,
+            "filter": plan.acquisition["channels"][own[k]]["filter"], "exposure_s": ch.exposure_s,
             "depth_mm": float(depth[at]), "signal_e": float(prof.signal_e[at]), "background_e": prof.background_e,
             "uptake_background_e": prof.uptake_background_e, "autofluorescence_e": prof.autofluorescence_e,
             "leakage_e": prof.leakage_e, "dark_e": prof.dark_e, "sbr": float(prof.sbr[at]),
@@ -671,7 +674,7 @@ def _imaging(plan: Plan, model: PlanModel) -> dict[str, Any]:
     notes += report.notes
     imaging = EvaluationTable(
         "imaging", f"Predicted imaging at the target depth ({tgt['depth_mm']:g} mm, {plan.target['tissue']})", rows,
-        note=f"Per binned pixel per exposure; probe k read in channel k. depth_at_sbr_threshold_mm: where SBR falls below "
+        note=f"Per binned pixel per exposure; each probe read in its own (brightest) channel. depth_at_sbr_threshold_mm: where SBR falls below "
              f"{DEFAULT_SBR_THRESHOLD:g} (empty: not within the profile). SBR = (S + B) / B; SNR = S / sqrt(S + B + "
              f"read noise^2). Unmixing condition number {cond:.3g} (separable below {SEPARABLE_CONDITION_LIMIT:g}).")
     channels = EvaluationTable("channels", "Channels: crosstalk and pixel filling at the target depth", ch_rows,

@@ -21,7 +21,7 @@ def demo_text() -> str:
 def test_demo_plan_parses_with_defaults():
     plan = load_plan(DEMO)
     assert plan.animals["species"] == "mouse"
-    assert len(plan.probes) == 3 and len(plan.acquisition["channels"]) == 3
+    assert len(plan.probes) == 3 and len(plan.acquisition["channels"]) == 4
     assert plan.probes[0]["quantum_yield"] is None  # optional, filled from the material later
     assert plan.analysis["method"] == "nnls"
     assert plan.resolve("stack.tif") == DEMO.parent / "stack.tif"
@@ -83,7 +83,7 @@ def test_bad_plans_refused(old, new, match):
 
 def test_fewer_channels_than_probes_refused():
     text = demo_text()
-    cut = text.index('[[acquisition.channels]]\nname = "880"')
+    cut = text.index('[[acquisition.channels]]\nname = "780"')  # keep 2 of the 4 channels for 3 probes
     end = text.index("[analysis]")
     with pytest.raises(InputError, match="at least as many channels as probes"):
         parse_plan_text(text[:cut] + text[end:], source="plan.toml")
