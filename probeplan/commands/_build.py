@@ -13,7 +13,7 @@ from typing import Any
 
 from probeplan.errors import input_error
 
-__all__ = ["add_model_options", "probes_from_args", "parse_probe", "make_filter", "make_camera", "make_source",
+__all__ = ["add_model_options", "add_optics_options", "add_target_options", "probes_from_args", "parse_probe", "make_filter", "make_camera", "make_source",
            "make_lens", "tissue_from_args", "channels_from_args"]
 
 
@@ -35,16 +35,25 @@ def add_model_options(parser: argparse.ArgumentParser, *, probes_required: bool 
     g.add_argument("--filter", action="append", metavar="FILTER",
                    help="emission filter, e.g. 700/30 or 'LP 1000'; repeat, one per channel")
     g.add_argument("--camera", default="si-deep-depletion", help="camera name (default si-deep-depletion)")
-    g.add_argument("--binning", type=int, default=1, help="pixels binned per side (default 1)")
-    g.add_argument("--f-number", type=float, default=2.0, help="lens f-number (default 2)")
-    g.add_argument("--magnification", type=float, default=0.1, help="lens magnification (default 0.1)")
-    g.add_argument("--exposure-s", type=float, default=0.1, help="exposure per channel in s (default 0.1)")
-    g = parser.add_argument_group("target")
-    g.add_argument("--size-mm", type=float, default=2.0, help="target inclusion diameter in mm (default 2)")
-    g.add_argument("--concentration-uM", type=float, default=0.1, help="probe concentration in the target, µM")
-    g.add_argument("--uptake-ratio", type=float, default=5.0, help="target-to-background uptake ratio (default 5)")
-    g.add_argument("--af-yield", type=float, default=None,
-                   help="autofluorescence yield (cm^-1 at 650 nm excitation; an assumption; 0 switches it off)")
+    add_optics_options(g)
+    add_target_options(parser.add_argument_group("target"))
+
+
+def add_optics_options(group) -> None:
+    """Binning, lens and exposure options (shared by depth, channels and design)."""
+    group.add_argument("--binning", type=int, default=1, help="pixels binned per side (default 1)")
+    group.add_argument("--f-number", type=float, default=2.0, help="lens f-number (default 2)")
+    group.add_argument("--magnification", type=float, default=0.1, help="lens magnification (default 0.1)")
+    group.add_argument("--exposure-s", type=float, default=0.1, help="exposure per channel in s (default 0.1)")
+
+
+def add_target_options(group) -> None:
+    """Target inclusion, uptake and autofluorescence options (shared by depth, channels and design)."""
+    group.add_argument("--size-mm", type=float, default=2.0, help="target inclusion diameter in mm (default 2)")
+    group.add_argument("--concentration-uM", type=float, default=0.1, help="probe concentration in the target, µM")
+    group.add_argument("--uptake-ratio", type=float, default=5.0, help="target-to-background uptake ratio (default 5)")
+    group.add_argument("--af-yield", type=float, default=None,
+                       help="autofluorescence yield (cm^-1 at 650 nm excitation; an assumption; 0 switches it off)")
 
 
 def parse_probe(spec: str, extinction: float | None = None):
