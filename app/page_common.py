@@ -1,0 +1,159 @@
+"""Shared pieces of the probeplan page: session files, error display, cached model runs.
+
+Nothing here computes science: every number comes from a probeplan library call.
+The cached functions take only plain hashable values (strings, numbers, tuples)
+so that ``st.cache_data`` can key on them; each returns its result together with
+the notes and warnings the library gave, so that a cached answer shows the same
+notes as a fresh one.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import math
+import re
+import shutil
+import tempfile
+import warnings
+import weakref
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import streamlit as st
+
+from probeplan.errors import InputError, ProbeplanWarning
+
+__all__ = [
+    "REPO_ROOT",
+    "DEMO_DIR",
+    "FIGURE_DPI",
+    "session_folder",
+    "safe_name",
+    "save_upload",
+    "guard",
+    "captured_warnings",
+    "show_notes",
+    "fmt",
+    "ProbeSpec",
+]
+
+#: The repository root (the page lives in ``<root>/app``).
+REPO_ROOT = Path(__file__).resolve().parents[1]
+#: The invented demo study shipped with the repository.
+DEMO_DIR = REPO_ROOT / "demo_tissue"
+#: Resolution of the figures shown on the page (dots per inch).
+FIGURE_DPI = 100
+
+_SAFE_CHARS = re.compile(r"[^A-Za-z0-9._-]+")
+_MAX_NAME = 80
+
+
+class _SessionFolder:
+    """A private temporary folder removed when the browser session ends (or the server exits).
+
+    The object lives in the session state; when the session is dropped the object is
+    garbage-collected and :func:`weakref.finalize` removes the folder.  ``finalize``
+    also runs at interpreter exit.
+    """
+
+    def __init__(self) -> None:
+        self.path = Path(tempfile.mkdtemp(prefix="probeplan-page-"))
+        self._finalizer = weakref.finalize(self, shutil.rmtree, str(self.path), True)
+
+    def remove(self) -> None:
+        """Remove the folder now."""
+        self._finalizer()
+
+
+def session_folder() -> Path:
+    """This browser session's private temporary folder (created on first use)."""
+    holder = st.session_state.get("_session_folder")
+    if holder is None or not holder.path.is_dir():
+        holder = _SessionFolder()
+        st.session_state["_session_folder"] = holder
+    return holder.path
+
+
+def safe_name(name: str, default: str = "upload") -> str:
+    """A file name reduced to a basename of letters, digits, ``.``, ``_`` and ``-``.
+
+    Examples
+    --------
+    >>> safe_name("../../etc/passwd")
+    'passwd'
+    >>> safe_name("my stack (1).tif")
+    'my_stack_1_.tif'
+    >>> safe_name("..")
+    'upload'
+    """
+    base = str(name).replace("\\", "/").rsplit("/", 1)[-1]
+    base = _SAFE_CHARS.sub("_", base).lstrip(".")[:_MAX_NAME]
+    return base or default
+
+
+def save_upload(data: bytes, name: str, *, sub: str) -> Path:
+    """Write uploaded bytes into ``<session folder>/<sub>/<safe name>`` and return the path.
+
+    ``sub`` is one of the page's own fixed words, never user text.
+    """
+    folder = session_folder() / sub
+    folder.mkdir(parents=True, exist_ok=True)
+    path = folder / safe_name(name)
+    path.write_bytes(data)
+    return path
+
+
+@contextlib.contextmanager
+def guard(what: str) -> Iterator[None]:
+    """Show bad input as one ``st.error`` line (never a traceback) and stop that part of the view."""
+    try:
+        yield
+    except InputError as exc:
+        st.error(f"{what}: {exc}")
+    except (TypeError, ValueError, OSError) as exc:
+        st.error(f"{what}: {type(exc).__name__}: {exc}")
+
+
+@contextlib.contextmanager
+def captured_warnings(notes: list[str]) -> Iterator[None]:
+    """Collect probeplan's warnings into ``notes`` (shown as notes instead of raised)."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", ProbeplanWarning)
+        yield
+    for w in caught:
+        if issubclass(w.category, ProbeplanWarning):
+            text = str(w.message)
+            if text not in notes:
+                notes.append(text)
+
+
+def show_notes(notes: list[str], *, title: str = "Model notes and assumptions") -> None:
+    """The library's notes and warnings in a folded box."""
+    if not notes:
+        return
+    with st.expander(f"{title} ({len(notes)})"):
+        for n in notes:
+            st.markdown(f"- {n}")
+
+
+def fmt(value: Any, digits: int = 3) -> str:
+    """A number as short text for tables (∞ and – for infinite and missing values)."""
+    if value is None:
+        return "–"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, (int, float)):
+        v = float(value)
+        if math.isnan(v):
+            return "–"
+        if math.isinf(v):
+            return "∞" if v > 0 else "−∞"
+        if v != 0 and (abs(v) >= 1e5 or abs(v) < 1e-3):
+            return f"{v:.{digits - 1}e}"
+        return f"{v:.{digits}g}"
+    return str(value)
+
+
+#: One probe as plain values: (material, emission peak nm, QY or None, extinction M^-1 cm^-1 or None).
+ProbeSpec = tuple[str, float, float | None, float | None]

@@ -1,0 +1,246 @@
+"""The separate view: unmix an uploaded (or the demo) TIFF stack with reference spectra.
+
+Uploads are written only into the session's private temporary folder under
+sanitised names; every reading, unmixing and statistic is a library call.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import streamlit as st
+from page_common import DEMO_DIR, FIGURE_DPI, captured_warnings, fmt, guard, safe_name, save_upload, session_folder, show_notes
+
+__all__ = ["separate_view", "demo_inputs", "maps_png"]
+
+#: Rows per unmixing block (the progress bar advances per block).
+_ROWS_PER_BLOCK = 16
+
+
+def demo_inputs() -> tuple[Path, Path, Path | None] | None:
+    """The demo stack, references and dark frame: shipped in demo_tissue/, or generated once per session."""
+    names = ("stack.tif", "references.csv")
+    if all((DEMO_DIR / n).is_file() for n in names):
+        dark = DEMO_DIR / "dark.tif"
+        return DEMO_DIR / names[0], DEMO_DIR / names[1], dark if dark.is_file() else None
+    try:
+        from probeplan.demo import generate_demo_files
+    except ImportError:
+        return None
+    folder = session_folder() / "demo"
+    if not all((folder / n).is_file() for n in names):
+        notes: list[str] = []
+        with captured_warnings(notes):
+            generate_demo_files(folder)
+    dark = folder / "dark.tif"
+    return folder / names[0], folder / names[1], dark if dark.is_file() else None
+
+
+def _default_rois() -> str:
+    """ROI lines of the demo plan (an example to edit)."""
+    try:
+        from probeplan.plan import load_plan
+
+        rois = load_plan(DEMO_DIR / "plan.toml").analysis.get("rois") or []
+        return "\n".join(str(r) for r in rois)
+    except (OSError, ValueError):
+        return "tumour:20,20,44,44\nbackground:70,70,94,94"
+
+
+def maps_png(maps: np.ndarray, titles: list[str], unit: str, *, cmap: str = "magma") -> bytes:
+    """One image per map with its own colour bar (presentation only)."""
+    from probeplan.plots import new_figure
+    from probeplan.report import figure_png_bytes
+
+    n = len(titles)
+    cols = min(n, 4)
+    rows = (n + cols - 1) // cols
+    fig, axes = new_figure(rows, cols, width=3.4 * cols, height=3.0)
+    for i, ax in enumerate(axes.ravel()):
+        if i >= n:
+            ax.set_axis_off()
+            continue
+        m = np.asarray(maps[i], dtype=np.float64)
+        while m.ndim > 2:  # Z or T planes: show the first
+            m = m[0]
+        finite = m[np.isfinite(m)]
+        hi = float(np.percentile(finite, 99.5)) if finite.size else 1.0
+        im = ax.imshow(m, cmap=cmap, vmin=min(0.0, float(finite.min())) if finite.size else 0.0,
+                       vmax=hi if hi > 0 else None, interpolation="nearest")
+        ax.set_title(titles[i], fontsize=9)
+        ax.set_xlabel("x (pixel)")
+        ax.set_ylabel("y (pixel)")
+        fig.colorbar(im, ax=ax, label=unit, shrink=0.85)
+    return figure_png_bytes(fig, dpi=FIGURE_DPI)
+
+
+def _overlay(abundances: np.ndarray):
+    """False-colour RGB overlay (probeplan.overlay), first plane of Z/T stacks; None if it cannot be made."""
+    from probeplan import overlay
+
+    try:
+        rgb = overlay.overlay_rgb(abundances)
+    except (ValueError, TypeError):
+        return None
+    while rgb.ndim > 3:
+        rgb = rgb[0]
+    return np.clip(rgb, 0.0, 1.0)
+
+
+def _unmix(stack_path: Path, refs_path: Path, dark_path: Path | None, method: str, gain: float, read_noise: float,
+           offset: bool, rois_text: str, background: str) -> dict:
+    """Read, unmix block by block with a progress bar, and gather maps, QC and ROI statistics."""
+    from probeplan import io as pio
+    from probeplan import roi as proi
+    from probeplan.references import read_references_csv
+    from probeplan.unmix import QcAccumulator, design_matrix, unmix_stack
+
+    notes: list[str] = []
+    with captured_warnings(notes):
+        data, info = pio.read_stack(stack_path)
+        data = np.moveaxis(data, info.channel_axis, 0)
+        refs = read_references_csv(refs_path).for_channels(info.channel_names, where=stack_path.name)
+        dark = None
+        if dark_path is not None:
+            dark_data, dark_info = pio.read_stack(dark_path)
+            dark = np.moveaxis(dark_data, dark_info.channel_axis, 0)
+        M, names = design_matrix(refs, n_channels=data.shape[0], offset=offset)
+        n_rows = data.shape[-2]
+        bar = st.progress(0.0, text="unmixing…")
+        parts: list = []
+        qc = None
+        for r0 in range(0, n_rows, _ROWS_PER_BLOCK):
+            r1 = min(n_rows, r0 + _ROWS_PER_BLOCK)
+            block = data[..., r0:r1, :]
+            res = unmix_stack(block, refs, method=method, dark=None if dark is None else dark[..., r0:r1, :],
+                              offset=offset, gain_e_per_count=gain, read_noise_e=read_noise)
+            if qc is None:
+                qc = QcAccumulator(M, names, method, res.qc["condition_number"])
+            qc.add(res.abundances, res.residual_rms, res.status)
+            parts.append(res)
+            bar.progress(r1 / n_rows, text=f"unmixing… rows {r1} of {n_rows}")
+        bar.empty()
+        abundances = np.concatenate([p.abundances for p in parts], axis=-2)
+        stderr = np.concatenate([p.standard_error for p in parts], axis=-2)
+        residual = np.concatenate([p.residual_rms for p in parts], axis=-2)
+        shape_yx = abundances.shape[-2:]
+        rois = [proi.parse_rectangle(line, shape=shape_yx) for line in rois_text.splitlines() if line.strip()]
+        roi_rows = proi.roi_statistics(abundances, rois, names, background=background or None) if rois else []
+    return {
+        "names": names, "abundances": abundances, "stderr": stderr, "residual": residual, "qc": qc.summary(),
+        "roi_rows": roi_rows, "channel_names": list(info.channel_names or []), "pixel_size_um": info.pixel_size_um,
+        "stack_name": stack_path.name, "notes": notes,
+    }
+
+
+def _downloads(result: dict) -> None:
+    from probeplan.io import write_stack
+    from probeplan.outputs import table_to_csv_text
+    from probeplan.roi import ROI_COLUMNS
+
+    folder = session_folder() / "results"
+    folder.mkdir(parents=True, exist_ok=True)
+    stem = safe_name(Path(result["stack_name"]).stem, "stack")
+    tif = write_stack(folder / f"{stem}_abundance.ome.tif", result["abundances"], channel_names=result["names"],
+                      pixel_size_um=result["pixel_size_um"])
+    err = write_stack(folder / f"{stem}_stderr.ome.tif", result["stderr"], channel_names=result["names"],
+                      pixel_size_um=result["pixel_size_um"])
+    c = st.columns(3)
+    c[0].download_button("Abundance maps (OME-TIFF)", tif.read_bytes(), file_name=tif.name, mime="image/tiff",
+                         key="dl_abundance")
+    c[1].download_button("Standard errors (OME-TIFF)", err.read_bytes(), file_name=err.name, mime="image/tiff",
+                         key="dl_stderr")
+    if result["roi_rows"]:
+        c[2].download_button("ROI statistics (CSV)", table_to_csv_text(result["roi_rows"], ROI_COLUMNS),
+                             file_name=f"{stem}_roi.csv", mime="text/csv", key="dl_roi")
+
+
+def separate_view() -> None:
+    """Upload, unmix, look at the maps and ROI statistics, download."""
+    st.header("Separate: unmix an image stack")
+    st.caption("A multichannel TIFF or OME-TIFF stack (channels first) and the reference spectra of each probe in "
+               "each channel (CSV: a 'channel' column, then one column per probe or autofluorescence) give an "
+               "abundance map per probe with its standard error, and the residual of the fit.")
+    ss = st.session_state
+    ss.setdefault("w_sep_demo", False)
+    ss.setdefault("w_sep_method", "nnls")
+    ss.setdefault("w_sep_gain", 1.0)
+    ss.setdefault("w_sep_read_noise", 0.0)
+    ss.setdefault("w_sep_offset", False)
+    ss.setdefault("w_sep_rois", _default_rois())
+    ss.setdefault("w_sep_background", "muscle")
+    demo = None
+    with guard("demo data"):
+        demo = demo_inputs()
+    st.checkbox("use the demo stack and references (invented study)", key="w_sep_demo", disabled=demo is None,
+                help=None if demo is not None else "The demo files are not available in this installation.")
+    use_demo = bool(ss["w_sep_demo"]) and demo is not None
+    c = st.columns(2)
+    up_stack = c[0].file_uploader("image stack (TIFF / OME-TIFF)", type=["tif", "tiff"], key="up_stack",
+                                  disabled=use_demo)
+    up_refs = c[1].file_uploader("reference spectra (CSV)", type=["csv", "txt"], key="up_refs", disabled=use_demo)
+    c = st.columns(4)
+    c[0].selectbox("method", ["nnls", "ls", "wls"], key="w_sep_method",
+                   format_func={"nnls": "non-negative least squares", "ls": "least squares",
+                                "wls": "Poisson-weighted least squares"}.get)
+    c[1].number_input("camera gain (e⁻/count)", min_value=1e-6, max_value=1e6, step=0.1, key="w_sep_gain")
+    c[2].number_input("camera read noise (e⁻ rms)", min_value=0.0, max_value=1e4, step=0.5, key="w_sep_read_noise")
+    c[3].checkbox("fit a constant offset per channel", key="w_sep_offset")
+    c = st.columns([3, 1])
+    c[0].text_area("regions of interest, one per line: name:x0,y0,x1,y1 (pixels; x0, y0 included, x1, y1 excluded)",
+                   key="w_sep_rois", height=90)
+    c[1].text_input("background region (for target-to-background ratios)", key="w_sep_background")
+    run = st.button("Unmix", type="primary", key="btn_unmix")
+    if run:
+        ss.pop("unmix_result", None)
+        with guard("unmixing"):
+            dark = None
+            if use_demo:
+                stack_path, refs_path, dark = demo
+            else:
+                if up_stack is None or up_refs is None:
+                    from probeplan.errors import input_error
+
+                    raise input_error("upload", "a stack and a reference spectra CSV are both needed",
+                                      "upload both files, or tick 'use the demo'")
+                stack_path = save_upload(up_stack.getvalue(), up_stack.name or "stack.tif", sub="uploads")
+                refs_path = save_upload(up_refs.getvalue(), up_refs.name or "references.csv", sub="uploads")
+            ss["unmix_result"] = _unmix(stack_path, refs_path, dark, str(ss["w_sep_method"]), float(ss["w_sep_gain"]),
+                                        float(ss["w_sep_read_noise"]), bool(ss["w_sep_offset"]), str(ss["w_sep_rois"]),
+                                        str(ss["w_sep_background"]).strip())
+    result = ss.get("unmix_result")
+    if result is None:
+        return
+    with guard("results"):
+        qc = result["qc"]
+        st.subheader(f"Results for {result['stack_name']}")
+        c = st.columns(4)
+        c[0].metric("condition number of the references", fmt(qc["condition_number"]))
+        c[1].metric("pixels", f"{qc['n_pixels']:,}")
+        c[2].metric("saturated or missing pixels", f"{qc['n_saturated'] + qc['n_nan']:,}")
+        c[3].metric("residual RMS (counts)", fmt(qc["residual_rms"]["rms"]))
+        st.markdown("**Abundance maps**")
+        st.image(maps_png(result["abundances"], result["names"], "abundance (counts, all channels)"),
+                 caption="Abundance of each component (reference spectra normalised to unit sum over channels).",
+                 width="content")
+        overlay = _overlay(result["abundances"])
+        tabs = st.tabs(["standard error", "residual", "false-colour overlay"])
+        with tabs[0]:
+            st.image(maps_png(result["stderr"], [f"{n} standard error" for n in result["names"]], "counts",
+                              cmap="viridis"), width="content")
+        with tabs[1]:
+            st.image(maps_png(result["residual"][None], ["residual RMS over channels"], "counts", cmap="viridis"),
+                     width="content")
+        with tabs[2]:
+            if overlay is not None:
+                st.image(overlay, clamp=True, width="content",
+                         caption="Each component in its own colour, scaled to its 99.5th percentile.")
+        if result["roi_rows"]:
+            st.markdown("**Regions of interest** (mean ± SD of the abundance; TBR against the background region)")
+            shown = {"roi": "region", "component": "component", "n_pixels": "pixels", "n_nan": "pixels left out (NaN)",
+                     "mean": "mean abundance (counts)", "sd": "SD (counts)", "tbr": "target-to-background ratio"}
+            st.dataframe([{shown.get(k, k): (fmt(v) if isinstance(v, float) else v) for k, v in r.items()}
+                          for r in result["roi_rows"]], hide_index=True, width="stretch")
+        _downloads(result)
+        show_notes(result["notes"], title="Unmixing notes")

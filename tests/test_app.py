@@ -1,0 +1,440 @@
+"""The Streamlit page, driven with streamlit.testing.v1.AppTest, and the ``probeplan app`` command.
+
+The page only calls library functions; these tests check that its controls reach
+the library (moving a control changes the numbers shown), that bad input is shown
+as one error line and never as a traceback, that uploads stay in the session's
+private folder, and that the research-use caution is on every view.  The science
+itself is tested against its sources in the library's own tests.
+"""
+
+from __future__ import annotations
+
+import gc
+import importlib
+import re
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+pytest.importorskip("streamlit")
+from streamlit.testing.v1 import AppTest  # noqa: E402
+
+import probeplan  # noqa: E402
+from probeplan import RESEARCH_USE_CAUTION  # noqa: E402
+
+ROOT = Path(__file__).resolve().parents[1]
+APP = ROOT / "app" / "main.py"
+TIMEOUT = 60
+
+
+def _app() -> AppTest:
+    at = AppTest.from_file(str(APP), default_timeout=TIMEOUT)
+    at.run()
+    _clean(at)
+    return at
+
+
+def _clean(at: AppTest) -> None:
+    """No traceback on the page."""
+    assert not at.exception, [e.value for e in at.exception]
+
+
+def _errors(at: AppTest) -> list[str]:
+    return [e.value for e in at.error]
+
+
+def _view(at: AppTest, view: str) -> AppTest:
+    at.sidebar.radio(key="w_view").set_value(view).run()
+    _clean(at)
+    return at
+
+
+def _table(at: AppTest, index: int = 0):
+    return at.dataframe[index].value
+
+
+def _image_count(at: AppTest) -> int:
+    return len(at.get("image"))
+
+
+# --------------------------------------------------------------------------- depth view
+
+
+def test_depth_view_shows_three_probes_plot_and_caution():
+    at = _app()
+    assert any(RESEARCH_USE_CAUTION in w.value for w in at.warning)
+    assert _errors(at) == []
+    table = _table(at)
+    assert list(table["probe"]) == ["CdTe 700 nm", "CdTeSe 780 nm", "InAs 880 nm"]
+    assert list(table["filter"]) == ["700/30", "780/40", "880/50"]
+    assert _image_count(at) >= 1
+    # the skin limit is shown beside the irradiance (640 nm, >= 10 s: 200 mW/cm^2, ANSI Z136.1 C_A = 1 below 700 nm)
+    assert any("200" in m.value and "mW/cm²" in m.value for m in at.sidebar.metric)
+
+
+def test_changing_a_probe_peak_changes_the_table():
+    at = _app()
+    before = _table(at).iloc[0].to_dict()
+    at.number_input(key="w_peak_0").set_value(720.0).run()
+    _clean(at)
+    after = _table(at).iloc[0].to_dict()
+    assert after["probe"] == "CdTe 720 nm"
+    changed = [k for k in before if k not in ("probe",) and before[k] != after[k]]
+    assert changed, (before, after)
+
+
+def test_sbr_threshold_moves_the_lost_depth():
+    at = _app()
+    col = "depth where SBR < 2 (mm)"
+    before = list(_table(at)[col])
+    at.slider(key="w_sbr_threshold").set_value(1.5).run()
+    _clean(at)
+    after = list(_table(at)["depth where SBR < 1.5 (mm)"])
+    assert before != after
+    # a lower threshold is crossed deeper (SBR falls with depth)
+    assert all(float(a) > float(b) for a, b in zip(after, before, strict=True) if b[0].isdigit() and a[0].isdigit())
+
+
+def test_irradiance_above_the_skin_limit_is_flagged_above_the_plots():
+    at = _app()
+    at.sidebar.number_input(key="w_irradiance").set_value(500.0).run()
+    _clean(at)
+    assert any("ABOVE the skin maximum permissible exposure" in e for e in _errors(at))
+
+
+def test_bad_filter_text_is_one_error_line():
+    at = _app()
+    at.text_input(key="w_filter_1").set_value("banana").run()
+    _clean(at)
+    errs = _errors(at)
+    assert any("filter" in e and "'banana'" in e for e in errs), errs
+
+
+def test_peak_outside_the_material_range_is_refused_with_the_range():
+    at = _app()
+    at.number_input(key="w_peak_0").set_value(900.0).run()
+    _clean(at)
+    assert any("outside the CdTe emission range" in e for e in _errors(at)), _errors(at)
+
+
+def test_tissue_composition_sliders_change_the_result():
+    at = _app()
+    before = list(_table(at)["SNR at 2 mm"])
+    at.sidebar.radio(key="w_tissue_mode").set_value("composition").run()
+    _clean(at)
+    assert list(_table(at)["SNR at 2 mm"]) == before  # the preset's own composition: same numbers
+    at.sidebar.slider(key="w_comp_blood_fraction").set_value(0.08).run()
+    _clean(at)
+    after = list(_table(at)["SNR at 2 mm"])
+    assert after != before
+    # more blood absorbs more: the SNR at depth falls
+    assert all(float(a) < float(b) for a, b in zip(after, before, strict=True))
+
+
+def test_composition_over_one_is_refused():
+    at = _app()
+    at.sidebar.radio(key="w_tissue_mode").set_value("composition").run()
+    at.sidebar.slider(key="w_comp_water_fraction").set_value(1.0).run()
+    at.sidebar.slider(key="w_comp_blood_fraction").set_value(0.2).run()
+    _clean(at)
+    assert any("fractions exceed 1" in e for e in _errors(at)), _errors(at)
+
+
+def test_values_survive_a_visit_to_another_view():
+    at = _app()
+    at.number_input(key="w_peak_1").set_value(800.0).run()
+    _view(at, "plan")
+    _view(at, "depth")
+    assert at.number_input(key="w_peak_1").value == 800.0
+    assert "CdTeSe 800 nm" in list(_table(at)["probe"])
+
+
+# --------------------------------------------------------------------------- channels view
+
+
+def test_channels_view_and_a_filter_change():
+    at = _view(_app(), "channels")
+    assert any(RESEARCH_USE_CAUTION in w.value for w in at.warning)
+    metrics = {m.label: m.value for m in at.metric}
+    cond = float(metrics["condition number"])
+    assert 1.0 <= cond < 10.0
+    assert metrics["separable"] == "yes"
+    noise = _table(at)
+    assert list(noise["probe"]) == ["CdTe 700 nm", "CdTeSe 780 nm", "InAs 880 nm"]
+    # the same filter for two probes: their columns become nearly alike, the set far worse conditioned
+    at.text_input(key="w_filter_2").set_value("780/40").run()
+    _clean(at)
+    cond2 = float({m.label: m.value for m in at.metric}["condition number"].replace("∞", "inf"))
+    assert cond2 > 3 * cond
+
+
+def test_channels_needs_a_channel_per_probe():
+    at = _view(_app(), "channels")
+    at.number_input(key="w_n_probes").set_value(4).run()
+    _clean(at)
+    assert _errors(at) == [] or all("channel" in e or "probe" in e for e in _errors(at))
+    at.text_input(key="w_filter_3").set_value("").run()
+    _clean(at)
+    assert _errors(at), "an empty filter must be refused"
+
+
+def test_design_search_and_apply_a_set():
+    at = _view(_app(), "channels")
+    # a small search: one CdTe series, four filters, two probes
+    at.checkbox(key="w_ds_on_1").uncheck()
+    at.checkbox(key="w_ds_on_2").uncheck()
+    at.number_input(key="w_ds_from_0").set_value(660.0)
+    at.number_input(key="w_ds_to_0").set_value(720.0)
+    at.number_input(key="w_ds_step_0").set_value(30.0)
+    at.number_input(key="w_ds_centre_from").set_value(660.0)
+    at.number_input(key="w_ds_centre_to").set_value(720.0)
+    at.number_input(key="w_ds_centre_step").set_value(30.0)
+    at.text_input(key="w_ds_widths").set_value("30")
+    at.number_input(key="w_ds_k").set_value(2)
+    at.button(key="FormSubmitter:design_form-Search").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    best = at.dataframe[-1].value
+    assert list(best["rank"])[:1] == [1]
+    first = best.iloc[0]
+    at.button(key="apply_design_1").click().run()
+    _clean(at)
+    assert at.number_input(key="w_n_probes").value == 2
+    applied = [f"{at.selectbox(key=f'w_mat_{i}').value} {at.number_input(key=f'w_peak_{i}').value:g} nm" for i in range(2)]
+    assert ", ".join(applied) == first["probes"]
+    assert ", ".join(at.text_input(key=f"w_filter_{i}").value for i in range(2)) == first["filters"]
+    assert list(_table(at)["probe"]) == applied
+
+
+def test_design_bad_widths_is_an_error_line():
+    at = _view(_app(), "channels")
+    at.text_input(key="w_ds_widths").set_value("thirty")
+    at.button(key="FormSubmitter:design_form-Search").click().run()
+    _clean(at)
+    assert any("filter widths" in e for e in _errors(at))
+
+
+# --------------------------------------------------------------------------- separate view
+
+
+def _test_stack(tmp_path: Path) -> tuple[bytes, bytes, np.ndarray, np.ndarray]:
+    """A 3-channel stack mixed from two known abundance maps (test data of our own)."""
+    from probeplan.io import write_stack
+
+    refs = np.array([[0.7, 0.1], [0.2, 0.3], [0.1, 0.6]])  # columns sum to 1 (the page's 'sum' normalisation)
+    abundance = np.zeros((2, 40, 48))
+    abundance[0, 5:15, 5:15] = 1000.0
+    abundance[1, 20:35, 25:40] = 600.0
+    abundance += 50.0
+    stack = np.einsum("ck,kyx->cyx", refs, abundance)
+    path = write_stack(tmp_path / "stack.tif", stack, channel_names=["ch700", "ch780", "ch880"])
+    csv = "channel,dotA,dotB\nch700,0.7,0.1\nch780,0.2,0.3\nch880,0.1,0.6\n"
+    return path.read_bytes(), csv.encode(), abundance, refs
+
+
+def test_separate_upload_unmix_and_roi(tmp_path):
+    stack, csv, truth, _ = _test_stack(tmp_path)
+    at = _view(_app(), "separate")
+    assert any(RESEARCH_USE_CAUTION in w.value for w in at.warning)
+    at.file_uploader(key="up_stack").set_value(("../../my stack (1).tif", stack, "image/tiff"))
+    at.file_uploader(key="up_refs").set_value(("refs.csv", csv, "text/csv"))
+    at.text_area(key="w_sep_rois").set_value("dotA:5,5,15,15\nbackground:40,0,48,5")
+    at.text_input(key="w_sep_background").set_value("background")
+    at.button(key="btn_unmix").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    assert _image_count(at) >= 2
+    rows = _table(at)
+    a_in_roi = rows[(rows["region"] == "dotA") & (rows["component"] == "dotA")].iloc[0]
+    # noise-free mixture: the exact abundance comes back (1000 + 50 inside, 50 in the background region)
+    assert float(a_in_roi["mean abundance (counts)"]) == pytest.approx(1050.0, rel=1e-3)
+    assert float(a_in_roi["target-to-background ratio"]) == pytest.approx(21.0, rel=1e-3)
+    # the upload is in the session's private folder, under a sanitised basename
+    folder = at.session_state["_session_folder"].path
+    saved = sorted(p.name for p in (folder / "uploads").iterdir())
+    assert saved == ["my_stack_1_.tif", "refs.csv"]
+    labels = [b.label for b in at.get("download_button")]
+    assert any("OME-TIFF" in lab for lab in labels) and any("CSV" in lab for lab in labels)
+
+
+def test_separate_with_the_demo_data():
+    at = _view(_app(), "separate")
+    box = at.checkbox(key="w_sep_demo")
+    if box.disabled:
+        pytest.skip("the demo data is not available in this checkout")
+    box.check().run()
+    at.button(key="btn_unmix").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    assert _image_count(at) >= 2
+    rows = _table(at)
+    assert {"tumour", "muscle"} <= set(rows["region"])
+
+
+def test_separate_bad_uploads_show_errors(tmp_path):
+    stack, csv, _, _ = _test_stack(tmp_path)
+    at = _view(_app(), "separate")
+    at.button(key="btn_unmix").click().run()
+    _clean(at)
+    assert any("upload" in e for e in _errors(at))
+    at.file_uploader(key="up_stack").set_value(("stack.tif", b"not a tiff at all", "image/tiff"))
+    at.file_uploader(key="up_refs").set_value(("refs.csv", csv, "text/csv"))
+    at.button(key="btn_unmix").click().run()
+    _clean(at)
+    assert any("stack.tif" in e for e in _errors(at)), _errors(at)
+    bad_refs = b"channel,dotA,dotB\nch700,0.7,x\nch780,0.2,0.3\nch880,0.1,0.6\n"
+    at.file_uploader(key="up_stack").set_value(("stack.tif", stack, "image/tiff"))
+    at.file_uploader(key="up_refs").set_value(("refs.csv", bad_refs, "text/csv"))
+    at.button(key="btn_unmix").click().run()
+    _clean(at)
+    assert any("refs.csv:2" in e and "not a number" in e for e in _errors(at)), _errors(at)
+    at.file_uploader(key="up_refs").set_value(("refs.csv", csv.replace(b"ch880", b"ch999"), "text/csv"))
+    at.button(key="btn_unmix").click().run()
+    _clean(at)
+    assert any("ch880" in e for e in _errors(at)), _errors(at)
+    at.file_uploader(key="up_refs").set_value(("refs.csv", csv, "text/csv"))
+    at.text_area(key="w_sep_rois").set_value("tumour:0,0,500,500")
+    at.button(key="btn_unmix").click().run()
+    _clean(at)
+    assert any("extends past the image" in e for e in _errors(at)), _errors(at)
+
+
+# --------------------------------------------------------------------------- plan view
+
+
+def test_plan_view_checks_the_demo_plan_and_offers_the_report():
+    at = _view(_app(), "plan")
+    assert any(RESEARCH_USE_CAUTION in w.value for w in at.warning)
+    assert "[study]" in at.text_area(key="w_plan_text").value
+    at.button(key="btn_check").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    rows = _table(at)
+    assert len(rows) >= 5 and set(rows["result"]) <= {"pass", "FAIL"}
+    labels = [b.label for b in at.get("download_button")]
+    assert "Report (HTML)" in labels and "Report with tables (zip)" in labels
+
+
+def test_plan_view_reports_a_broken_rule():
+    at = _view(_app(), "plan")
+    text = re.sub(r"dose_nmol_per_kg = [0-9.]+", "dose_nmol_per_kg = 5000", at.text_area(key="w_plan_text").value, count=1)
+    at.text_area(key="w_plan_text").set_value(text)
+    at.button(key="btn_check").click().run()
+    _clean(at)
+    rows = _table(at)
+    assert "FAIL" in set(rows["result"])
+    assert any("rules are broken" in e for e in _errors(at))
+
+
+def test_plan_view_bad_toml_names_the_file_and_line():
+    at = _view(_app(), "plan")
+    at.text_area(key="w_plan_text").set_value("[study]\ntitle = \n")
+    at.button(key="btn_check").click().run()
+    _clean(at)
+    assert any("plan.toml" in e for e in _errors(at)), _errors(at)
+    at.text_area(key="w_plan_text").set_value(at.text_area(key="w_plan_text").value)
+    at.text_area(key="w_rules_text").set_value('[injection.mouse]\niv = { value = 0.1, unit = "mL" }\n')
+    at.text_area(key="w_plan_text").set_value((ROOT / "demo_tissue" / "plan.toml").read_text(encoding="utf-8"))
+    at.button(key="btn_check").click().run()
+    _clean(at)
+    assert any("rules.toml:2" in e and "mL/kg" in e for e in _errors(at)), _errors(at)
+
+
+def test_plan_upload_replaces_the_text():
+    at = _view(_app(), "plan")
+    text = "# uploaded copy\n" + (ROOT / "demo_tissue" / "plan.toml").read_text(encoding="utf-8")
+    at.file_uploader(key="up_plan").set_value(("plan.toml", text.encode(), "application/toml"))
+    at.run()
+    _clean(at)
+    assert at.text_area(key="w_plan_text").value.startswith("# uploaded copy\n")
+
+
+# --------------------------------------------------------------------------- page helpers
+
+
+@pytest.fixture()
+def page_common():
+    sys.path.insert(0, str(APP.parent))
+    try:
+        yield importlib.import_module("page_common")
+    finally:
+        sys.path.remove(str(APP.parent))
+
+
+@pytest.mark.parametrize(("name", "expected"), [
+    ("../../etc/passwd", "passwd"),
+    ("C:\\Users\\x\\stack.tif", "stack.tif"),
+    ("my stack (1).tif", "my_stack_1_.tif"),
+    ("..", "upload"),
+    (".hidden.csv", "hidden.csv"),
+    ("ÿ<script>.csv", "_script_.csv"),
+])
+def test_safe_name(page_common, name, expected):
+    assert page_common.safe_name(name) == expected
+
+
+def test_session_folder_is_removed_with_its_holder(page_common):
+    holder = page_common._SessionFolder()
+    path = holder.path
+    (path / "x.bin").write_bytes(b"1")
+    assert path.is_dir()
+    del holder
+    gc.collect()
+    assert not path.exists()
+
+
+# --------------------------------------------------------------------------- the command
+
+
+def test_app_command_line_is_loopback_streamlit(monkeypatch, capsys):
+    from probeplan.cli import main
+    from probeplan.commands import app as app_cmd
+
+    launched = {}
+    monkeypatch.setattr(app_cmd, "_launch", lambda cmd: launched.setdefault("cmd", cmd) and 0)
+    assert main(["app", "--port", "8999", "--max-upload-mb", "50"]) == 0
+    cmd = launched["cmd"]
+    assert cmd[1:5] == ["-m", "streamlit", "run", str(APP)]
+    opts = dict(zip(cmd[5::2], cmd[6::2], strict=True))
+    assert opts["--server.address"] == "127.0.0.1"
+    assert opts["--server.port"] == "8999"
+    assert opts["--server.maxUploadSize"] == "50"
+    assert opts["--server.headless"] == "true" and opts["--browser.gatherUsageStats"] == "false"
+    out = capsys.readouterr()
+    assert RESEARCH_USE_CAUTION in out.out and "authentication" not in out.err
+
+
+def test_app_command_warns_when_not_loopback(monkeypatch, capsys):
+    from probeplan.cli import main
+    from probeplan.commands import app as app_cmd
+
+    monkeypatch.setattr(app_cmd, "_launch", lambda cmd: 0)
+    assert main(["app", "--host", "0.0.0.0"]) == 0
+    assert "NO authentication" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("argv", [["app", "--port", "0"], ["app", "--max-upload-mb", "0"], ["app", "--host", " "]])
+def test_app_command_refuses_bad_options(monkeypatch, capsys, argv):
+    from probeplan.cli import main
+    from probeplan.commands import app as app_cmd
+
+    monkeypatch.setattr(app_cmd, "_launch", lambda cmd: pytest.fail("must not start"))
+    assert main(argv) == 2
+    assert "probeplan app: error:" in capsys.readouterr().err
+
+
+def test_app_command_without_the_page(monkeypatch, tmp_path, capsys):
+    from probeplan.cli import main
+    from probeplan.commands import app as app_cmd
+
+    fake = tmp_path / "site-packages" / "probeplan" / "__init__.py"
+    fake.parent.mkdir(parents=True)
+    fake.write_text("")
+    monkeypatch.setattr(probeplan, "__file__", str(fake))
+    monkeypatch.setattr(app_cmd, "_launch", lambda cmd: pytest.fail("must not start"))
+    assert main(["app"]) == 2
+    err = capsys.readouterr().err
+    assert "is missing" in err and "pip install -e" in err
+

@@ -1,0 +1,186 @@
+"""End to end in a real browser: ``probeplan app`` on a free loopback port, driven by Debian's Chromium.
+
+Screenshots go to ``test-artifacts/`` at the repository root (git-ignored).  Without
+``/usr/bin/chromium`` the test is skipped, unless ``PROBEPLAN_REQUIRE_BROWSER=1``
+(set in CI), when it fails.  Playwright's own browser download is never used.
+"""
+
+from __future__ import annotations
+
+import os
+import socket
+import subprocess
+import sys
+import time
+import urllib.request
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+ARTIFACTS = ROOT / "test-artifacts"
+CHROMIUM = Path("/usr/bin/chromium")
+CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+                 "--disable-background-networking", "--disable-component-update", "--disable-sync"]
+VIEWPORT = {"width": 1400, "height": 1300}
+START_TIMEOUT_S = 90.0
+UI_TIMEOUT_MS = 60_000
+
+
+def _need_browser() -> None:
+    required = os.environ.get("PROBEPLAN_REQUIRE_BROWSER") == "1"
+    problems = []
+    if not CHROMIUM.exists():
+        problems.append(f"{CHROMIUM} is missing (install Debian's chromium package)")
+    try:
+        import playwright.sync_api  # noqa: F401
+    except ImportError:
+        problems.append("the playwright Python package is missing")
+    if problems:
+        message = "; ".join(problems)
+        if required:
+            pytest.fail(f"PROBEPLAN_REQUIRE_BROWSER=1 but {message}")
+        pytest.skip(message)
+
+
+def _free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def _wait_healthy(proc: subprocess.Popen, port: int, log: Path) -> None:
+    url = f"http://127.0.0.1:{port}/_stcore/health"
+    deadline = time.monotonic() + START_TIMEOUT_S
+    while time.monotonic() < deadline:
+        if proc.poll() is not None:
+            pytest.fail(f"probeplan app exited with {proc.returncode}:\n{log.read_text(errors='replace')}")
+        try:
+            with urllib.request.urlopen(url, timeout=2) as r:
+                if r.status == 200:
+                    return
+        except OSError:
+            pass
+        time.sleep(0.5)
+    pytest.fail(f"probeplan app did not answer on {url} within {START_TIMEOUT_S:g} s:\n{log.read_text(errors='replace')}")
+
+
+def _stop(proc: subprocess.Popen) -> None:
+    """Stop the server by its PID (``probeplan app`` replaces itself with Streamlit: one process)."""
+    if proc.poll() is None:
+        proc.terminate()
+        try:
+            proc.wait(timeout=15)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait(timeout=15)
+
+
+def _test_stack(folder: Path) -> tuple[Path, Path]:
+    """A three-channel stack mixed from two known abundance maps, and its reference spectra (our own test data)."""
+    from probeplan.io import write_stack
+
+    refs = np.array([[0.7, 0.1], [0.2, 0.3], [0.1, 0.6]])
+    yy, xx = np.mgrid[0:96, 0:128]
+    abundance = np.stack([
+        1500.0 * np.exp(-((xx - 40) ** 2 + (yy - 40) ** 2) / (2 * 12.0**2)),
+        900.0 * np.exp(-((xx - 85) ** 2 + (yy - 60) ** 2) / (2 * 16.0**2)),
+    ]) + 40.0
+    stack = np.random.default_rng(7).poisson(np.einsum("ck,kyx->cyx", refs, abundance)).astype(np.uint16)
+    stack_path = write_stack(folder / "stack.tif", stack, channel_names=["ch700", "ch780", "ch880"],
+                             dtype=np.uint16)
+    ref_path = folder / "refs.csv"
+    ref_path.write_text("channel,dot A,dot B\nch700,0.7,0.1\nch780,0.2,0.3\nch880,0.1,0.6\n", encoding="utf-8")
+    return stack_path, ref_path
+
+
+def _plot_src(page) -> str:
+    img = page.locator("[data-testid='stImage'] img").first
+    img.wait_for(timeout=UI_TIMEOUT_MS)
+    return img.get_attribute("src") or ""
+
+
+@pytest.mark.browser
+def test_page_in_chromium(tmp_path):
+    _need_browser()
+    from playwright.sync_api import sync_playwright
+
+    ARTIFACTS.mkdir(exist_ok=True)
+    port = _free_port()
+    log = tmp_path / "app.log"
+    env = dict(os.environ, STREAMLIT_BROWSER_GATHER_USAGE_STATS="false", MPLBACKEND="Agg")
+    with open(log, "wb") as out:
+        proc = subprocess.Popen([sys.executable, "-m", "probeplan", "app", "--port", str(port)], cwd=tmp_path,
+                                stdout=out, stderr=subprocess.STDOUT, env=env)
+    try:
+        _wait_healthy(proc, port, log)
+        stack_path, ref_path = _test_stack(tmp_path)
+        with sync_playwright() as pw:
+            browser = pw.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS)
+            page = browser.new_page(viewport=VIEWPORT)
+            try:
+                page.goto(f"http://127.0.0.1:{port}/", timeout=UI_TIMEOUT_MS)
+                page.get_by_text("Depth at which each probe is lost").wait_for(timeout=UI_TIMEOUT_MS)
+                page.get_by_text("For research use only").first.wait_for(timeout=UI_TIMEOUT_MS)
+                before = _plot_src(page)
+                page.screenshot(path=str(ARTIFACTS / "browser-1-depth.png"))
+
+                # move a control: the first probe's emission peak 700 -> 720 nm; the plot must change
+                peak = page.get_by_label("probe 1 emission peak (nm)", exact=True)
+                peak.fill("720")
+                peak.press("Enter")
+                deadline = time.monotonic() + UI_TIMEOUT_MS / 1000
+                after = before
+                while after == before and time.monotonic() < deadline:
+                    time.sleep(0.5)
+                    after = _plot_src(page)
+                assert after != before, "the depth plot did not change after the peak was moved"
+                page.get_by_text("CdTe 720 nm").first.wait_for(state="attached", timeout=UI_TIMEOUT_MS)
+                page.screenshot(path=str(ARTIFACTS / "browser-2-depth-after-change.png"))
+
+                page.get_by_text("Channels: crosstalk and design").click()
+                page.get_by_text("Separability at the target depth").wait_for(timeout=UI_TIMEOUT_MS)
+                page.get_by_text("condition number").first.wait_for(timeout=UI_TIMEOUT_MS)
+                time.sleep(1.0)
+                page.screenshot(path=str(ARTIFACTS / "browser-3-channels.png"))
+
+                # upload a stack and its reference spectra, unmix, see the abundance maps
+                page.get_by_text("Separate: unmix an image stack").click()
+                page.get_by_text("reference spectra (CSV)").wait_for(timeout=UI_TIMEOUT_MS)
+                inputs = page.locator("input[type='file']")
+                uploaders = page.locator("[data-testid='stFileUploader']")
+                inputs.nth(0).set_input_files(str(stack_path))
+                uploaders.nth(0).get_by_text("KB").wait_for(timeout=UI_TIMEOUT_MS)
+                inputs.nth(1).set_input_files(str(ref_path))
+                uploaders.nth(1).get_by_text(ref_path.name).wait_for(timeout=UI_TIMEOUT_MS)
+                page.get_by_label("regions of interest", exact=False).fill("dot A:28,28,52,52\nbackground:110,0,128,15")
+                page.get_by_label("background region", exact=False).fill("background")
+                page.get_by_role("button", name="Unmix").click()
+                page.get_by_text("Abundance maps", exact=True).wait_for(timeout=UI_TIMEOUT_MS)
+                maps = page.locator("[data-testid='stImage'] img")
+                maps.first.wait_for(timeout=UI_TIMEOUT_MS)
+                assert maps.count() >= 1
+                assert (maps.first.get_attribute("src") or "") != ""
+                assert page.get_by_text("Results for stack.tif").count() == 1
+                assert page.locator("[data-testid='stException']").count() == 0
+                maps.first.scroll_into_view_if_needed()
+                time.sleep(1.0)
+                page.screenshot(path=str(ARTIFACTS / "browser-4-separate-abundance.png"))
+                page.locator("[data-testid='stDataFrame']").last.scroll_into_view_if_needed()
+                time.sleep(0.5)
+                page.screenshot(path=str(ARTIFACTS / "browser-5-separate-roi.png"))
+
+                page.get_by_text("Plan: check against the rules").click()
+                page.get_by_role("button", name="Check the plan").click()
+                page.get_by_text("Rule by rule").wait_for(timeout=UI_TIMEOUT_MS)
+                time.sleep(1.0)
+                page.screenshot(path=str(ARTIFACTS / "browser-6-plan.png"))
+                assert page.locator("[data-testid='stException']").count() == 0
+            except Exception:
+                page.screenshot(path=str(ARTIFACTS / "browser-failure.png"))
+                raise
+            finally:
+                browser.close()
+    finally:
+        _stop(proc)
