@@ -26,7 +26,6 @@ from __future__ import annotations
 
 import difflib
 import os
-import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -116,12 +115,9 @@ def user_tissue_names() -> list[str]:
 
 
 def _read_toml(path: Path) -> dict[str, Any]:
-    try:
-        return tomllib.loads(path.read_text(encoding="utf-8"))
-    except tomllib.TOMLDecodeError as exc:
-        raise input_error(str(path), f"is not valid TOML ({exc})", "fix the syntax at that line") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise input_error(str(path), f"cannot be read ({exc})", "check the file") from None
+    from probeplan.tomlsource import load_toml
+
+    return load_toml(path, what="library file")[0]
 
 
 def user_tissue(name: str):

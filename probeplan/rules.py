@@ -311,21 +311,9 @@ def load_rules(path: str | Path | None = None) -> Rules:
     """
     if path is None:
         return default_rules()
-    if not isinstance(path, (str, Path)):
-        raise TypeError(f"path: expected a file path, got {type(path).__name__}")
-    file = Path(path)
-    try:
-        data = file.read_bytes()
-    except FileNotFoundError:
-        raise input_error(str(path), "rules file not found", "check the path") from None
-    except OSError as exc:
-        raise input_error(str(path), f"cannot read ({exc.strerror})", "check the path and permissions") from None
-    if len(data) > MAX_TOML_BYTES:
-        raise input_error(str(path), f"is {len(data)} bytes", f"a rules file should be under {MAX_TOML_BYTES} bytes")
-    try:
-        text = data.decode("utf-8-sig")
-    except UnicodeDecodeError as exc:
-        raise input_error(str(path), f"not UTF-8 text (byte {exc.start})", "save the file as UTF-8") from None
+    from probeplan.inputs import read_text_input
+
+    text = read_text_input(path, what="rules file", max_bytes=MAX_TOML_BYTES)
     return parse_rules_text(text, filename=str(path))
 
 

@@ -474,21 +474,10 @@ def read_spectra_csv(
         µm, not strictly increasing, NaN or text cells, negative values where
         physical, ragged rows.
     """
+    from probeplan.inputs import read_text_input
+
     p = Path(path)
-    try:
-        raw = p.read_bytes()
-    except FileNotFoundError:
-        raise input_error(str(p), "file not found", "check the path") from None
-    except IsADirectoryError:
-        raise input_error(str(p), "is a folder, not a file", "give a CSV or TSV file") from None
-    except OSError as exc:
-        raise input_error(str(p), f"cannot be read ({exc.strerror})", "check the path and permissions") from None
-    if len(raw) > 64 * 1024 * 1024:
-        raise input_error(str(p), f"is {len(raw)} bytes", "a spectra table should be under 64 MiB")
-    try:
-        text = raw.decode("utf-8-sig")
-    except UnicodeDecodeError:
-        raise input_error(str(p), "is not UTF-8 text", "save it as a UTF-8 CSV or TSV") from None
+    text = read_text_input(p, what="spectra file")
     if not text.strip():
         raise input_error(str(p), "is empty", "give a header row and data rows")
     return parse_spectra_text(text, source=str(p), kind=kind, unit=unit)

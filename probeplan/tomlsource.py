@@ -110,9 +110,11 @@ def parse_toml_text(text: str, *, source: str) -> dict[str, Any]:
         m = re.search(r"line (\d+)", message)
         where = f"{source}:{m.group(1)}" if m else source
         raise input_error(where, f"is not valid TOML ({message})", "fix the syntax there") from None
+    except ValueError as exc:  # e.g. an integer of more digits than Python converts
+        raise input_error(source, f"is not usable TOML ({exc})", "write numbers of a sensible size") from None
 
 
-def load_toml(path: str | Path) -> tuple[dict[str, Any], str]:
+def load_toml(path: str | Path, *, what: str = "TOML file") -> tuple[dict[str, Any], str]:
     """Read and parse a TOML file; return (data, text).
 
     Raises
@@ -120,21 +122,10 @@ def load_toml(path: str | Path) -> tuple[dict[str, Any], str]:
     InputError
         Missing, unreadable, too large, not UTF-8, empty, or invalid TOML.
     """
+    from probeplan.inputs import read_text_input
+
     p = Path(path)
-    try:
-        raw = p.read_bytes()
-    except FileNotFoundError:
-        raise input_error(str(p), "file not found", "check the path") from None
-    except IsADirectoryError:
-        raise input_error(str(p), "is a folder, not a file", "give a TOML file") from None
-    except OSError as exc:
-        raise input_error(str(p), f"cannot be read ({exc.strerror})", "check the path and permissions") from None
-    if len(raw) > MAX_TOML_BYTES:
-        raise input_error(str(p), f"is {len(raw)} bytes", f"a plan file should be under {MAX_TOML_BYTES} bytes")
-    try:
-        text = raw.decode("utf-8-sig")
-    except UnicodeDecodeError:
-        raise input_error(str(p), "is not UTF-8 text", "save it as UTF-8") from None
+    text = read_text_input(p, what=what, max_bytes=MAX_TOML_BYTES)
     if not text.strip():
         raise input_error(str(p), "is empty", "write the plan's tables, starting from the demo plan")
     return parse_toml_text(text, source=str(p)), text

@@ -54,7 +54,7 @@ def test_bad_user_tissue_names_the_file(_isolated_user_library):
     with pytest.raises(InputError, match=r"bad.toml: .*fraction must lie in 0-1"):
         tissue.tissue_preset("bad")
     (_isolated_user_library / "tissues" / "broken.toml").write_text("blood_fraction = = 1\n")
-    with pytest.raises(InputError, match=r"broken.toml: is not valid TOML"):
+    with pytest.raises(InputError, match=r"broken.toml:1: is not valid TOML"):
         tissue.tissue_preset("broken")
 
 

@@ -13,8 +13,8 @@ from typing import Any
 
 from probeplan.errors import input_error
 
-__all__ = ["add_model_options", "add_optics_options", "add_target_options", "probes_from_args", "parse_probe", "make_filter", "make_camera", "make_source",
-           "make_lens", "tissue_from_args", "channels_from_args"]
+__all__ = ["add_model_options", "add_optics_options", "add_target_options", "probes_from_args", "parse_probe",
+           "make_filter", "make_camera", "make_source", "make_lens", "tissue_from_args", "channels_from_args"]
 
 
 def add_model_options(parser: argparse.ArgumentParser, *, probes_required: bool = True) -> None:
@@ -44,13 +44,13 @@ def add_optics_options(group) -> None:
     group.add_argument("--binning", type=int, default=1, help="pixels binned per side (default 1)")
     group.add_argument("--f-number", type=float, default=2.0, help="lens f-number (default 2)")
     group.add_argument("--magnification", type=float, default=0.1, help="lens magnification (default 0.1)")
-    group.add_argument("--exposure-s", type=float, default=0.1, help="exposure per channel in s (default 0.1)")
+    group.add_argument("--exposure-s", type=float, default=0.05, help="exposure per channel in s (default 0.05)")
 
 
 def add_target_options(group) -> None:
     """Target inclusion, uptake and autofluorescence options (shared by depth, channels and design)."""
     group.add_argument("--size-mm", type=float, default=2.0, help="target inclusion diameter in mm (default 2)")
-    group.add_argument("--concentration-uM", type=float, default=0.1, help="probe concentration in the target, µM")
+    group.add_argument("--concentration-uM", type=float, default=0.01, help="probe concentration in the target, µM (default 0.01)")
     group.add_argument("--uptake-ratio", type=float, default=5.0, help="target-to-background uptake ratio (default 5)")
     group.add_argument("--af-yield", type=float, default=None,
                        help="autofluorescence yield (cm^-1 at 650 nm excitation; an assumption; 0 switches it off)")
@@ -117,7 +117,7 @@ def make_source(args: argparse.Namespace):
     """The excitation source from the options."""
     from probeplan import optics
 
-    if args.led_fwhm_nm:
+    if args.led_fwhm_nm is not None:
         return optics.LED(args.excitation_nm, args.led_fwhm_nm)
     return optics.Laser(args.excitation_nm, args.linewidth_nm)
 

@@ -28,7 +28,10 @@ def run(args: argparse.Namespace) -> int:
     from probeplan.commands._build import channels_from_args, probes_from_args, tissue_from_args
     from probeplan.commands._common import print_json, print_table
     from probeplan.fluorescence import Autofluorescence
+    from probeplan.outputs import refuse_input_paths
 
+    if args.plot:
+        refuse_input_paths([args.plot], [s.partition("@")[2] for s in args.probe if "@" in s], option="--plot")
     probes = probes_from_args(args)
     channels = channels_from_args(args, len(probes))
     depths = args.depth_mm or [1.0, 3.0, 5.0]
