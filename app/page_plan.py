@@ -10,7 +10,7 @@ import zipfile
 import streamlit as st
 from page_common import DEMO_DIR, fmt, guard, session_folder, show_notes
 
-__all__ = ["plan_view", "report_from_evaluation"]
+__all__ = ["plan_view"]
 
 _MAX_TEXT_BYTES = 1_000_000
 
@@ -45,33 +45,12 @@ def _reset_demo() -> None:
     st.session_state.pop("plan_evaluation", None)
 
 
-def report_from_evaluation(ev):
-    """A :class:`probeplan.report.Report` with every check, table, figure and assumption of an evaluation."""
-    from probeplan.plots import depth_figure
-    from probeplan.report import HEAVY_METAL_CAUTION, LASER_CAUTION, Report
-
-    rep = Report(title=str(ev.plan.study["title"]), subtitle="Study plan check",
-                 cautions=[LASER_CAUTION] + ([HEAVY_METAL_CAUTION.format(metals=" and ".join(ev.heavy_metals))]
-                                             if ev.heavy_metals else []))
-    rep.summary.append("Every rule passes." if ev.passed else
-                       "Rules broken: " + ", ".join(c.rule_id for c in ev.failed) + ".")
-    rep.summary += list(ev.warnings)
-    rep.add_table("checks", "Rule checks", ev.check_rows())
-    for t in ev.tables:
-        rep.add_table(t.name, t.title, t.rows, t.columns, t.note)
-    if ev.profiles:
-        target = float(ev.plan.target["depth_mm"])
-        rep.add_figure("SBR, SNR and blur against depth", depth_figure(ev.profiles, target_depth_mm=target))
-    rep.assumptions = list(ev.assumptions)
-    return rep
-
-
 def _report_files(ev) -> tuple[bytes, bytes]:
     """(report.html bytes, zip bytes of every report file), written in the session folder."""
-    from probeplan.report import write_report
+    from probeplan.report import plan_report, write_report
 
     out = session_folder() / "report"
-    written = write_report(report_from_evaluation(ev), out)
+    written = write_report(plan_report(ev), out)
     html = written["html"].read_bytes()
     buf = io.BytesIO()
     with zipfile.ZipFile(buf, "w", zipfile.ZIP_DEFLATED) as zf:

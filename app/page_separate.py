@@ -49,30 +49,11 @@ def _default_rois() -> str:
 
 
 def maps_png(maps: np.ndarray, titles: list[str], unit: str, *, cmap: str = "magma") -> bytes:
-    """One image per map with its own colour bar (presentation only)."""
-    from probeplan.plots import new_figure
+    """PNG of :func:`probeplan.plots.maps_figure`."""
+    from probeplan.plots import maps_figure
     from probeplan.report import figure_png_bytes
 
-    n = len(titles)
-    cols = min(n, 4)
-    rows = (n + cols - 1) // cols
-    fig, axes = new_figure(rows, cols, width=3.4 * cols, height=3.0)
-    for i, ax in enumerate(axes.ravel()):
-        if i >= n:
-            ax.set_axis_off()
-            continue
-        m = np.asarray(maps[i], dtype=np.float64)
-        while m.ndim > 2:  # Z or T planes: show the first
-            m = m[0]
-        finite = m[np.isfinite(m)]
-        hi = float(np.percentile(finite, 99.5)) if finite.size else 1.0
-        im = ax.imshow(m, cmap=cmap, vmin=min(0.0, float(finite.min())) if finite.size else 0.0,
-                       vmax=hi if hi > 0 else None, interpolation="nearest")
-        ax.set_title(titles[i], fontsize=9)
-        ax.set_xlabel("x (pixel)")
-        ax.set_ylabel("y (pixel)")
-        fig.colorbar(im, ax=ax, label=unit, shrink=0.85)
-    return figure_png_bytes(fig, dpi=FIGURE_DPI)
+    return figure_png_bytes(maps_figure(maps, titles, unit, cmap=cmap), dpi=FIGURE_DPI)
 
 
 def _overlay(abundances: np.ndarray):

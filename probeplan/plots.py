@@ -13,7 +13,8 @@ from collections.abc import Sequence
 
 import numpy as np
 
-__all__ = ["PALETTE", "colour", "depth_figure", "spectra_figure", "crosstalk_figure", "channels_figure", "new_figure"]
+__all__ = ["PALETTE", "colour", "depth_figure", "spectra_figure", "crosstalk_figure", "channels_figure", "maps_figure",
+           "new_figure"]
 
 #: Probe colours: deep blue, orange, teal, magenta, ochre, grey-violet, dark green, brick.
 PALETTE = ("#1f4e9c", "#e07b00", "#1b9e8a", "#b8337a", "#c9a227", "#6f6a9b", "#2f6b2f", "#a04a2a")
@@ -118,4 +119,32 @@ def channels_figure(wavelength_nm, probes, channels, crosstalk, probe_names, cha
                    [(ch.name, ch.emission_filter.transmission(wl)) for ch in channels],
                    excitation_nm=float(channels[0].source.centre_nm), ax=left)
     crosstalk_figure(crosstalk, probe_names, channel_names, title=f"crosstalk at {depth_mm:g} mm", ax=right)
+    return fig
+
+
+def maps_figure(maps, titles: Sequence[str], unit: str, *, cmap: str = "magma"):
+    """One image per map (first plane of Z/T stacks), each with its own colour bar labelled ``unit``.
+
+    The colour scale runs from min(0, minimum) to the 99.5th percentile, so a
+    few bright pixels do not wash out the rest.
+    """
+    n = len(titles)
+    cols = min(n, 4)
+    rows = (n + cols - 1) // cols
+    fig, axes = new_figure(rows, cols, width=3.4 * cols, height=3.0)
+    for i, ax in enumerate(axes.ravel()):
+        if i >= n:
+            ax.set_axis_off()
+            continue
+        m = np.asarray(maps[i], dtype=np.float64)
+        while m.ndim > 2:
+            m = m[0]
+        finite = m[np.isfinite(m)]
+        hi = float(np.percentile(finite, 99.5)) if finite.size else 1.0
+        im = ax.imshow(m, cmap=cmap, vmin=min(0.0, float(finite.min())) if finite.size else 0.0,
+                       vmax=hi if hi > 0 else None, interpolation="nearest")
+        ax.set_title(titles[i], fontsize=9)
+        ax.set_xlabel("x (pixel)")
+        ax.set_ylabel("y (pixel)")
+        fig.colorbar(im, ax=ax, label=unit, shrink=0.85)
     return fig
