@@ -59,6 +59,8 @@ def _matrix(m) -> np.ndarray:
         raise input_error("response", f"shape {arr.shape}", "give a (C, K) matrix, channels by probes")
     if not np.all(np.isfinite(arr)):
         raise input_error("response", "contains NaN or inf", "check the inputs of the channel model")
+    if np.any(arr < 0):
+        raise input_error("response", f"contains a negative value ({arr.min():g})", "responses are counts rates >= 0")
     return arr
 
 
@@ -156,7 +158,13 @@ def unmixed_snr(response, noise_var, abundance=1.0) -> np.ndarray:
     """SNR of each probe's unmixed estimate: abundance / √[(MᵀΣ⁻¹M)⁻¹]ₖₖ, shape (..., K)."""
     m = _matrix(response)
     var = np.asarray(noise_var, dtype=np.float64)
-    return np.asarray(abundance, dtype=np.float64) / np.sqrt(_unmixed_variance(m, var))
+    if var.shape != m.shape[:-1] or np.any(~np.isfinite(var)) or np.any(var <= 0):
+        raise input_error("noise_var", f"shape {var.shape}, needs {m.shape[:-1]} positive values",
+                          "give one positive variance per channel")
+    a = np.asarray(abundance, dtype=np.float64)
+    if np.any(~np.isfinite(a)) or np.any(a < 0):
+        raise input_error("abundance", f"got {abundance!r}", "give finite abundances >= 0")
+    return a / np.sqrt(_unmixed_variance(m, var))
 
 
 def response_matrix(
@@ -210,7 +218,7 @@ def reference_spectra(
     """
     from probeplan.references import references_from_matrix
 
-    if not gain_e_per_count > 0:
+    if not 0 < gain_e_per_count < np.inf:
         raise input_error("gain_e_per_count", f"got {gain_e_per_count!r}", "give the camera gain in e-/count (> 0)")
     resp = response_matrix(tissue, probes, channels, irradiance_mw_per_cm2=irradiance_mw_per_cm2,
                            depth_mm=[float(depth_mm)], target_size_mm=target_size_mm)[0]
@@ -288,6 +296,8 @@ def channel_report(
     if len(probes) > len(channels):
         raise input_error("channels", f"{len(probes)} probes but only {len(channels)} channels",
                           "unmixing needs at least as many channels as probes: add channels or drop probes")
+    if not 1 <= uptake_ratio < np.inf:
+        raise input_error("uptake_ratio", f"got {uptake_ratio!r}", "give a finite target-to-background uptake ratio >= 1")
     tissue = tissue_preset(tissue) if isinstance(tissue, str) else tissue
     depth = np.atleast_1d(np.asarray(depth_mm, dtype=np.float64))
     resp = response_matrix(tissue, probes, channels, irradiance_mw_per_cm2=irradiance_mw_per_cm2, depth_mm=depth,

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import logging
 import pkgutil
 import sys
 from collections.abc import Sequence
@@ -35,6 +36,17 @@ class _Parser(argparse.ArgumentParser):
     def error(self, message: str) -> None:  # type: ignore[override]
         sys.stderr.write(f"{self.prog}: {message}; see '{self.prog} --help'\n")
         raise SystemExit(EXIT_BAD_INPUT)
+
+
+class _HeldRecords(logging.Handler):
+    """Keeps log records (warnings and above) instead of printing them."""
+
+    def __init__(self) -> None:
+        super().__init__(logging.WARNING)
+        self.records: list[logging.LogRecord] = []
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.records.append(record)
 
 
 def _command_modules() -> list[tuple[str, object]]:
@@ -82,8 +94,18 @@ def main(argv: Sequence[str] | None = None) -> int:
     if not getattr(args, "command", None):
         parser.print_help()
         return EXIT_BAD_INPUT
+    # tifffile logs each defect of a damaged file: held back, shown after a success, dropped
+    # after a refusal (whose one line says what matters); --debug shows them as they come.
+    tiff_log, held = logging.getLogger("tifffile"), _HeldRecords()
+    propagate = tiff_log.propagate
+    if not debug:
+        tiff_log.addHandler(held)
+        tiff_log.propagate = False
     try:
-        return int(args._run(args))
+        code = int(args._run(args))
+        for message in dict.fromkeys(r.getMessage() for r in held.records):
+            sys.stderr.write(f"probeplan {args.command}: tifffile: {message}\n")
+        return code
     except InputError as exc:
         if debug:
             raise
@@ -96,3 +118,6 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 130
     except BrokenPipeError:
         return EXIT_OK
+    finally:
+        tiff_log.removeHandler(held)
+        tiff_log.propagate = propagate

@@ -674,7 +674,8 @@ def _imaging(plan: Plan, model: PlanModel) -> dict[str, Any]:
     notes += report.notes
     imaging = EvaluationTable(
         "imaging", f"Predicted imaging at the target depth ({tgt['depth_mm']:g} mm, {plan.target['tissue']})", rows,
-        note=f"Per binned pixel per exposure; each probe read in its own (brightest) channel. depth_at_sbr_threshold_mm: where SBR falls below "
+        note=f"Per binned pixel per exposure; each probe read in its own (brightest) channel. "
+             f"depth_at_sbr_threshold_mm: where SBR falls below "
              f"{DEFAULT_SBR_THRESHOLD:g} (empty: not within the profile). SBR = (S + B) / B; SNR = S / sqrt(S + B + "
              f"read noise^2). Unmixing condition number {cond:.3g} (separable below {SEPARABLE_CONDITION_LIMIT:g}).")
     channels = EvaluationTable("channels", "Channels: crosstalk and pixel filling at the target depth", ch_rows,

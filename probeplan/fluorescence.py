@@ -116,7 +116,9 @@ def photons_per_s_per_mw(wavelength_nm) -> np.ndarray:
     >>> f"{float(photons_per_s_per_mw(800.0)):.4e}"
     '4.0273e+15'
     """
-    wl = np.asarray(wavelength_nm, dtype=np.float64)
+    from probeplan.spectra import as_wavelengths_nm
+
+    wl = as_wavelengths_nm(wavelength_nm)
     return W_PER_MW * wl * M_PER_NM / (PLANCK_J_S * LIGHT_SPEED_M_PER_S)
 
 
@@ -186,7 +188,11 @@ def disc_escape_fraction(radius_mm, depth_mm, mu_a_per_cm, mu_s_prime_per_cm, n:
     mu_eff_per_mm = transport.mu_eff(mu_a_per_cm, mu_s_prime_per_cm) / MM_PER_CM
     z_b_mm = transport.extrapolated_boundary_cm(mu_a_per_cm, mu_s_prime_per_cm, n) * MM_PER_CM
     d = np.asarray(depth_mm, dtype=np.float64)
+    if not np.isfinite(d).all() or (d < 0).any():
+        raise input_error("depth_mm", f"got {depth_mm!r}", "give finite depths in mm >= 0")
     r = np.asarray(radius_mm, dtype=np.float64)
+    if np.isnan(r).any() or (r < 0).any():
+        raise input_error("radius_mm", f"got {radius_mm!r}", "give a disc radius in mm >= 0 (np.inf for the whole surface)")
     d2 = d + 2.0 * z_b_mm
     r1 = np.sqrt(d**2 + r**2)
     r2 = np.sqrt(d2**2 + r**2)

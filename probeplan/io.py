@@ -116,9 +116,39 @@ def _ome_details(ome_xml: str) -> tuple[tuple[str, ...] | None, tuple[float, flo
             ux = UM_PER_UNIT[pixels.get("PhysicalSizeXUnit", "µm")]
             uy = UM_PER_UNIT[pixels.get("PhysicalSizeYUnit", "µm")]
             size = (float(sy) * uy, float(sx) * ux)
-    except (KeyError, ValueError):
+            if not all(math.isfinite(v) and v > 0 for v in size):
+                size = None  # NaN, inf, zero or negative: unknown, as for an unreadable value
+    except (KeyError, ValueError, TypeError):
         size = None
     return channel_names, size
+
+
+def _ifd_chain_broken(tif, file_size: int) -> bool:
+    """True when the last page read points on to a next IFD outside the file (or back into the chain).
+
+    tifffile stops quietly (with a log message) at such a pointer, which a file cut short
+    leaves behind; the pages before it would otherwise pass for the whole stack.
+    """
+    import struct
+
+    fmt = tif.tiff
+    if fmt.is_ndpi or not len(tif.pages):
+        return False
+    n_pages = len(tif.pages)  # indexes the whole chain
+    offsets = {int(p.offset) for p in tif.pages if p is not None}
+    last = int(tif.pages[n_pages - 1].offset)
+    fh = tif.filehandle
+    fh.seek(last)
+    raw = fh.read(fmt.tagnosize)
+    if len(raw) != fmt.tagnosize:
+        return True
+    n_tags = struct.unpack(fmt.tagnoformat, raw)[0]
+    fh.seek(last + fmt.tagnosize + n_tags * fmt.tagsize)
+    raw = fh.read(fmt.offsetsize)
+    if len(raw) != fmt.offsetsize:
+        return True
+    following = struct.unpack(fmt.offsetformat, raw)[0]
+    return following != 0 and (following >= file_size or following in offsets)
 
 
 def _inspect(path: Path, channel_axis: int | None) -> StackInfo:
@@ -139,20 +169,24 @@ def _inspect(path: Path, channel_axis: int | None) -> StackInfo:
             axes = series.axes.upper()
             file_dtype = np.dtype(series.dtype).newbyteorder(tif.byteorder)
             offset = series.dataoffset
+            missing = sum(page is None for page in series.pages)
+            if missing:  # tifffile would fill them with zeros
+                raise input_error(where, f"the metadata describe {len(series.pages)} image planes but {missing} are "
+                                  "not in the file", _FIX_TIFF)
             for page in series.pages:
-                if page is None:
-                    continue
                 for off, count in zip(page.dataoffsets, page.databytecounts, strict=False):
                     if off + count > file_size:
                         raise input_error(
                             where, f"truncated: image data ends at byte {off + count} but the file has {file_size}",
                             _FIX_TIFF,
                         )
+            if _ifd_chain_broken(tif, file_size):
+                raise input_error(where, "truncated or damaged: the chain of image pages breaks off", _FIX_TIFF)
             names, pixel_size = _ome_details(tif.ome_metadata) if tif.is_ome and tif.ome_metadata else (None, None)
     except InputError:
         raise
-    except (OSError, ValueError, KeyError, IndexError, tifffile.TiffFileError) as exc:
-        raise input_error(where, f"cannot be read as TIFF ({exc})", _FIX_TIFF) from None
+    except Exception as exc:  # tifffile raises many kinds (struct.error, RuntimeError, ...) on damaged files
+        raise input_error(where, f"cannot be read as TIFF ({type(exc).__name__}: {exc})", _FIX_TIFF) from None
     if len(shape) < 3:
         raise input_error(where, f"shape {shape} has no channel axis", "give a stack of several channels (C, Y, X)")
     if offset is not None and offset + math.prod(shape) * file_dtype.itemsize > file_size:
@@ -416,6 +450,7 @@ class StackWriter:
         self.axes = _check_axes(axes, len(self.shape))
         self.dtype = np.dtype(dtype)
         self.row_axis = self.axes.index("Y")
+        self._fd = None
         self._ctx = atomic_path(self.path)
         self._tmp = self._ctx.__enter__()
         try:

@@ -12,7 +12,7 @@ import csv
 import io
 import json
 import os
-import tempfile
+import secrets
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -34,28 +34,22 @@ __all__ = [
 _FILE_MODE = 0o666
 
 
-def _umask() -> int:
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
-
-
 @contextlib.contextmanager
 def atomic_path(target: str | Path, *, suffix: str | None = None) -> Iterator[Path]:
     """Yield a temporary path beside ``target``; rename it onto ``target`` on success.
 
     On any exception (including ``KeyboardInterrupt``) the temporary file is
-    removed and ``target`` is left as it was.
+    removed and ``target`` is left as it was.  The temporary name is chosen
+    before the file is created, so an interrupt that lands just after the file
+    appears still finds and removes it.
     """
     target = Path(target)
     folder = target.parent if str(target.parent) else Path(".")
     if not folder.is_dir():
         raise input_error(str(target), f"folder {str(folder)!r} does not exist", "create it first or choose another --out")
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=suffix or ".part", dir=folder)
-    os.close(fd)
-    tmp_path = Path(tmp)
-    os.chmod(tmp_path, _FILE_MODE & ~_umask())  # mkstemp makes 0600; outputs get the usual file mode
+    tmp_path = folder / f".{target.name}.{secrets.token_hex(6)}{suffix or '.part'}"
     try:
+        os.close(os.open(tmp_path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, _FILE_MODE))
         yield tmp_path
         os.replace(tmp_path, target)
     except BaseException:

@@ -35,6 +35,9 @@ from probeplan.tomlsource import format_path, line_of, load_toml, parse_toml_tex
 
 __all__ = ["Plan", "load_plan", "parse_plan_text", "SCHEMA", "ROUTES", "SPECIES"]
 
+#: Numbers at or beyond this size (TOML's 64-bit integer range) are refused as too large.
+_LARGEST_INTEGER = 2**63
+
 ROUTES = ("iv", "iv_slow", "ip", "sc", "im", "oral")
 SPECIES = ("mouse", "rat")
 
@@ -193,7 +196,12 @@ class _Validator:
                 raise self.fail(path, f"expected a number, got {_show(raw)}", f"write a plain number{_unit_hint(path)}")
             if spec.kind == "integer" and not (isinstance(raw, int) or float(raw).is_integer()):
                 raise self.fail(path, f"expected a whole number, got {_show(raw)}", "write a whole number")
-            v = float(raw) if spec.kind == "number" else int(raw)
+            try:
+                v = float(raw) if spec.kind == "number" else int(raw)
+                if abs(v) >= _LARGEST_INTEGER:
+                    raise OverflowError
+            except OverflowError:
+                raise self.fail(path, "number too large", f"write a plain number{_unit_hint(path)}") from None
             if not math.isfinite(v):
                 raise self.fail(path, f"got {_show(raw)}", "write a finite number")
             self.bounds(path, spec, v)
@@ -346,7 +354,7 @@ def load_plan(path: str | Path) -> Plan:
     InputError
         One line naming the file, line, key path and fix.
     """
-    data, text = load_toml(path)
+    data, text = load_toml(path, what="plan file")
     out = _validate(data, text, str(path))
     return Plan(path=Path(path), text=text, source=str(path), **out)
 

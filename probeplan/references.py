@@ -81,10 +81,16 @@ class ReferenceSpectra:
         Raises
         ------
         InputError
-            When the stack has a channel the references do not name, or the counts differ.
+            When the stack has a channel the references do not name, names a channel twice, or the counts differ.
         """
         if channel_names is None or self.channel_names is None:
             return self
+        repeated = sorted({c for c in channel_names if list(channel_names).count(c) > 1})
+        if repeated:
+            raise input_error(
+                where, f"channel name(s) {repeated} appear more than once, so rows cannot be matched by name",
+                "give each channel a distinct name in the file's metadata",
+            )
         missing = [c for c in channel_names if c not in self.channel_names]
         if missing:
             raise input_error(
@@ -187,14 +193,14 @@ def read_references_csv(path: str | os.PathLike, *, normalise: str | None = "sum
     """
     path = Path(path)
     where = str(path)
-    try:
-        text = path.read_text(encoding="utf-8-sig")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise input_error(where, f"cannot be read ({exc})", "give a readable UTF-8 CSV file") from None
+    from probeplan.inputs import read_text_input
+
+    text = read_text_input(path, what="reference spectra CSV")
     lines = [(i + 1, line) for i, line in enumerate(text.splitlines()) if line.strip() and not line.lstrip().startswith("#")]
     if not lines:
         raise input_error(where, "no header and no rows", "write a header 'channel,<component>,...' and one row per channel")
-    rows = list(csv.reader([line for _, line in lines]))
+    # one row per line: an unbalanced quote must not swallow the lines after it
+    rows = [next(csv.reader([line]), []) for _, line in lines]
     header = [h.strip() for h in rows[0]]
     hline = lines[0][0]
     if not header or header[0].lower() != "channel":

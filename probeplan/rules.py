@@ -314,6 +314,10 @@ def load_rules(path: str | Path | None = None) -> Rules:
     from probeplan.inputs import read_text_input
 
     text = read_text_input(path, what="rules file", max_bytes=MAX_TOML_BYTES)
+    if not any(line.strip() and not line.lstrip().startswith("#") for line in text.splitlines()):
+        # an empty copy must not pass silently for the institution's rules
+        raise input_error(str(path), "holds no rules (empty or only comments)",
+                          "write the institution's limits in it (see demo_tissue/rules.toml), or omit --rules")
     return parse_rules_text(text, filename=str(path))
 
 

@@ -352,9 +352,24 @@ class QcAccumulator:
         return qc
 
 
+def _check_saturation(saturation) -> None:
+    if saturation is not None and not float(saturation) > 0:  # NaN fails too; inf means no saturation
+        raise input_error("saturation", f"got {saturation}", "give the camera's full scale in counts (> 0), or omit it")
+
+
+def _check_noise_model(gain_e_per_count, read_noise_e, variance_floor_counts) -> None:
+    for name, v in (("gain_e_per_count", gain_e_per_count), ("variance_floor_counts", variance_floor_counts)):
+        if not 0 < float(v) < np.inf:
+            raise input_error(name, f"{v} is not a finite number > 0", "give a positive value")
+    if not 0 <= float(read_noise_e) < np.inf:
+        raise input_error("read_noise_e", f"{read_noise_e} is not a finite number >= 0",
+                          "give the read noise in e- rms (>= 0)")
+
+
 def _prepare(stack, references, method, channel_axis, offset, saturation, component_names=None):
     if method not in METHODS:
         raise input_error("method", f"{method!r} is not known", f"choose one of {', '.join(METHODS)}")
+    _check_saturation(saturation)
     data = _channel_first(stack, channel_axis)
     M, names = design_matrix(references, n_channels=data.shape[0], offset=offset, component_names=component_names)
     sat = default_saturation(data.dtype) if saturation is None else float(saturation)
@@ -460,11 +475,7 @@ def unmix_stack(stack, references, *, method: str = "nnls", channel_axis: int = 
     ((2, 2, 2), (2, 2, 2), 4)
     """
     data, M, names, sat = _prepare(stack, references, method, channel_axis, offset, saturation)
-    for name, v in (("gain_e_per_count", gain_e_per_count), ("variance_floor_counts", variance_floor_counts)):
-        if not v > 0:
-            raise input_error(name, f"{v} is not > 0", "give a positive value")
-    if not read_noise_e >= 0:
-        raise input_error("read_noise_e", f"{read_noise_e} is negative", "give the read noise in e- rms (>= 0)")
+    _check_noise_model(gain_e_per_count, read_noise_e, variance_floor_counts)
     cond = _cond_quiet(M)
     C, K = M.shape
     Y = data.reshape(C, -1)
@@ -646,8 +657,11 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
 
     if method not in METHODS:
         raise input_error("method", f"{method!r} is not known", f"choose one of {', '.join(METHODS)}")
-    if not memory_limit_mb > 0:
-        raise input_error("memory_limit_mb", f"{memory_limit_mb} is not > 0", "give a positive memory bound")
+    if not 0 < memory_limit_mb < np.inf:
+        raise input_error("memory_limit_mb", f"{memory_limit_mb} is not a finite number > 0",
+                          "give a positive memory bound in MiB")
+    _check_saturation(saturation)
+    _check_noise_model(gain_e_per_count, read_noise_e, variance_floor_counts)
     reader = open_stack(stack_path, channel_axis=channel_axis)
     info = reader.info
     aux = {}

@@ -25,12 +25,12 @@ def test_json_exit_0_and_same_winner_as_the_library(capsys):
     assert counts["total_combinations"] == 10 * 10
     assert counts["evaluated"] + counts["pruned"] == counts["total_combinations"]
     assert len(out["candidates"]) == 3
-    # the same search through the library (the command's defaults: 0.1 s, 0.1 µM, f/2, 0.1x, 2 mm target)
+    # the same search through the library (the command's defaults: 0.05 s, 0.01 µM, f/2, 0.1x, 2 mm target)
     probes = [dots.make_probe("CdTe", p) for p in (660, 680, 700, 720, 690)]
     filters = [optics.parse_filter(f) for f in ("660/20", "700/40", "680/20", "710/20", "740/20")]
     lib = design("soft tissue", probes, filters, sources=optics.Laser(532.0, 1.0),
                  camera=optics.camera("si-deep-depletion"), lens=optics.Lens(2.0, 0.1), k=2, depth_mm=2.0,
-                 exposure_s=0.1, concentration_uM=0.1, top=3)
+                 exposure_s=0.05, concentration_uM=0.01, top=3)
     best = out["candidates"][0]
     assert best["probes"] == list(lib.best.probes) and best["filters"] == list(lib.best.filters)
     assert best["worst_snr"] == pytest.approx(lib.best.worst_snr, rel=1e-12)

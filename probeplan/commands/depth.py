@@ -22,6 +22,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    import math
     import warnings
 
     import numpy as np
@@ -38,7 +39,7 @@ def run(args: argparse.Namespace) -> int:
     if len(filters) not in (1, len(probes)):
         raise input_error("--filter", f"{len(filters)} filters for {len(probes)} probes",
                           "give one --filter per --probe (or one for all)")
-    if args.depth_max_mm <= 0 or args.depth_step_mm <= 0 or args.depth_step_mm > args.depth_max_mm:
+    if not (0 < args.depth_step_mm <= args.depth_max_mm < math.inf):  # also refuses NaN
         raise input_error("--depth-max-mm/--depth-step-mm", f"got {args.depth_max_mm:g}/{args.depth_step_mm:g}",
                           "give a positive maximum depth and a smaller positive step")
     outputs = [p for p in (args.csv, args.plot) if p]

@@ -73,7 +73,7 @@ def _load_manifest(path) -> dict:
         return {"entries": {}}
     try:
         data = json.loads(path.read_text(encoding="utf-8"))
-        if not isinstance(data.get("entries"), dict):
+        if not isinstance(data, dict) or not isinstance(data.get("entries"), dict):
             raise ValueError("no 'entries'")
         return data
     except (ValueError, OSError) as exc:
@@ -83,9 +83,11 @@ def _load_manifest(path) -> dict:
 def _is_done(entry, stack, settings) -> bool:
     from pathlib import Path
 
-    if not entry or entry.get("settings_sha256") != settings or entry.get("input_sha256") != _sha256(stack):
+    if not isinstance(entry, dict) or not isinstance(entry.get("outputs"), dict):
         return False
-    for p, digest in entry.get("outputs", {}).items():
+    if entry.get("settings_sha256") != settings or entry.get("input_sha256") != _sha256(stack):
+        return False
+    for p, digest in entry["outputs"].items():
         if not Path(p).is_file() or _sha256(p) != digest:
             return False
     return True
@@ -109,6 +111,7 @@ def run(args: argparse.Namespace) -> int:
 
     stack = Path(args.stack)
     out = Path(args.out)
+    created = None
     if args.references_from_plan:
         from probeplan.evaluate import plan_references
         from probeplan.plan import load_plan
@@ -127,8 +130,20 @@ def run(args: argparse.Namespace) -> int:
             raise input_error(str(stack), "holds no .tif/.tiff stack", "give a folder of TIFF stacks or one stack file")
         if out.exists() and not out.is_dir():
             raise input_error("--out", f"{str(out)!r} is a file but STACK is a folder", "give an output folder")
-        out.mkdir(parents=True, exist_ok=True)
+        if out.resolve() == stack.resolve():
+            raise input_error("--out", f"{str(out)!r} is the input folder", "give a separate output folder")
         targets = [(s, out / (s.name.split(".")[0] + ".ome.tif")) for s in stacks]
+        by_target: dict = {}
+        for s, t in targets:
+            if t in by_target:
+                raise input_error(str(stack), f"{by_target[t].name!r} and {s.name!r} would both be written to {t.name!r}",
+                                  "rename one of them (names must differ before the first '.')")
+            by_target[t] = s
+        # The outermost folder this command creates, removed again if no stack is finished.
+        for parent in (out, *out.absolute().parents):
+            if parent.exists():
+                break
+            created = parent
         folder = out
     else:
         if not stack.exists():
@@ -146,6 +161,9 @@ def run(args: argparse.Namespace) -> int:
         if args.resume:
             raise
         manifest = {"entries": {}}
+    for option, p in (("--dark", args.dark), ("--flat", args.flat)):
+        if p and not Path(p).is_file():
+            raise input_error(str(p), "file not found", f"give an existing TIFF stack to {option}")
     settings = _settings_digest(args, refs)
     all_inputs = [s for s, _ in targets] + [args.references] + ([args.dark] if args.dark else []) + (
         [args.flat] if args.flat else []) + label_files
@@ -153,8 +171,10 @@ def run(args: argparse.Namespace) -> int:
     def _terminate(signum, frame):
         raise KeyboardInterrupt
 
-    previous = signal.signal(signal.SIGTERM, _terminate)
     summary = []
+    if created is not None:
+        out.mkdir(parents=True, exist_ok=True)
+    previous = signal.signal(signal.SIGTERM, _terminate)
     try:
         for s, target in targets:
             key = s.name
@@ -188,6 +208,12 @@ def run(args: argparse.Namespace) -> int:
                 "seconds": round(time.perf_counter() - t0, 2), "outputs": {k: str(v) for k, v in result.outputs.items()},
                 "condition_number": qc["condition_number"], "mean_abundance": qc["mean_abundance"],
             })
+    except BaseException:
+        if created is not None and not any(row["status"] == "done" for row in summary):
+            import shutil
+
+            shutil.rmtree(created, ignore_errors=True)
+        raise
     finally:
         signal.signal(signal.SIGTERM, previous)
     if args.json:

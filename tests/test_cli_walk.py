@@ -1,0 +1,304 @@
+"""Walk every subcommand with bad inputs: exit 2, a short message naming the file or option and the fix, no output.
+
+Subcommands are discovered as ``probeplan.cli`` discovers them.  Each one with a file input is
+given that file missing, empty, truncated (the first half of a valid demo file), of the wrong
+type (a PNG or a TOML file where a TIFF/CSV is expected) and in the wrong unit; numeric options
+are given NaN, a negative number and text.  The checks: exit status 2, at most three lines on
+stderr naming the file (or option) with a fix (``where: problem; fix``), no traceback, and no
+partial output (the output path does not exist afterwards, an existing output folder is
+unchanged).  ``demo`` runs the whole study, so only its bad ``--out`` is tried here (it runs in
+tests/test_demo.py); ``app`` starts a server, so only its bad options are tried.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from probeplan.cli import _command_modules, main
+
+DEMO = Path(__file__).resolve().parents[1] / "demo_tissue"
+COMMANDS = [name for name, _ in _command_modules()]
+
+#: A minimal PNG (8-bit greyscale 1x1), a file of the wrong type for every input.
+PNG = bytes.fromhex("89504e470d0a1a0a0000000d49484452000000010000000108000000003a7e9b55"
+                    "0000000a4944415478da63600000000200015e2ed4cb0000000049454e44ae426082")
+
+
+def _emission_csv(unit: str = "nm") -> str:
+    wl = np.arange(640.0, 781.0, 10.0)
+    values = np.exp(-0.5 * ((wl - 700.0) / 15.0) ** 2)
+    if unit == "um":  # the same curve with wavelengths in micrometres
+        return "wavelength (µm),dot\n" + "".join(f"{w / 1000:g},{v:.4f}\n" for w, v in zip(wl, values, strict=True))
+    return "# invented emission curve\nwavelength_nm,dot\n" + "".join(f"{w:g},{v:.4f}\n" for w, v in
+                                                                       zip(wl, values, strict=True))
+
+
+def _truncated(data: bytes) -> bytes:
+    """The first half of a file; a text table is cut mid-row, just after a separator, as a copy cut short is.
+
+    (A CSV cut exactly at the end of a row is a valid, shorter table: nothing can tell it apart.)
+    """
+    half = data[: len(data) // 2]
+    if half.isascii() and b"," in half and not half.startswith(b"II"):
+        return half[: half.rindex(b",") + 1]
+    return half
+
+
+def _snapshot(folder: Path) -> dict:
+    return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+def _run(argv, capsys):
+    code = main([str(a) for a in argv])
+    captured = capsys.readouterr()
+    return code, captured.out, captured.err
+
+
+def _assert_refused(code, err, *names):
+    assert code == 2, f"exit {code}, stderr: {err!r}"
+    assert "Traceback" not in err
+    lines = [line for line in err.splitlines() if line.strip()]
+    assert 1 <= len(lines) <= 3, f"stderr has {len(lines)} lines: {err!r}"
+    assert ";" in err, f"no fix given: {err!r}"
+    assert any(n in err for n in names), f"none of {names} named in {err!r}"
+
+
+# --------------------------------------------------------------------------- file inputs, per command
+
+def _bad_files(tmp_path: Path, kind: str) -> dict[str, tuple[Path, str]]:
+    """Bad versions of one input kind: case -> (path, text the message must contain)."""
+    good = {
+        "spectra": _emission_csv().encode(),
+        "references": (DEMO / "references.csv").read_bytes(),
+        "stack": (DEMO / "stack.tif").read_bytes(),
+        "plan": (DEMO / "plan.toml").read_bytes(),
+        "rules": (DEMO / "rules.toml").read_bytes(),
+    }[kind]
+    suffix = {"spectra": ".csv", "references": ".csv", "stack": ".tif", "plan": ".toml", "rules": ".toml"}[kind]
+    wrong_unit = {
+        "spectra": _emission_csv("um").encode(),
+        # channel names in µm: they no longer name the stack's channels (665, 700, 780, 880 nm)
+        "references": good.replace(b"\n665,", b"\n0.665,").replace(b"\n700,", b"\n0.7,"),
+        # a stack whose channels are named in µm: no reference row matches them
+        "stack": None,
+        "plan": good.replace(b"dose_nmol_per_kg = 8", b"dose_mg_per_kg = 0.2", 1),
+        "rules": good.replace(b'iv = { value = 5.0, unit = "mL/kg"', b'iv = { value = 0.1, unit = "mL"', 1),
+    }[kind]
+    folder = tmp_path / "inputs"
+    folder.mkdir(exist_ok=True)
+    cases = {}
+    cases["missing"] = (folder / f"missing{suffix}", f"missing{suffix}")
+    for name, data in (("empty", b""), ("truncated", _truncated(good)), ("png", PNG),
+                       ("toml", b'[study]\ntitle = "not this file"\n'), ("wrong_unit", wrong_unit)):
+        if name == "toml" and kind in ("plan", "rules"):
+            continue
+        path = folder / f"{name}{suffix}"
+        if kind == "stack" and name == "wrong_unit":
+            from probeplan.io import write_stack
+
+            write_stack(path, np.zeros((4, 8, 8), np.uint16), channel_names=["0.665", "0.7", "0.78", "0.88"],
+                        dtype=np.uint16)
+        else:
+            path.write_bytes(data)
+        cases[name] = (path, path.name)
+    return cases
+
+
+def _file_cases():
+    out = []
+    for kind, commands in (("spectra", ["depth", "channels", "design"]), ("references", ["unmix"]),
+                           ("stack", ["unmix"]), ("plan", ["plan", "check"]), ("rules", ["plan", "check"])):
+        for command in commands:
+            for case in ("missing", "empty", "truncated", "png", "toml", "wrong_unit"):
+                if case == "toml" and kind in ("plan", "rules"):
+                    continue
+                out.append(pytest.param(command, kind, case, id=f"{command}-{kind}-{case}"))
+    return out
+
+
+def _argv(command: str, kind: str, bad: Path, out: Path) -> list:
+    spectra = {"depth": ["depth", "--probe", f"CdTe:700@{bad}", "--filter", "700/30", "--csv", out],
+               "channels": ["channels", "--probe", f"CdTe:700@{bad}", "--probe", "CdTeSe:780", "--filter", "700/30",
+                            "--filter", "780/40", "--plot", out],
+               "design": ["design", "--candidate-probe", f"CdTe:700@{bad}", "--candidate-probe", "CdTeSe:780",
+                          "--candidate-filter", "700/30", "--candidate-filter", "780/40", "--k", "2",
+                          "--depth-mm", "2", "--json"]}
+    if kind == "spectra":
+        return spectra[command]
+    if command == "unmix":
+        stack = bad if kind == "stack" else DEMO / "stack.tif"
+        refs = bad if kind == "references" else DEMO / "references.csv"
+        return ["unmix", stack, "--references", refs, "--out", out]
+    plan = bad if kind == "plan" else DEMO / "plan.toml"
+    rules = bad if kind == "rules" else DEMO / "rules.toml"
+    if command == "plan":
+        return ["plan", plan, "--rules", rules, "--out", out]
+    return ["check", plan, "--rules", rules]
+
+
+@pytest.mark.parametrize(("command", "kind", "case"), _file_cases())
+def test_bad_input_files(tmp_path, capsys, command, kind, case):
+    path, named = _bad_files(tmp_path, kind)[case]
+    before = path.read_bytes() if path.exists() else None
+    outdir = tmp_path / "results"
+    outdir.mkdir()
+    (outdir / "keep.txt").write_text("earlier result\n")
+    snapshot = _snapshot(outdir)
+    out = outdir / ("new_report" if command == "plan" else "out.ome.tif" if command == "unmix" else "out.csv"
+                    if command == "depth" else "out.png")
+    code, _, err = _run(_argv(command, kind, path, out), capsys)
+    _assert_refused(code, err, named, str(path))
+    assert not out.exists(), "partial output left behind"
+    assert _snapshot(outdir) == snapshot, "the existing output folder changed"
+    assert not list(outdir.glob(".*.part")), "temporary file left behind"
+    if before is not None:
+        assert path.read_bytes() == before, "an input file was modified"
+
+
+def test_unmix_folder_of_bad_stacks_leaves_no_output_folder(tmp_path, capsys):
+    folder = tmp_path / "stacks"
+    folder.mkdir()
+    (folder / "a.tif").write_bytes(_truncated((DEMO / "stack.tif").read_bytes()))
+    out = tmp_path / "new" / "abundances"
+    code, _, err = _run(["unmix", folder, "--references", DEMO / "references.csv", "--out", out], capsys)
+    _assert_refused(code, err, "a.tif")
+    assert not (tmp_path / "new").exists(), "the output folder created for the run was left behind"
+
+
+def test_unmix_folder_with_colliding_output_names_is_refused(tmp_path, capsys):
+    folder = tmp_path / "stacks"
+    folder.mkdir()
+    for name in ("a.tif", "a.v2.tif"):  # both would become a.ome.tif
+        (folder / name).write_bytes((DEMO / "stack.tif").read_bytes())
+    out = tmp_path / "out"
+    code, _, err = _run(["unmix", folder, "--references", DEMO / "references.csv", "--out", out], capsys)
+    _assert_refused(code, err, "a.ome.tif")
+    assert not out.exists()
+
+
+def test_library_refuses_a_user_filter_in_percent(capsys, _isolated_user_library):
+    filters = _isolated_user_library / "filters"
+    filters.mkdir()
+    bad = filters / "my_bandpass.csv"
+    bad.write_text("wavelength_nm,my bandpass\n690,1.0\n700,93.0\n710,1.0\n")  # percent, not fraction
+    code, _, err = _run(["library", "list"], capsys)
+    _assert_refused(code, err, "my_bandpass.csv")
+    bad.write_text("wavelength_nm,my bandpass [%]\n690,0.01\n700,0.93\n710,0.01\n")
+    code, _, err = _run(["library", "list", "--kind", "filter"], capsys)
+    _assert_refused(code, err, "my_bandpass.csv")
+
+
+def test_demo_refuses_an_existing_file_as_out(tmp_path, capsys):
+    target = tmp_path / "notes.txt"
+    target.write_text("keep me\n")
+    code, _, err = _run(["demo", "--out", target], capsys)
+    _assert_refused(code, err, "--out")
+    assert target.read_text() == "keep me\n"
+
+
+@pytest.mark.parametrize("argv", [["--port", "0"], ["--port", "70000"], ["--port", "nan"], ["--port", "-1"],
+                                  ["--max-upload-mb", "0"], ["--max-upload-mb", "abc"], ["--host", " "]],
+                         ids=lambda a: " ".join(a))
+def test_app_bad_options_exit_2_without_starting(capsys, monkeypatch, argv):
+    import probeplan.commands.app as app
+
+    def _no_launch(command):  # the server must never start in this test
+        raise AssertionError(f"the page was launched: {command}")
+
+    monkeypatch.setattr(app, "_launch", _no_launch)
+    code, _, err = _run(["app", *argv], capsys)
+    _assert_refused(code, err, argv[0])
+
+
+# --------------------------------------------------------------------------- numeric options
+
+_DEPTH = ["depth", "--probe", "CdTe:700", "--filter", "700/30", "--json"]
+_CHANNELS = ["channels", "--probe", "CdTe:700", "--probe", "CdTeSe:780", "--extinction", "5e5", "--extinction", "5e5",
+             "--filter", "700/30", "--filter", "780/40", "--json"]
+_DESIGN = ["design", "--candidate-probe", "CdTe:700", "--candidate-probe", "CdTeSe:780", "--candidate-filter",
+           "700/30", "--candidate-filter", "780/40", "--k", "2", "--depth-mm", "2", "--json"]
+_UNMIX = ["unmix", str(DEMO / "stack.tif"), "--references", str(DEMO / "references.csv")]
+_NUMERIC = {
+    "depth": (_DEPTH, ["--depth-max-mm", "--depth-step-mm", "--sbr-threshold", "--irradiance", "--excitation-nm",
+                       "--linewidth-nm", "--led-fwhm-nm", "--exposure-s", "--size-mm", "--concentration-uM",
+                       "--uptake-ratio", "--af-yield", "--f-number", "--magnification", "--binning", "--extinction"]),
+    "channels": (_CHANNELS, ["--depth-mm", "--irradiance", "--exposure-s", "--size-mm", "--concentration-uM",
+                             "--uptake-ratio", "--excitation-nm"]),
+    "design": (_DESIGN, ["--depth-mm", "--irradiance", "--illumination-s", "--exposure-s", "--k", "--channels",
+                         "--top", "--binning", "--excitation-nm", "--size-mm"]),
+    "unmix": (_UNMIX, ["--saturation", "--gain", "--read-noise", "--memory-mb"]),
+    "dots size": (["dots", "size", "CdSe"], ["--peak", "--diameter", "--emission"]),
+    "dots conc": (["dots", "conc", "CdSe", "--peak", "550", "--absorbance", "0.1"], ["--path-cm", "--peak", "--absorbance"]),
+    "dots dose": (["dots", "dose", "--mass-g", "20", "--stock-uM", "10", "--dose-nmol-per-kg", "8"],
+                  ["--mass-g", "--stock-uM", "--dose-nmol-per-kg"]),
+    "app": (["app"], ["--port", "--max-upload-mb"]),
+}
+
+
+def _numeric_cases():
+    for label, (_base, options) in _NUMERIC.items():
+        for option in options:
+            for value in ("nan", "-1", "abc"):
+                yield pytest.param(label, option, value, id=f"{label}{option}={value}")
+
+
+def _with_option(base: list, option: str, value: str) -> list:
+    argv = list(base)
+    if option in argv:  # replace the value already given
+        i = argv.index(option)
+        argv[i + 1] = value
+    else:
+        argv += [option, value]
+    if option == "--extinction":
+        argv = argv[:1] + ["--extinction", value] + [a for a in argv[1:] if a not in ("--extinction", value)]
+    return argv
+
+
+@pytest.mark.parametrize(("label", "option", "value"), list(_numeric_cases()))
+def test_numeric_options_nan_negative_text(tmp_path, capsys, monkeypatch, label, option, value):
+    import probeplan.commands.app as app
+
+    monkeypatch.setattr(app, "_launch", lambda command: pytest.fail(f"the page was launched: {command}"))
+    base, _ = _NUMERIC[label]
+    argv = _with_option(base, option, value)
+    out = tmp_path / "out.ome.tif"
+    if label == "unmix":
+        argv += ["--out", out]
+    code, _, err = _run(argv, capsys)
+    _assert_refused(code, err, option, option.lstrip("-").replace("-", "_"), "probeplan")
+    assert not out.exists()
+    assert not list(tmp_path.iterdir()), "something was written"
+
+
+# --------------------------------------------------------------------------- the real process
+
+def test_real_process_exit_code_and_stderr(tmp_path):
+    bad = tmp_path / "stack.tif"
+    bad.write_bytes(_truncated((DEMO / "stack.tif").read_bytes()))
+    out = tmp_path / "a.ome.tif"
+    proc = subprocess.run([sys.executable, "-m", "probeplan", "unmix", str(bad), "--references",
+                           str(DEMO / "references.csv"), "--out", str(out)], capture_output=True, text=True,
+                          timeout=120)
+    assert proc.returncode == 2
+    assert "Traceback" not in proc.stderr
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and "stack.tif" in lines[0] and "truncated" in lines[0], proc.stderr
+    assert not out.exists() and sorted(p.name for p in tmp_path.iterdir()) == ["stack.tif"]
+
+
+def test_real_process_usage_error(tmp_path):
+    proc = subprocess.run([sys.executable, "-m", "probeplan", "dots", "size", "CdSe", "--peak", "abc"],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 2 and "Traceback" not in proc.stderr and "--peak" in proc.stderr
+
+
+def test_every_command_is_walked():
+    walked = {"depth", "channels", "design", "unmix", "plan", "check", "library", "demo", "app", "dots"}
+    assert set(COMMANDS) <= walked, f"new subcommands to add to the walk: {set(COMMANDS) - walked}"
