@@ -266,7 +266,11 @@ class DepthProfile:
     """SBR, SNR and blur against depth for one probe in one channel.
 
     All electron counts are photoelectrons per (binned) pixel in one exposure,
-    arrays of shape ``(D,)`` over ``depth_mm``.
+    arrays of shape ``(D,)`` over ``depth_mm``.  ``escaped_spectrum`` (D, W) is
+    the target's exitance at the surface above it (photons/s/mm²/nm) on
+    ``wavelength_nm``, before the filter: it red-shifts with depth where tissue
+    absorbs the blue side of the emission more.  ``detected_spectrum`` is the
+    same after lens, filter and QE (e⁻/s/nm per pixel).
     """
 
     probe: str
@@ -287,6 +291,7 @@ class DepthProfile:
     saturated: np.ndarray
     wavelength_nm: np.ndarray = field(repr=False)
     escaped_spectrum: np.ndarray = field(repr=False)
+    detected_spectrum: np.ndarray = field(repr=False)
     notes: list[str] = field(default_factory=list)
 
     @property
@@ -568,7 +573,8 @@ def depth_profile(
         diffusion_valid=valid,
         saturated=saturated,
         wavelength_nm=wl,
-        escaped_spectrum=detected,
+        escaped_spectrum=escaped,
+        detected_spectrum=detected,
         notes=notes,
     )
 

@@ -14,7 +14,8 @@ from collections.abc import Sequence
 import numpy as np
 
 __all__ = ["PALETTE", "colour", "depth_figure", "spectra_figure", "crosstalk_figure", "channels_figure", "maps_figure",
-           "new_figure"]
+           "escaped_spectra_figure",
+           "depth_and_spectra_figure", "new_figure"]
 
 #: Probe colours: deep blue, orange, teal, magenta, ochre, grey-violet, dark green, brick.
 PALETTE = ("#1f4e9c", "#e07b00", "#1b9e8a", "#b8337a", "#c9a227", "#6f6a9b", "#2f6b2f", "#a04a2a")
@@ -37,7 +38,12 @@ def new_figure(rows: int = 1, cols: int = 1, *, width: float = 9.0, height: floa
 def depth_figure(profiles: Sequence, *, sbr_threshold: float | None = 2.0, target_depth_mm: float | None = None):
     """SBR, SNR and blur against depth (three panels) for one profile per probe."""
     fig, axes = new_figure(1, 3, width=12.0, height=3.6)
-    ax_sbr, ax_snr, ax_blur = axes[0]
+    _draw_depth(axes[0], profiles, sbr_threshold=sbr_threshold, target_depth_mm=target_depth_mm)
+    return fig
+
+
+def _draw_depth(axes, profiles, *, sbr_threshold, target_depth_mm) -> None:
+    ax_sbr, ax_snr, ax_blur = axes
     for i, p in enumerate(profiles):
         c = colour(i)
         ax_sbr.plot(p.depth_mm, p.sbr, color=c, label=p.probe)
@@ -59,7 +65,6 @@ def depth_figure(profiles: Sequence, *, sbr_threshold: float | None = 2.0, targe
     ax_snr.set_yscale("log")
     ax_blur.set_ylabel("blur FWHM (mm)")
     ax_sbr.legend(fontsize=8)
-    return fig
 
 
 def spectra_figure(wavelength_nm, emissions: Sequence[tuple[str, np.ndarray]], filters: Sequence[tuple[str, np.ndarray]],
@@ -147,4 +152,48 @@ def maps_figure(maps, titles: Sequence[str], unit: str, *, cmap: str = "magma"):
         ax.set_xlabel("x (pixel)")
         ax.set_ylabel("y (pixel)")
         fig.colorbar(im, ax=ax, label=unit, shrink=0.85)
+    return fig
+
+
+def escaped_spectra_figure(profiles: Sequence, *, depths_mm: Sequence[float] = (0.5, 2.0, 5.0, 8.0)):
+    """The escaping emission spectrum (peak = 1) at a few depths, one panel per probe.
+
+    Lighter lines are deeper targets; the dotted line is the escaping peak at the
+    shallowest depth, so the shift with depth is visible.
+    """
+    n = len(profiles)
+    fig, axes = new_figure(1, n, width=4.0 * n, height=3.2)
+    _draw_spectra(axes[0], profiles, depths_mm)
+    return fig
+
+
+def _draw_spectra(axes, profiles, depths_mm) -> None:
+    for ax, (i, p) in zip(axes, enumerate(profiles), strict=True):
+        wl = np.asarray(p.wavelength_nm)
+        chosen = [d for d in depths_mm if p.depth_mm[0] <= d <= p.depth_mm[-1]] or [float(p.depth_mm[0])]
+        for j, d in enumerate(chosen):
+            row = int(np.argmin(np.abs(p.depth_mm - d)))
+            spec = np.asarray(p.escaped_spectrum[row], dtype=float)
+            peak = float(spec.max())
+            if peak > 0:
+                alpha = 1.0 - 0.7 * j / max(1, len(chosen) - 1)
+                ax.plot(wl, spec / peak, color=colour(i), alpha=alpha, label=f"{p.depth_mm[row]:g} mm")
+        ax.axvline(float(p.escaped_peak_nm[0]), color="0.4", ls=":", lw=1)
+        ax.set_title(p.probe, fontsize=9)
+        ax.set_xlabel("wavelength (nm)")
+        ax.set_ylabel("escaping emission (peak = 1)")
+        ax.grid(alpha=0.3)
+        ax.legend(fontsize=7, title="target depth", title_fontsize=7)
+
+
+def depth_and_spectra_figure(profiles: Sequence, sbr_threshold: float | None = 2.0, *,
+                             target_depth_mm: float | None = None):
+    """:func:`depth_figure` above :func:`escaped_spectra_figure` in one figure."""
+    from matplotlib.figure import Figure
+
+    n = len(profiles)
+    fig = Figure(figsize=(max(12.0, 4.0 * n), 7.2), layout="constrained")
+    top, bottom = fig.subfigures(2, 1)
+    _draw_depth(top.subplots(1, 3), profiles, sbr_threshold=sbr_threshold, target_depth_mm=target_depth_mm)
+    _draw_spectra(np.atleast_1d(bottom.subplots(1, n)), profiles, (0.5, 2.0, 5.0, 8.0))
     return fig

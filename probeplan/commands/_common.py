@@ -2,13 +2,15 @@
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
 import sys
-from collections.abc import Mapping, Sequence
+import warnings
+from collections.abc import Iterator, Mapping, Sequence
 from typing import Any
 
-__all__ = ["print_table", "print_json", "format_value"]
+__all__ = ["print_table", "print_json", "format_value", "model_notes"]
 
 
 def format_value(value: Any) -> str:
@@ -46,3 +48,21 @@ def print_table(rows: Sequence[Mapping[str, Any]], columns: Sequence[str] | None
     sys.stdout.write("  ".join("-" * w for w in widths) + "\n")
     for row in cells:
         sys.stdout.write("  ".join(v.ljust(w) for v, w in zip(row, widths, strict=True)).rstrip() + "\n")
+
+
+@contextlib.contextmanager
+def model_notes() -> Iterator[list[str]]:
+    """Collect the package's warnings raised inside the block as note lines (unique, sorted) instead of printing them.
+
+    The list is filled when the block ends.
+    """
+    from probeplan.errors import ProbeplanWarning
+
+    notes: list[str] = []
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", ProbeplanWarning)
+        yield notes
+    notes += sorted({str(w.message) for w in caught if issubclass(w.category, ProbeplanWarning)})
+    for w in caught:
+        if not issubclass(w.category, ProbeplanWarning):
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)

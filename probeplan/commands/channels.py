@@ -26,7 +26,7 @@ def run(args: argparse.Namespace) -> int:
     from probeplan import RESEARCH_USE_CAUTION
     from probeplan.channels import SEPARABLE_CONDITION_LIMIT, channel_report
     from probeplan.commands._build import channels_from_args, probes_from_args, tissue_from_args
-    from probeplan.commands._common import print_json, print_table
+    from probeplan.commands._common import model_notes, print_json, print_table
     from probeplan.fluorescence import Autofluorescence
     from probeplan.outputs import refuse_input_paths
 
@@ -36,9 +36,11 @@ def run(args: argparse.Namespace) -> int:
     channels = channels_from_args(args, len(probes))
     depths = args.depth_mm or [1.0, 3.0, 5.0]
     af = None if args.af_yield is None else Autofluorescence(yield_per_cm=args.af_yield)
-    rep = channel_report(tissue_from_args(args), probes, channels, irradiance_mw_per_cm2=args.irradiance,
-                         depth_mm=depths, target_size_mm=args.size_mm, concentration_uM=args.concentration_uM,
-                         uptake_ratio=args.uptake_ratio, autofluorescence=af)
+    with model_notes() as notes:
+        rep = channel_report(tissue_from_args(args), probes, channels, irradiance_mw_per_cm2=args.irradiance,
+                             depth_mm=depths, target_size_mm=args.size_mm, concentration_uM=args.concentration_uM,
+                             uptake_ratio=args.uptake_ratio, autofluorescence=af)
+    rep.notes += [n for n in notes if n not in rep.notes]
     if args.plot:
         _write_plot(args.plot, probes, channels, rep)
     problem = bool(args.fail_if_not_separable and not rep.separable.all())

@@ -23,14 +23,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     import math
-    import warnings
 
     import numpy as np
 
     from probeplan import RESEARCH_USE_CAUTION, safety
     from probeplan.commands._build import make_camera, make_filter, make_lens, make_source, probes_from_args, tissue_from_args
-    from probeplan.commands._common import print_json, print_table
-    from probeplan.errors import ProbeplanWarning, input_error
+    from probeplan.commands._common import model_notes, print_json, print_table
+    from probeplan.errors import input_error
     from probeplan.fluorescence import Autofluorescence, depth_at_threshold, depth_profile
     from probeplan.outputs import refuse_input_paths, write_bytes_atomic, write_csv_atomic
 
@@ -50,9 +49,7 @@ def run(args: argparse.Namespace) -> int:
     af = None if args.af_yield is None else Autofluorescence(yield_per_cm=args.af_yield)
     depths = np.arange(0.0, args.depth_max_mm + args.depth_step_mm / 2, args.depth_step_mm)
     profiles = []
-    messages: list[str] = []
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", ProbeplanWarning)
+    with model_notes() as messages:
         for i, probe in enumerate(probes):
             filt = make_filter(filters[i] if len(filters) > 1 else filters[0]) if filters else None
             if filt is None:
@@ -62,7 +59,6 @@ def run(args: argparse.Namespace) -> int:
                 camera=cam, lens=lens, exposure_s=args.exposure_s, depth_mm=depths, target_size_mm=args.size_mm,
                 concentration_uM=args.concentration_uM, uptake_ratio=args.uptake_ratio, autofluorescence=af,
             ))
-    messages += sorted({str(w.message) for w in caught if issubclass(w.category, ProbeplanWarning)})
     mpe = float(safety.skin_mpe_mw_per_cm2(args.excitation_nm, max(10.0, args.exposure_s)))
     summary = []
     for p in profiles:
@@ -74,10 +70,10 @@ def run(args: argparse.Namespace) -> int:
     if args.csv:
         write_csv_atomic(args.csv, rows)
     if args.plot:
-        from probeplan.plots import depth_figure
+        from probeplan.plots import depth_and_spectra_figure
         from probeplan.report import figure_png_bytes
 
-        write_bytes_atomic(args.plot, figure_png_bytes(depth_figure(profiles, sbr_threshold=args.sbr_threshold)))
+        write_bytes_atomic(args.plot, figure_png_bytes(depth_and_spectra_figure(profiles, args.sbr_threshold)))
     notes = sorted({n for p in profiles for n in p.notes}) + messages
     skin = {"wavelength_nm": args.excitation_nm, "irradiance_mw_per_cm2": args.irradiance,
             "skin_mpe_mw_per_cm2": mpe, "fraction_of_mpe": args.irradiance / mpe}
