@@ -37,7 +37,7 @@ DEMO = Path(__file__).resolve().parents[1] / "demo_tissue"
 FAST = settings(max_examples=250, deadline=5000, suppress_health_check=[HealthCheck.function_scoped_fixture])
 SLOW = settings(max_examples=120, deadline=5000, suppress_health_check=[HealthCheck.function_scoped_fixture])
 
-#: Outcome counts per test (parsed / refused), for the hardening table in docs/hardening.md.
+#: Outcome counts per test (parsed / refused), for the hardening table in DEVELOPERS.md.
 OUTCOMES: dict[str, Counter] = defaultdict(Counter)
 
 
