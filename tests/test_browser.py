@@ -68,6 +68,12 @@ def _wait_healthy(proc: subprocess.Popen, port: int, log: Path) -> None:
     pytest.fail(f"probeplan app did not answer on {url} within {START_TIMEOUT_S:g} s:\n{log.read_text(errors='replace')}")
 
 
+def _wait_idle(page) -> None:
+    """Wait until the page has applied the last input (Streamlit's running indicator is gone)."""
+    page.wait_for_timeout(300)
+    page.locator("[data-testid='stStatusWidget']").wait_for(state="hidden", timeout=UI_TIMEOUT_MS)
+
+
 def _stop(proc: subprocess.Popen) -> None:
     """Stop the server by its PID (``probeplan app`` replaces itself with Streamlit: one process)."""
     if proc.poll() is None:
@@ -156,8 +162,13 @@ def test_page_in_chromium(tmp_path):
                 uploaders.nth(0).get_by_text("KB").wait_for(timeout=UI_TIMEOUT_MS)
                 inputs.nth(1).set_input_files(str(ref_path))
                 uploaders.nth(1).get_by_text(ref_path.name).wait_for(timeout=UI_TIMEOUT_MS)
-                page.get_by_label("regions of interest", exact=False).fill("dot A:28,28,52,52\nbackground:110,0,128,15")
-                page.get_by_label("background region", exact=False).fill("background")
+                rois = page.get_by_label("regions of interest", exact=False)
+                rois.fill("dot A:28,28,52,52\nbackground:110,0,128,15")
+                rois.press("Control+Enter")  # a text area commits its value on Ctrl+Enter (or blur)
+                background = page.get_by_label("background region", exact=False)
+                background.fill("background")
+                background.press("Enter")
+                _wait_idle(page)
                 page.get_by_role("button", name="Unmix").click()
                 page.get_by_text("Abundance maps", exact=True).wait_for(timeout=UNMIX_TIMEOUT_MS)
                 maps = page.locator("[data-testid='stImage'] img")
