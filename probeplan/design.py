@@ -70,7 +70,7 @@ from probeplan.design_search import (
     check_count,
     exhaustive_search,
 )
-from probeplan.errors import input_error
+from probeplan.errors import input_error, positive_number
 from probeplan.fluorescence import Autofluorescence, background_rates, probe_rate_e_per_s
 from probeplan.tissue import Tissue, tissue_preset
 
@@ -475,17 +475,17 @@ def design(
     if n_ch > len(filters):
         raise input_error("candidate_filters", f"{len(filters)} candidate filters for {n_ch} channels",
                           f"give at least {n_ch} candidate filters or a smaller k")
-    depth = _positive("depth_mm", depth_mm, allow_zero=True)
-    t = _positive("exposure_s", exposure_s)
-    conc = _positive("concentration_uM", concentration_uM)
-    tbr = _positive("uptake_ratio", uptake_ratio)
+    depth = positive_number("depth_mm", depth_mm, allow_zero=True)
+    t = positive_number("exposure_s", exposure_s)
+    conc = positive_number("concentration_uM", concentration_uM)
+    tbr = positive_number("uptake_ratio", uptake_ratio)
     if tbr < 1:
         raise input_error("uptake_ratio", f"got {tbr:g}", "the target-to-background uptake ratio must be >= 1")
-    _positive("target_size_mm", target_size_mm)
+    positive_number("target_size_mm", target_size_mm)
     if illumination_s is None:
         lit = max(safety.MPE_LONG_EXPOSURE_S, n_ch * t)
     else:
-        lit = _positive("illumination_s", illumination_s)
+        lit = positive_number("illumination_s", illumination_s)
     if lit > safety.MPE_MAX_EXPOSURE_S:
         raise input_error("illumination_s", f"{lit:g} s is beyond the skin table ({safety.MPE_MAX_EXPOSURE_S:g} s)",
                           "split the imaging into shorter sessions")
@@ -503,7 +503,7 @@ def design(
                               "give one value for all sources or one per source")
         irr = np.broadcast_to(given, (len(srcs),)).copy()
         for i, s in enumerate(srcs):
-            _positive("irradiance_mw_per_cm2", irr[i])
+            positive_number("irradiance_mw_per_cm2", irr[i])
             if irr[i] > mpe[i] * (1 + 1e-12):
                 raise input_error("irradiance_mw_per_cm2",
                                   f"{irr[i]:g} mW/cm^2 at {float(s.centre_nm):g} nm is above the skin MPE "
@@ -583,15 +583,3 @@ def design(
         filter_sets_total=out.filter_sets_total, filter_sets_skipped=out.filter_sets_skipped,
         filter_sets_cut=out.filter_sets_cut, precompute_s=precompute_s, search_s=out.search_s, notes=notes,
     )
-
-
-def _positive(name: str, value: Any, *, allow_zero: bool = False) -> float:
-    if isinstance(value, bool):
-        raise TypeError(f"{name}: expected a number, got {value!r}")
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise TypeError(f"{name}: expected a number, got {value!r}") from None
-    if not math.isfinite(v) or v < 0 or (v == 0 and not allow_zero):
-        raise input_error(name, f"got {value!r}", "give a finite number " + (">= 0" if allow_zero else "> 0"))
-    return v

@@ -9,12 +9,16 @@ subclass instead.
 
 from __future__ import annotations
 
+import math
+from typing import Any
+
 __all__ = [
     "InputError",
     "ProbeplanWarning",
     "ModelValidityWarning",
     "AssumptionWarning",
     "input_error",
+    "positive_number",
 ]
 
 
@@ -55,3 +59,33 @@ def input_error(where: str, problem: str, fix: str) -> InputError:
     'depth_mm: got -1.0, expected >= 0; give a depth below the surface'
     """
     return InputError(f"{where}: {problem}; {fix}")
+
+
+def positive_number(name: str, value: Any, *, allow_zero: bool = False) -> float:
+    """``value`` as a finite float > 0 (or >= 0 with ``allow_zero``), else an error naming ``name``.
+
+    Raises
+    ------
+    TypeError
+        For a bool or something that is not a number.
+    InputError
+        For NaN, inf, a negative value, or zero when not allowed.
+
+    Examples
+    --------
+    >>> positive_number("exposure_s", 0.5)
+    0.5
+    >>> positive_number("exposure_s", -1)
+    Traceback (most recent call last):
+    ...
+    probeplan.errors.InputError: exposure_s: got -1; give a finite number > 0
+    """
+    if isinstance(value, bool):
+        raise TypeError(f"{name}: expected a number, got {value!r}")
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise TypeError(f"{name}: expected a number, got {value!r}") from None
+    if not math.isfinite(v) or v < 0 or (v == 0 and not allow_zero):
+        raise input_error(name, f"got {value!r}", "give a finite number " + (">= 0" if allow_zero else "> 0"))
+    return v

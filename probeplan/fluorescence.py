@@ -49,7 +49,7 @@ from typing import Any
 import numpy as np
 
 from probeplan import transport
-from probeplan.errors import AssumptionWarning, input_error
+from probeplan.errors import AssumptionWarning, input_error, positive_number
 from probeplan.tissue import Tissue, tissue_preset
 from probeplan.tissue import optical_properties as _tissue_optical_properties
 
@@ -215,16 +215,6 @@ def _tissue(tissue: str | Tissue) -> Tissue:
     return tissue_preset(tissue) if isinstance(tissue, str) else tissue
 
 
-def _check_positive(name: str, value: Any, *, allow_zero: bool = False) -> float:
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise TypeError(f"{name}: expected a number, got {value!r}") from None
-    if not math.isfinite(v) or v < 0 or (v == 0 and not allow_zero):
-        raise input_error(name, f"got {value!r}", "give a finite number " + (">= 0" if allow_zero else "> 0"))
-    return v
-
-
 def _depths(depth_mm) -> np.ndarray:
     d = np.atleast_1d(np.asarray(depth_mm, dtype=np.float64))
     if d.ndim != 1:
@@ -346,9 +336,9 @@ def probe_rate_e_per_s(
         e⁻/s per binned pixel at each depth.
     """
     rate, _, _ = _signal_rate(
-        _tissue(tissue), probe, source, _check_positive("irradiance_mw_per_cm2", irradiance_mw_per_cm2),
-        emission_filter, camera, lens, _depths(depth_mm), _check_positive("target_size_mm", target_size_mm),
-        _check_positive("concentration_uM", concentration_uM, allow_zero=True), wavelength_nm,
+        _tissue(tissue), probe, source, positive_number("irradiance_mw_per_cm2", irradiance_mw_per_cm2),
+        emission_filter, camera, lens, _depths(depth_mm), positive_number("target_size_mm", target_size_mm),
+        positive_number("concentration_uM", concentration_uM, allow_zero=True), wavelength_nm,
     )
     return rate
 
@@ -407,7 +397,7 @@ def background_rates(
         blocking), ``"dark"`` (dark current × binning²): floats.
     """
     tissue = _tissue(tissue)
-    irradiance = _check_positive("irradiance_mw_per_cm2", irradiance_mw_per_cm2)
+    irradiance = positive_number("irradiance_mw_per_cm2", irradiance_mw_per_cm2)
     af = Autofluorescence() if autofluorescence is None else autofluorescence
     conc = np.atleast_1d(np.asarray(background_concentration_uM, dtype=np.float64))
     if conc.shape != (len(probes),) or not np.all(np.isfinite(conc)) or np.any(conc < 0):
@@ -495,11 +485,11 @@ def depth_profile(
     """
     tissue = _tissue(tissue)
     depth = _depths(depth_mm)
-    irradiance = _check_positive("irradiance_mw_per_cm2", irradiance_mw_per_cm2)
-    exposure = _check_positive("exposure_s", exposure_s)
-    size = _check_positive("target_size_mm", target_size_mm)
-    conc = _check_positive("concentration_uM", concentration_uM)
-    tbr = _check_positive("uptake_ratio", uptake_ratio)
+    irradiance = positive_number("irradiance_mw_per_cm2", irradiance_mw_per_cm2)
+    exposure = positive_number("exposure_s", exposure_s)
+    size = positive_number("target_size_mm", target_size_mm)
+    conc = positive_number("concentration_uM", concentration_uM)
+    tbr = positive_number("uptake_ratio", uptake_ratio)
     if tbr < 1:
         raise input_error("uptake_ratio", f"got {tbr:g}", "the target-to-background uptake ratio must be >= 1")
     af = Autofluorescence() if autofluorescence is None else autofluorescence
@@ -585,7 +575,7 @@ def depth_at_threshold(profile: DepthProfile, sbr_threshold: float = DEFAULT_SBR
     Returns ``inf`` if it never falls below within the profile, and 0.0 if it
     starts below.  The default threshold of 2 is common practice, not a standard.
     """
-    thr = _check_positive("sbr_threshold", sbr_threshold)
+    thr = positive_number("sbr_threshold", sbr_threshold)
     d, s = profile.depth_mm, profile.sbr
     below = np.nonzero(s < thr)[0]
     if below.size == 0:
