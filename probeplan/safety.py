@@ -101,12 +101,9 @@ _BODY_MASS_RANGE_G = {"mouse": (1.0, 150.0), "rat": (5.0, 1500.0)}
 
 
 def _wavelengths(wavelength_nm, *, low: float, high: float, name: str = "wavelength_nm") -> np.ndarray:
-    try:
-        arr = np.asarray(wavelength_nm, dtype=np.float64)
-    except (TypeError, ValueError) as exc:
-        raise TypeError(f"{name}: expected numbers in nm, got {wavelength_nm!r}") from exc
-    if not np.all(np.isfinite(arr)):
-        raise input_error(name, "contains NaN or inf", "give finite wavelengths in nm")
+    from probeplan.spectra import as_wavelengths_nm
+
+    arr = as_wavelengths_nm(wavelength_nm, name=name)
     if arr.size and (arr.min() < low or arr.max() > high):
         bad = arr.min() if arr.min() < low else arr.max()
         raise input_error(name, f"got {bad:g} nm, outside {low:g}-{high:g} nm", "give a wavelength in that range")
