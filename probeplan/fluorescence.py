@@ -6,16 +6,19 @@ The forward model (diffusion theory, :mod:`probeplan.transport`)
    wavelengths gives a fluence rate φ(z) = E0·Φ(z) inside the tissue, Φ from
    :func:`probeplan.transport.broad_beam_fluence` with the tissue's μa, μs′ at
    the excitation wavelength.
-2. **Target.** A spherical inclusion of diameter s at centre depth d holding
-   the probe at concentration c absorbs μa,p = ln(10)·ε(λx)·c per cm and emits
-   P = QY·μa,p·φ(d)·V photons per second, V = πs³/6, spread over the probe's
-   emission spectrum f(λ) (unit area).  The inclusion is treated as a thin disc
-   of radius s/2 at depth d (an approximation; exact when s ≪ d): the exitance
-   at the surface above its centre is P·f(λ)·F(s/2, d, λ)/(π(s/2)²), where
-   F(r, d, λ) is the fraction of an isotropic point source at depth d escaping
-   through a surface disc of radius r (closed form of the image-source
-   solution, :func:`disc_escape_fraction`).  The specific signal is the excess
-   over the surrounding tissue: c − c/TBR.
+2. **Target.** A uniform spherical inclusion of diameter s with its centre at
+   depth d holds the probe at concentration c; it absorbs μa,p = ln(10)·ε(λx)·c
+   per cm and emits q(z) = QY·μa,p·φ(z) photons per second per unit volume,
+   spread over the probe's emission spectrum f(λ) (unit area).  The sphere is
+   cut into thin discs at Gauss–Legendre depths z_k (8 nodes) with radii ρ_k;
+   a uniform disc of radius ρ at depth z gives, at the surface point above its
+   centre, its power × F(ρ, z, λ)/(πρ²), where F is the fraction of an
+   isotropic point source at depth z escaping through a surface disc of radius
+   ρ (closed form of the image-source solution, :func:`disc_escape_fraction`).
+   Summing the discs gives the exitance above the target's centre, with each
+   slice excited by its own fluence φ(z_k).  The specific signal is the excess
+   over the surrounding tissue: c − c/TBR.  When d < s/2 the target breaks the
+   skin: its slices above the surface are counted as lying at the surface.
 3. **Backgrounds.** (a) Nonspecific uptake: the probe at c/TBR in the whole
    half-space, exitance ∫ QY·μa,p,bg·φ(z)·E(z, λ) dz with E the total escape
    fraction from depth z; (b) autofluorescence: a uniform tissue fluorophore of
@@ -77,6 +80,13 @@ M_PER_NM = 1e-9
 W_PER_MW = 1e-3
 L_PER_CM3 = 1e-3
 M_PER_UM = 1e-6
+#: Cubic millimetres per cubic centimetre.
+MM3_PER_CM3 = 1000.0
+#: Wavelength step (nm) at which the tissue transport of the target's light is evaluated before
+#: linear interpolation onto the 1 nm emission grid (μa, μs′ and the escape vary slowly with λ).
+_TRANSPORT_STEP_NM = 4.0
+#: Gauss–Legendre nodes and weights on [-1, 1] for slicing a spherical target into discs.
+_SPHERE_NODES = np.polynomial.legendre.leggauss(8)
 #: Mm² per cm².
 MM2_PER_CM2 = 100.0
 #: SBR below which a target is taken as lost (common practice, not a standard).
@@ -344,20 +354,52 @@ def probe_rate_e_per_s(
 
 
 def _signal_rate(tissue, probe, source, irradiance, emission_filter, camera, lens, depth, size_mm, conc_uM, wl):
+    """Detected rate (e⁻/s per pixel) and escaping spectrum above a uniform spherical inclusion.
+
+    The sphere (radius r, centre depth d) is cut into thin discs at the
+    Gauss–Legendre nodes z_k = d + r·t_k with weights Δz_k = r·w_k and radii
+    ρ_k = r·√(1 − t_k²) (a slice above the skin is counted at the skin); each disc
+    emits q(z_k) = QY·μa,p·φ(z_k) per unit volume (its own excitation fluence)
+    and the exitance above the centre is Σ_k Δz_k·q(z_k)·F(ρ_k, z_k), F the
+    disc escape fraction (:func:`disc_escape_fraction`; exact for a uniform
+    disc in the image-source model).  F is evaluated every
+    :data:`_TRANSPORT_STEP_NM` nm and interpolated linearly onto the 1 nm grid.
+    """
     wl = emission_grid_nm([probe]) if wl is None else np.asarray(wl, dtype=np.float64)
-    wl_x, _, _, _, _, fluence = _excitation_fluence_photons(tissue, source, irradiance, depth)
+    radius = size_mm / 2.0
+    nodes, weights = _SPHERE_NODES
+    offset = radius * nodes  # (S,) slice positions relative to the centre, mm
+    z = np.maximum(depth[:, None] + offset[None, :], 0.0)  # (D, S) slice depths; above the skin counts as at it
+    dz = np.broadcast_to(radius * weights, z.shape)  # (D, S) slice thickness weights, mm
+    rho = np.broadcast_to(radius * np.sqrt(1.0 - nodes**2), z.shape)  # (D, S) slice radii, mm
+    _, _, _, _, _, fluence = _excitation_fluence_photons(tissue, source, irradiance, z.ravel())
     eps = float(np.asarray(probe.molar_extinction_per_M_cm(float(source.centre_nm))))
     mu_a_probe = math.log(10.0) * eps * conc_uM * M_PER_UM  # cm^-1
-    volume_cm3 = math.pi / 6.0 * (size_mm / MM_PER_CM) ** 3
-    emitted = probe.quantum_yield * mu_a_probe * fluence * volume_cm3  # photons/s, (D,)
-    mu_a, mu_sp = optical_properties(tissue, wl)
-    radius = size_mm / 2.0
-    frac = disc_escape_fraction(radius, depth[:, None], mu_a[None, :], mu_sp[None, :], tissue.refractive_index)
-    spectrum = probe.emission_per_nm(wl)
-    escaped = emitted[:, None] * spectrum[None, :] * frac / (math.pi * radius**2)  # photons/s/mm²/nm
+    # photons/s per mm³ of inclusion in each slice (fluence per cm², coefficient per cm → per cm³ → per mm³)
+    q = probe.quantum_yield * mu_a_probe * fluence.reshape(z.shape) / MM3_PER_CM3
+    # the transport factor varies slowly with wavelength: evaluate it every few nm, interpolate onto the 1 nm grid
+    coarse = _coarse_grid(wl)
+    mu_a, mu_sp = optical_properties(tissue, coarse)
+    frac = disc_escape_fraction(rho[:, :, None], z[:, :, None], mu_a[None, None, :], mu_sp[None, None, :],
+                                tissue.refractive_index)  # (D, S, Wc)
+    exitance = _interp_last(np.einsum("ds,dsw->dw", q * dz, frac), coarse, wl)  # photons/s/mm² per unit spectrum
+    escaped = exitance * probe.emission_per_nm(wl)[None, :]  # photons/s/mm²/nm
     detect = _detection(camera, lens) * emission_filter.transmission(wl) * camera.qe(wl)
     rate = np.trapezoid(escaped * detect[None, :], wl, axis=-1)
     return rate, wl, escaped
+
+
+def _coarse_grid(wl: np.ndarray) -> np.ndarray:
+    """Every :data:`_TRANSPORT_STEP_NM` nm across ``wl``, both ends included."""
+    n = max(2, int(math.ceil((wl[-1] - wl[0]) / _TRANSPORT_STEP_NM)) + 1)
+    return np.linspace(wl[0], wl[-1], n)
+
+
+def _interp_last(values: np.ndarray, x: np.ndarray, x_new: np.ndarray) -> np.ndarray:
+    """Linear interpolation of ``values`` (..., len(x)) along its last axis onto ``x_new`` (inside ``x``)."""
+    i = np.clip(np.searchsorted(x, x_new, side="right") - 1, 0, x.size - 2)
+    t = (x_new - x[i]) / (x[i + 1] - x[i])
+    return values[..., i] * (1.0 - t) + values[..., i + 1] * t
 
 
 def _half_space_integral(tissue, source, irradiance, wl_em, emission_per_nm, yield_per_cm):
@@ -370,7 +412,7 @@ def _half_space_integral(tissue, source, irradiance, wl_em, emission_per_nm, yie
     mu_a, mu_sp = optical_properties(tissue, wl_em)
     esc = disc_escape_fraction(np.inf, z[:, None], mu_a[None, :], mu_sp[None, :], tissue.refractive_index)
     # per cm³: yield_per_cm * fluence photons/s; per mm³ divide by 1000; integrate dz in mm.
-    source_per_mm3 = yield_per_cm * fluence / 1000.0
+    source_per_mm3 = yield_per_cm * fluence / MM3_PER_CM3
     return np.trapezoid(source_per_mm3[:, None] * esc, z, axis=0) * emission_per_nm
 
 
@@ -543,6 +585,9 @@ def depth_profile(
         notes.append("the pixel saturates at some depths: shorten the exposure or lower the irradiance")
     if wl.max() > 1000.0 or float(source.centre_nm) > 1000.0:
         notes.append(HB_BEYOND_TABLE_NOTE)
+    if np.any(depth < size / 2.0):
+        notes.append(f"at depths under {size / 2.0:g} mm the {size:g} mm target breaks the surface; "
+                     "its part above the skin is counted as lying at the surface")
     notes.append("autofluorescence is a parametric assumption "
                  f"(yield {af.yield_per_cm:g} cm^-1 at {af.reference_excitation_nm:g} nm); set it from an unlabelled control")
     return DepthProfile(
