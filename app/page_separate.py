@@ -150,7 +150,7 @@ def separate_view() -> None:
     ss.setdefault("w_sep_read_noise", 0.0)
     ss.setdefault("w_sep_offset", False)
     ss.setdefault("w_sep_rois", _default_rois())
-    ss.setdefault("w_sep_background", "muscle")
+    ss.setdefault("w_sep_background", "background")
     demo = None
     with guard("demo data"):
         demo = demo_inputs()

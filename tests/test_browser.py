@@ -162,13 +162,18 @@ def test_page_in_chromium(tmp_path):
                 uploaders.nth(0).get_by_text("KB").wait_for(timeout=UI_TIMEOUT_MS)
                 inputs.nth(1).set_input_files(str(ref_path))
                 uploaders.nth(1).get_by_text(ref_path.name).wait_for(timeout=UI_TIMEOUT_MS)
+                # let the reruns the uploads started finish first: a value typed during a rerun can be lost
+                _wait_idle(page)
+                roi_text = "dot A:28,28,52,52\nbackground:110,0,128,15"
                 rois = page.get_by_label("regions of interest", exact=False)
-                rois.fill("dot A:28,28,52,52\nbackground:110,0,128,15")
+                rois.fill(roi_text)
                 rois.press("Control+Enter")  # a text area commits its value on Ctrl+Enter (or blur)
+                _wait_idle(page)
                 background = page.get_by_label("background region", exact=False)
                 background.fill("background")
                 background.press("Enter")
                 _wait_idle(page)
+                assert rois.input_value() == roi_text and background.input_value() == "background"
                 page.get_by_role("button", name="Unmix").click()
                 page.get_by_text("Abundance maps", exact=True).wait_for(timeout=UNMIX_TIMEOUT_MS)
                 maps = page.locator("[data-testid='stImage'] img")
