@@ -108,12 +108,14 @@ def _cell(value: Any) -> str:
 
 
 _CSS = """
-body{font-family:system-ui,-apple-system,Segoe UI,sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;
+body{font-family:system-ui,-apple-system,Segoe UI,sans-serif;max-width:1400px;margin:2em auto;padding:0 1em;
 color:#1b1b1b;line-height:1.45}
+.scroll{overflow-x:auto;max-width:100%}
 h1{margin-bottom:.1em} .sub{color:#555;margin-top:0}
 .caution{border-left:6px solid #b35806;background:#fdf3e7;padding:.6em 1em;margin:.6em 0}
-table{border-collapse:collapse;margin:.5em 0 1.2em;font-size:.92em}
-th,td{border:1px solid #ccc;padding:.25em .6em;text-align:left} th{background:#f0f0f0}
+table{border-collapse:collapse;margin:.5em 0 1.2em;font-size:.85em}
+th,td{border:1px solid #ccc;padding:.25em .6em;text-align:left;vertical-align:top} th{background:#f0f0f0}
+td{min-width:4em;max-width:34em} td.num{white-space:nowrap;text-align:right}
 td.fail{background:#f8d7d3;font-weight:600} td.pass{background:#dcefe0}
 figure{margin:1em 0} figcaption{color:#444;font-size:.9em} img{max-width:100%}
 .note{color:#555;font-size:.9em} footer{color:#777;font-size:.85em;margin-top:3em}
@@ -138,7 +140,7 @@ def render_html(report: Report) -> str:
         if table.note:
             parts.append(f"<p class='note'>{html.escape(table.note)}</p>")
         cols = table.cols()
-        parts.append("<table><tr>" + "".join(f"<th>{html.escape(c)}</th>" for c in cols) + "</tr>")
+        parts.append("<div class='scroll'><table><tr>" + "".join(f"<th>{html.escape(c)}</th>" for c in cols) + "</tr>")
         for row in table.rows:
             cells = []
             for c in cols:
@@ -148,9 +150,11 @@ def render_html(report: Report) -> str:
                     ok = v is True or v == "pass"
                     cls = " class='pass'" if ok else " class='fail'"
                     v = "pass" if ok else "FAIL"
+                if not cls and isinstance(v, (int, float)) and not isinstance(v, bool):
+                    cls = " class='num'"
                 cells.append(f"<td{cls}>{_cell(v)}</td>")
             parts.append("<tr>" + "".join(cells) + "</tr>")
-        parts.append(f"</table><p class='note'>Also in {html.escape(table.name)}.csv</p>")
+        parts.append(f"</table></div><p class='note'>Also in {html.escape(table.name)}.csv</p>")
     for caption, png in report.figures:
         data = base64.b64encode(png).decode("ascii")
         parts.append(f"<figure><img alt='{html.escape(caption)}' src='data:image/png;base64,{data}'>"
