@@ -14,10 +14,6 @@ from page_common import DEMO_DIR, FIGURE_DPI, captured_warnings, fmt, guard, saf
 
 __all__ = ["separate_view", "demo_inputs", "maps_png"]
 
-#: Rows per unmixing block (the progress bar advances per block).
-_ROWS_PER_BLOCK = 16
-
-
 def demo_inputs() -> tuple[Path, Path, Path | None] | None:
     """The demo stack, references and dark frame: shipped in demo_tissue/, or generated once per session."""
     names = ("stack.tif", "references.csv")
@@ -71,68 +67,56 @@ def _overlay(abundances: np.ndarray):
 
 def _unmix(stack_path: Path, refs_path: Path, dark_path: Path | None, method: str, gain: float, read_noise: float,
            offset: bool, rois_text: str, background: str) -> dict:
-    """Read, unmix block by block with a progress bar, and gather maps, QC and ROI statistics."""
+    """Unmix with :func:`probeplan.unmix.unmix_file` into the session folder (progress bar per block), read back."""
+    import tifffile
+
     from probeplan import io as pio
-    from probeplan import roi as proi
     from probeplan.references import read_references_csv
-    from probeplan.unmix import QcAccumulator, design_matrix, unmix_stack
+    from probeplan.unmix import unmix_file
 
     notes: list[str] = []
+    folder = session_folder() / "results"
+    folder.mkdir(parents=True, exist_ok=True)
+    stem = safe_name(stack_path.stem, "stack")
     with captured_warnings(notes):
-        data, info = pio.read_stack(stack_path)
-        data = np.moveaxis(data, info.channel_axis, 0)
-        refs = read_references_csv(refs_path).for_channels(info.channel_names, where=stack_path.name)
-        dark = None
-        if dark_path is not None:
-            dark_data, dark_info = pio.read_stack(dark_path)
-            dark = np.moveaxis(dark_data, dark_info.channel_axis, 0)
-        M, names = design_matrix(refs, n_channels=data.shape[0], offset=offset)
-        n_rows = data.shape[-2]
+        refs = read_references_csv(refs_path)
+        with pio.open_stack(stack_path) as reader:
+            n_rows = reader.info.n_rows
         bar = st.progress(0.0, text="unmixing…")
-        parts: list = []
-        qc = None
-        for r0 in range(0, n_rows, _ROWS_PER_BLOCK):
-            r1 = min(n_rows, r0 + _ROWS_PER_BLOCK)
-            block = data[..., r0:r1, :]
-            res = unmix_stack(block, refs, method=method, dark=None if dark is None else dark[..., r0:r1, :],
-                              offset=offset, gain_e_per_count=gain, read_noise_e=read_noise)
-            if qc is None:
-                qc = QcAccumulator(M, names, method, res.qc["condition_number"])
-            qc.add(res.abundances, res.residual_rms, res.status)
-            parts.append(res)
-            bar.progress(r1 / n_rows, text=f"unmixing… rows {r1} of {n_rows}")
+        done = [0]
+
+        def advance(rows: int) -> None:
+            done[0] += rows
+            bar.progress(min(1.0, done[0] / max(1, n_rows)), text=f"unmixing… rows {done[0]} of {n_rows}")
+
+        rois = [line.strip() for line in rois_text.splitlines() if line.strip()]
+        res = unmix_file(stack_path, refs, folder / f"{stem}_abundance.ome.tif", method=method, dark_path=dark_path,
+                         offset=offset, gain_e_per_count=gain, read_noise_e=read_noise, rois=rois or None,
+                         roi_background=background or "background", progress=advance)
         bar.empty()
-        abundances = np.concatenate([p.abundances for p in parts], axis=-2)
-        stderr = np.concatenate([p.standard_error for p in parts], axis=-2)
-        residual = np.concatenate([p.residual_rms for p in parts], axis=-2)
-        shape_yx = abundances.shape[-2:]
-        rois = [proi.parse_rectangle(line, shape=shape_yx) for line in rois_text.splitlines() if line.strip()]
-        roi_rows = proi.roi_statistics(abundances, rois, names, background=background or None) if rois else []
+        abundances, info = pio.read_stack(res.outputs["abundance"])
+        stderr, _ = pio.read_stack(res.outputs["stderr"])
+        residual = tifffile.imread(res.outputs["residual"])  # one plane (Y, X): not a channel stack
     return {
-        "names": names, "abundances": abundances, "stderr": stderr, "residual": residual, "qc": qc.summary(),
-        "roi_rows": roi_rows, "channel_names": list(info.channel_names or []), "pixel_size_um": info.pixel_size_um,
-        "stack_name": stack_path.name, "notes": notes,
+        "names": list(res.qc["components"]), "abundances": abundances, "stderr": stderr,
+        "residual": np.asarray(residual).reshape(abundances.shape[1:]),
+        "qc": res.qc, "roi_rows": res.roi_rows or [], "outputs": res.outputs, "stack_name": stack_path.name,
+        "notes": notes,
     }
 
 
 def _downloads(result: dict) -> None:
-    from probeplan.io import write_stack
     from probeplan.outputs import table_to_csv_text
     from probeplan.roi import ROI_COLUMNS
 
-    folder = session_folder() / "results"
-    folder.mkdir(parents=True, exist_ok=True)
-    stem = safe_name(Path(result["stack_name"]).stem, "stack")
-    tif = write_stack(folder / f"{stem}_abundance.ome.tif", result["abundances"], channel_names=result["names"],
-                      pixel_size_um=result["pixel_size_um"])
-    err = write_stack(folder / f"{stem}_stderr.ome.tif", result["stderr"], channel_names=result["names"],
-                      pixel_size_um=result["pixel_size_um"])
+    tif, err = Path(result["outputs"]["abundance"]), Path(result["outputs"]["stderr"])
     c = st.columns(3)
     c[0].download_button("Abundance maps (OME-TIFF)", tif.read_bytes(), file_name=tif.name, mime="image/tiff",
                          key="dl_abundance")
     c[1].download_button("Standard errors (OME-TIFF)", err.read_bytes(), file_name=err.name, mime="image/tiff",
                          key="dl_stderr")
     if result["roi_rows"]:
+        stem = safe_name(Path(result["stack_name"]).stem, "stack")
         c[2].download_button("ROI statistics (CSV)", table_to_csv_text(result["roi_rows"], ROI_COLUMNS),
                              file_name=f"{stem}_roi.csv", mime="text/csv", key="dl_roi")
 
