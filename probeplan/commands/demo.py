@@ -25,7 +25,14 @@ def run(args: argparse.Namespace) -> int:
                     "files": [str(f) for f in result.files]})
     else:
         print(RESEARCH_USE_CAUTION)
-        for f in result.files:
-            print(f"wrote {f}")
+        summary = result.summary
+        qc = summary.get("qc", {})
+        verdict = "every rule passes" if result.rules_passed else "some rules FAIL (see the report)"
+        print(f"1. plan checked against the demo institution's rules: {verdict}")
+        recovery = "; ".join(f"{r['component']} {100 * r['within_2_sigma']:.1f} %" for r in summary.get("recovery", []))
+        print(f"2. stack unmixed ({qc.get('method', '')}, {qc.get('n_pixels', 0)} pixels, condition number "
+              f"{qc.get('condition_number', float('nan')):.3g}); pixels within ±2σ of the known truth: {recovery}")
+        print(f"3. ROI statistics and the overlay written under {result.out_dir / 'unmix'}")
+        print(f"4. {len(result.files)} files written in {result.out_dir}")
         print(f"demo finished; report: {result.report.resolve()}")
     return 0
