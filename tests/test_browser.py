@@ -74,6 +74,22 @@ def _wait_idle(page) -> None:
     page.locator("[data-testid='stStatusWidget']").wait_for(state="hidden", timeout=UI_TIMEOUT_MS)
 
 
+def _upload(page, index: int, path: Path, tries: int = 3) -> None:
+    """Put ``path`` into the index-th file uploader once the page is idle; retry if a rerun swallowed it."""
+    from playwright.sync_api import TimeoutError as PlaywrightTimeout
+
+    for attempt in range(tries):
+        _wait_idle(page)
+        page.locator("input[type='file']").nth(index).set_input_files(str(path))
+        try:
+            page.locator("[data-testid='stFileUploader']").nth(index).get_by_text(path.name).wait_for(
+                timeout=UI_TIMEOUT_MS // tries)
+            return
+        except PlaywrightTimeout:
+            if attempt == tries - 1:
+                raise
+
+
 def _stop(proc: subprocess.Popen) -> None:
     """Stop the server by its PID (``probeplan app`` replaces itself with Streamlit: one process)."""
     if proc.poll() is None:
@@ -156,12 +172,8 @@ def test_page_in_chromium(tmp_path):
                 # upload a stack and its reference spectra, unmix, see the abundance maps
                 page.get_by_text("Separate: unmix an image stack").click()
                 page.get_by_text("reference spectra (CSV)").wait_for(timeout=UI_TIMEOUT_MS)
-                inputs = page.locator("input[type='file']")
-                uploaders = page.locator("[data-testid='stFileUploader']")
-                inputs.nth(0).set_input_files(str(stack_path))
-                uploaders.nth(0).get_by_text("KB").wait_for(timeout=UI_TIMEOUT_MS)
-                inputs.nth(1).set_input_files(str(ref_path))
-                uploaders.nth(1).get_by_text(ref_path.name).wait_for(timeout=UI_TIMEOUT_MS)
+                _upload(page, 0, stack_path)
+                _upload(page, 1, ref_path)
                 # let the reruns the uploads started finish first: a value typed during a rerun can be lost
                 _wait_idle(page)
                 roi_text = "dot A:28,28,52,52\nbackground:110,0,128,15"
