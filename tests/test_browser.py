@@ -151,6 +151,7 @@ def test_page_in_chromium(tmp_path):
                 page.screenshot(path=str(ARTIFACTS / "browser-1-depth.png"))
 
                 # move a control: the first probe's emission peak 700 -> 720 nm; the plot must change
+                _wait_idle(page)
                 peak = page.get_by_label("probe 1 emission peak (nm)", exact=True)
                 peak.fill("720")
                 peak.press("Enter")
