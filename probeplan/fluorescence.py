@@ -237,23 +237,22 @@ def _depths(depth_mm) -> np.ndarray:
 
 
 def _excitation_fluence_photons(tissue: Tissue, source, irradiance_mw_per_cm2: float, depth_mm: np.ndarray):
-    """Fluence rate (photons/s/cm²) at each depth, integrated over the source spectrum; and Rd-weighted leakage."""
-    wl_x = _source_grid(source)
-    weights = source.spectrum_per_nm(wl_x)
-    weights = weights / np.trapezoid(weights, wl_x)
+    """Fluence rate (photons/s/cm²) at each depth, integrated over the source spectrum."""
+    wl_x, weights = _source_spectrum(source)
     mu_a, mu_sp = optical_properties(tissue, wl_x)
-    n = tissue.refractive_index
-    phi = transport.broad_beam_fluence(depth_mm[:, None], mu_a[None, :], mu_sp[None, :], n)  # (D, X)
+    phi = transport.broad_beam_fluence(depth_mm[:, None], mu_a[None, :], mu_sp[None, :], tissue.refractive_index)
     photons = irradiance_mw_per_cm2 * photons_per_s_per_mw(wl_x)  # photons/s/cm² per nm-weight
-    fluence = np.trapezoid(phi * photons * weights, wl_x, axis=-1)
-    return wl_x, weights, photons, mu_a, mu_sp, fluence
+    return np.trapezoid(phi * photons * weights, wl_x, axis=-1)
 
 
-def _source_grid(source) -> np.ndarray:
+def _source_spectrum(source) -> tuple[np.ndarray, np.ndarray]:
+    """15 wavelengths (nm) across ±3 widths of the source and its spectrum on them, normalised to unit area."""
     centre = float(source.centre_nm)
     width = float(getattr(source, "fwhm_nm", None) or getattr(source, "linewidth_nm", 1.0) or 1.0)
     half = max(3.0 * width, 1.0)
-    return np.linspace(centre - half, centre + half, 15)
+    wl_x = np.linspace(centre - half, centre + half, 15)
+    weights = source.spectrum_per_nm(wl_x)
+    return wl_x, weights / np.trapezoid(weights, wl_x)
 
 
 def _detection(camera, lens) -> float:
@@ -372,7 +371,7 @@ def _signal_rate(tissue, probe, source, irradiance, emission_filter, camera, len
     z = np.maximum(depth[:, None] + offset[None, :], 0.0)  # (D, S) slice depths; above the skin counts as at it
     dz = np.broadcast_to(radius * weights, z.shape)  # (D, S) slice thickness weights, mm
     rho = np.broadcast_to(radius * np.sqrt(1.0 - nodes**2), z.shape)  # (D, S) slice radii, mm
-    _, _, _, _, _, fluence = _excitation_fluence_photons(tissue, source, irradiance, z.ravel())
+    fluence = _excitation_fluence_photons(tissue, source, irradiance, z.ravel())
     eps = float(np.asarray(probe.molar_extinction_per_M_cm(float(source.centre_nm))))
     mu_a_probe = math.log(10.0) * eps * conc_uM * M_PER_UM  # cm^-1
     # photons/s per mm³ of inclusion in each slice (fluence per cm², coefficient per cm → per cm³ → per mm³)
@@ -408,7 +407,7 @@ def _half_space_integral(tissue, source, irradiance, wl_em, emission_per_nm, yie
     mu_eff_x = float(transport.mu_eff(mu_a_x, mu_sp_x)) / MM_PER_CM
     z_max = min(60.0, 25.0 / max(mu_eff_x, 1e-3))
     z = np.concatenate([[0.0], np.geomspace(1e-3, z_max, _N_BACKGROUND_DEPTHS - 1)])
-    _, _, _, _, _, fluence = _excitation_fluence_photons(tissue, source, irradiance, z)  # photons/s/cm²
+    fluence = _excitation_fluence_photons(tissue, source, irradiance, z)  # photons/s/cm²
     mu_a, mu_sp = optical_properties(tissue, wl_em)
     esc = disc_escape_fraction(np.inf, z[:, None], mu_a[None, :], mu_sp[None, :], tissue.refractive_index)
     # per cm³: yield_per_cm * fluence photons/s; per mm³ divide by 1000; integrate dz in mm.
@@ -464,9 +463,7 @@ def background_rates(
         af_exit = _half_space_integral(tissue, source, irradiance, wl_af, af.emission_per_nm(wl_af, x_nm),
                                        af.yield_at(x_nm))
         af_rate = float(np.trapezoid(af_exit * pixel * emission_filter.transmission(wl_af) * camera.qe(wl_af), wl_af))
-    wl_x = _source_grid(source)
-    weights = source.spectrum_per_nm(wl_x)
-    weights = weights / np.trapezoid(weights, wl_x)
+    wl_x, weights = _source_spectrum(source)
     mu_a_x, mu_sp_x = optical_properties(tissue, wl_x)
     rd = transport.diffuse_reflectance(mu_a_x, mu_sp_x, tissue.refractive_index)
     leak_exit = irradiance * photons_per_s_per_mw(wl_x) / MM2_PER_CM2 * rd * weights  # photons/s/mm²/nm

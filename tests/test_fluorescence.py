@@ -96,7 +96,7 @@ def test_sliced_sphere_tends_to_a_point_source_for_a_small_deep_target(setup):
     size, depth, conc = 0.2, 6.0, 1.0
     p = _profile(setup, depth_mm=[depth], target_size_mm=size, concentration_uM=conc, uptake_ratio=1e9)
     wl = p.wavelength_nm
-    fluence = _excitation_fluence_photons(tissue, setup["source"], 10.0, np.array([depth]))[-1][0]
+    fluence = _excitation_fluence_photons(tissue, setup["source"], 10.0, np.array([depth]))[0]
     eps = float(setup["probe"].molar_extinction_per_M_cm(640.0))
     emitted = setup["probe"].quantum_yield * math.log(10) * eps * conc * M_PER_UM * fluence * math.pi / 6 * (size / 10) ** 3
     mu_a, mu_sp = optical_properties(tissue, wl)
