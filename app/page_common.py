@@ -10,7 +10,6 @@ notes as a fresh one.
 from __future__ import annotations
 
 import contextlib
-import math
 import re
 import shutil
 import tempfile
@@ -144,14 +143,9 @@ def fmt(value: Any, digits: int = 3) -> str:
     if isinstance(value, bool):
         return "yes" if value else "no"
     if isinstance(value, (int, float)):
-        v = float(value)
-        if math.isnan(v):
-            return "–"
-        if math.isinf(v):
-            return "∞" if v > 0 else "−∞"
-        if v != 0 and (abs(v) >= 1e5 or abs(v) < 1e-3):
-            return f"{v:.{digits - 1}e}"
-        return f"{v:.{digits}g}"
+        from probeplan.report import format_number
+
+        return format_number(float(value), digits)
     return str(value)
 
 

@@ -57,6 +57,7 @@ import numpy as np
 
 from probeplan.errors import AssumptionWarning, InputError, ProbeplanWarning, input_error
 from probeplan.plan import Plan
+from probeplan.report import Table
 from probeplan.rules import RuleCheck, Rules, check_value, default_rules
 from probeplan.tomlsource import format_path, line_of
 
@@ -103,15 +104,8 @@ SCHEDULE_NOTES = (
 )
 
 
-@dataclass
-class EvaluationTable:
-    """One result table: ``name`` (CSV file stem), ``title``, rows of dicts, column order and a note."""
-
-    name: str
-    title: str
-    rows: list[dict[str, Any]]
-    columns: list[str] | None = None
-    note: str = ""
+#: One result table (name = CSV file stem, title, rows, column order, note): the report's own table type.
+EvaluationTable = Table
 
 
 @dataclass

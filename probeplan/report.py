@@ -24,8 +24,8 @@ from probeplan import RESEARCH_USE_CAUTION, __version__
 from probeplan.errors import input_error
 from probeplan.outputs import write_csv_atomic, write_json_atomic, write_text_atomic
 
-__all__ = ["Report", "Table", "write_report", "HEAVY_METAL_CAUTION", "LASER_CAUTION", "figure_png_bytes", "plan_report",
-           "report_pdf_bytes"]
+__all__ = ["Report", "Table", "write_report", "format_number", "HEAVY_METAL_CAUTION", "LASER_CAUTION",
+           "figure_png_bytes", "plan_report", "report_pdf_bytes"]
 
 #: Shown whenever a plan uses a Cd- or Pb-containing probe.
 HEAVY_METAL_CAUTION = (
@@ -97,14 +97,25 @@ def _cell(value: Any) -> str:
     if isinstance(value, bool):
         return "yes" if value else "no"
     if isinstance(value, float):
-        if math.isnan(value):
-            return "–"
-        if math.isinf(value):
-            return "∞" if value > 0 else "−∞"
-        if value != 0 and (abs(value) >= 1e5 or abs(value) < 1e-3):
-            return f"{value:.3e}"
-        return f"{value:.4g}"
+        return format_number(value)
     return html.escape(str(value))
+
+
+def format_number(value: float, digits: int = 4) -> str:
+    """A number as short text for tables: ``digits`` significant figures, scientific outside 1e-3..1e5.
+
+    Examples
+    --------
+    >>> format_number(0.123456), format_number(1.5e6), format_number(float("inf")), format_number(float("nan"))
+    ('0.1235', '1.500e+06', '∞', '–')
+    """
+    if math.isnan(value):
+        return "–"
+    if math.isinf(value):
+        return "∞" if value > 0 else "−∞"
+    if value != 0 and (abs(value) >= 1e5 or abs(value) < 1e-3):
+        return f"{value:.{digits - 1}e}"
+    return f"{value:.{digits}g}"
 
 
 _CSS = """
