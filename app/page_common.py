@@ -143,7 +143,7 @@ def fmt(value: Any, digits: int = 3) -> str:
     if isinstance(value, bool):
         return "yes" if value else "no"
     if isinstance(value, (int, float)):
-        from probeplan.report import format_number
+        from probeplan.report.document import format_number
 
         return format_number(float(value), digits)
     return str(value)

@@ -51,12 +51,12 @@ def _widths(text: str) -> list[float]:
 
 
 def _run_search(setup: Setup, materials: list[str]) -> None:
-    """Build the candidates, run probeplan.design.design with a progress bar, keep the result."""
+    """Build the candidates, run probeplan.design.search.design with a progress bar, keep the result."""
     import numpy as np
 
-    from probeplan import design as design_mod
-    from probeplan import optics
-    from probeplan.commands._build import make_camera
+    from probeplan.design import search as design_mod
+    from probeplan.model import optics
+    from probeplan.catalog.setup import make_camera
 
     ss = st.session_state
     notes: list[str] = []
@@ -97,7 +97,7 @@ def _run_search(setup: Setup, materials: list[str]) -> None:
 
 def design_section(setup: Setup) -> None:
     """Candidate inputs, the search button and the ranked sets with their 'use this set' buttons."""
-    from probeplan.dots import material_names
+    from probeplan.model.dots import material_names
 
     _init()
     ss = st.session_state

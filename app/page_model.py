@@ -54,7 +54,7 @@ class Setup(NamedTuple):
 
 def build_tissue(setup: Setup):
     """The tissue preset, with the composition changes applied."""
-    from probeplan.tissue import tissue_preset
+    from probeplan.model.tissue import tissue_preset
 
     tissue = tissue_preset(setup.tissue)
     return tissue.with_composition(**dict(setup.composition)) if setup.composition else tissue
@@ -62,7 +62,7 @@ def build_tissue(setup: Setup):
 
 def build_probes(setup: Setup) -> list:
     """Probe objects from (material, peak, QY, extinction) values."""
-    from probeplan import dots
+    from probeplan.model import dots
 
     probes = []
     for material, peak, qy, eps in setup.probes:
@@ -82,8 +82,8 @@ def build_probes(setup: Setup) -> list:
 
 def build_channels(setup: Setup) -> list:
     """One channel per emission filter; source, camera, lens and exposure shared."""
-    from probeplan import optics
-    from probeplan.commands._build import make_camera, make_filter
+    from probeplan.model import optics
+    from probeplan.catalog.setup import make_camera, make_filter
 
     source = optics.Laser(setup.excitation_nm)
     lens = optics.Lens(setup.f_number, setup.magnification)
@@ -93,7 +93,7 @@ def build_channels(setup: Setup) -> list:
 
 def autofluorescence(setup: Setup):
     """The autofluorescence assumption of the set-up (None: the library default)."""
-    from probeplan.fluorescence import Autofluorescence
+    from probeplan.model.fluorescence import Autofluorescence
 
     y = setup.autofluorescence_yield_per_cm
     return None if y is None else Autofluorescence(yield_per_cm=y)
@@ -112,9 +112,9 @@ def depth_grid_mm(depth_max_mm: float, depth_step_mm: float, target_depth_mm: fl
 
 @st.cache_data(max_entries=64, show_spinner=False)
 def depth_profiles(setup: Setup, depth_max_mm: float, depth_step_mm: float):
-    """One :class:`~probeplan.fluorescence.DepthProfile` per probe (its own filter) and the notes."""
+    """One :class:`~probeplan.model.fluorescence.DepthProfile` per probe (its own filter) and the notes."""
     from probeplan.errors import input_error
-    from probeplan.fluorescence import depth_profile
+    from probeplan.model.fluorescence import depth_profile
 
     notes: list[str] = []
     with captured_warnings(notes):
@@ -143,9 +143,9 @@ def depth_profiles(setup: Setup, depth_max_mm: float, depth_step_mm: float):
 
 @st.cache_data(max_entries=64, show_spinner=False)
 def depth_png(setup: Setup, depth_max_mm: float, depth_step_mm: float, sbr_threshold: float) -> bytes:
-    """SBR, SNR and blur against depth (probeplan.plots.depth_figure) as PNG bytes."""
-    from probeplan.plots import depth_figure
-    from probeplan.report import figure_png_bytes
+    """SBR, SNR and blur against depth (probeplan.report.figures.depth_figure) as PNG bytes."""
+    from probeplan.report.figures import depth_figure
+    from probeplan.report.document import figure_png_bytes
 
     profiles, _ = depth_profiles(setup, depth_max_mm, depth_step_mm)
     fig = depth_figure(profiles, sbr_threshold=sbr_threshold, target_depth_mm=setup.target_depth_mm)
@@ -155,7 +155,7 @@ def depth_png(setup: Setup, depth_max_mm: float, depth_step_mm: float, sbr_thres
 @st.cache_data(max_entries=64, show_spinner=False)
 def channel_results(setup: Setup):
     """The channel report at the target depth and the notes."""
-    from probeplan.channels import channel_report
+    from probeplan.model.channels import channel_report
 
     notes: list[str] = []
     with captured_warnings(notes):
@@ -174,10 +174,10 @@ def channel_results(setup: Setup):
 
 @st.cache_data(max_entries=64, show_spinner=False)
 def channels_png(setup: Setup) -> bytes:
-    """Emission spectra with filter bands and the crosstalk map (probeplan.plots.channels_figure)."""
-    from probeplan.fluorescence import emission_grid_nm
-    from probeplan.plots import channels_figure
-    from probeplan.report import figure_png_bytes
+    """Emission spectra with filter bands and the crosstalk map (probeplan.report.figures.channels_figure)."""
+    from probeplan.model.fluorescence import emission_grid_nm
+    from probeplan.report.figures import channels_figure
+    from probeplan.report.document import figure_png_bytes
 
     rep, _ = channel_results(setup)
     notes: list[str] = []
@@ -192,7 +192,7 @@ def channels_png(setup: Setup) -> bytes:
 @st.cache_data(max_entries=256, show_spinner=False)
 def skin_mpe(excitation_nm: float, illumination_s: float):
     """Skin maximum permissible exposure (mW/cm²) and any note the library gave."""
-    from probeplan import safety
+    from probeplan.study import safety
 
     notes: list[str] = []
     with captured_warnings(notes):
@@ -203,13 +203,14 @@ def skin_mpe(excitation_nm: float, illumination_s: float):
 @st.cache_data(show_spinner=False)
 def material_ranges() -> dict[str, tuple[float, float]]:
     """Emission range (nm) of every dot material in the library."""
-    from probeplan import dots
+    from probeplan.model import dots
 
     return {r["name"]: tuple(r["emission_range_nm"]) for r in dots.list_materials()}
 
 
 def camera_names() -> list[str]:
     """Built-in cameras and those in the user library folder."""
-    from probeplan import library, optics
+    from probeplan.catalog import library
+    from probeplan.model import optics
 
     return [r["name"] for r in optics.list_cameras()] + list(library.user_camera_names())

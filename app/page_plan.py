@@ -47,7 +47,7 @@ def _reset_demo() -> None:
 
 def _report_files(ev) -> tuple[bytes, bytes]:
     """(report.html bytes, zip bytes of every report file), written in the session folder."""
-    from probeplan.report import plan_report, write_report
+    from probeplan.report.document import plan_report, write_report
 
     out = session_folder() / "report"
     written = write_report(plan_report(ev), out)
@@ -84,9 +84,9 @@ def plan_view() -> None:
     if check:
         ss.pop("plan_evaluation", None)
         with guard("plan"):
-            from probeplan.evaluate import evaluate_plan
-            from probeplan.plan import parse_plan_text
-            from probeplan.rules import default_rules, parse_rules_text
+            from probeplan.study.evaluate import evaluate_plan
+            from probeplan.study.plan import parse_plan_text
+            from probeplan.study.rules import default_rules, parse_rules_text
 
             plan = parse_plan_text(str(ss["w_plan_text"]), source="plan.toml")
             rules_text = str(ss["w_rules_text"])

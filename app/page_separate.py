@@ -36,7 +36,7 @@ def demo_inputs() -> tuple[Path, Path, Path | None] | None:
 def _default_rois() -> str:
     """ROI lines of the demo plan (an example to edit)."""
     try:
-        from probeplan.plan import load_plan
+        from probeplan.study.plan import load_plan
 
         rois = load_plan(DEMO_DIR / "plan.toml").analysis.get("rois") or []
         return "\n".join(str(r) for r in rois)
@@ -45,16 +45,16 @@ def _default_rois() -> str:
 
 
 def maps_png(maps: np.ndarray, titles: list[str], unit: str, *, cmap: str = "magma") -> bytes:
-    """PNG of :func:`probeplan.plots.maps_figure`."""
-    from probeplan.plots import maps_figure
-    from probeplan.report import figure_png_bytes
+    """PNG of :func:`probeplan.report.figures.maps_figure`."""
+    from probeplan.report.figures import maps_figure
+    from probeplan.report.document import figure_png_bytes
 
     return figure_png_bytes(maps_figure(maps, titles, unit, cmap=cmap), dpi=FIGURE_DPI)
 
 
 def _overlay(abundances: np.ndarray):
-    """False-colour RGB overlay (probeplan.overlay), first plane of Z/T stacks; None if it cannot be made."""
-    from probeplan import overlay
+    """False-colour RGB overlay (probeplan.unmixing.overlay), first plane of Z/T stacks; None if it cannot be made."""
+    from probeplan.unmixing import overlay
 
     try:
         rgb = overlay.overlay_rgb(abundances)
@@ -67,12 +67,12 @@ def _overlay(abundances: np.ndarray):
 
 def _unmix(stack_path: Path, refs_path: Path, dark_path: Path | None, method: str, gain: float, read_noise: float,
            offset: bool, rois_text: str, background: str) -> dict:
-    """Unmix with :func:`probeplan.unmix.unmix_file` into the session folder (progress bar per block), read back."""
+    """Unmix with :func:`probeplan.unmixing.pipeline.unmix_file` into the session folder (progress bar per block), read back."""
     import tifffile
 
-    from probeplan import io as pio
-    from probeplan.references import read_references_csv
-    from probeplan.unmix import unmix_file
+    from probeplan.io import stacks as pio
+    from probeplan.unmixing.references import read_references_csv
+    from probeplan.unmixing.pipeline import unmix_file
 
     notes: list[str] = []
     folder = session_folder() / "results"
@@ -106,8 +106,8 @@ def _unmix(stack_path: Path, refs_path: Path, dark_path: Path | None, method: st
 
 
 def _downloads(result: dict) -> None:
-    from probeplan.outputs import table_to_csv_text
-    from probeplan.roi import ROI_COLUMNS
+    from probeplan.io.atomic import table_to_csv_text
+    from probeplan.unmixing.roi import ROI_COLUMNS
 
     tif, err = Path(result["outputs"]["abundance"]), Path(result["outputs"]["stderr"])
     c = st.columns(3)

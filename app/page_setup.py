@@ -38,7 +38,7 @@ COMPOSITION_FIELDS = (
 
 
 def _default_af_yield() -> float:
-    from probeplan.fluorescence import Autofluorescence
+    from probeplan.model.fluorescence import Autofluorescence
 
     return float(Autofluorescence().yield_per_cm)
 
@@ -82,7 +82,7 @@ def init_state() -> None:
 
 def _load_composition(force: bool = False) -> None:
     """Fill the composition sliders from the chosen preset."""
-    from probeplan.tissue import tissue_preset
+    from probeplan.model.tissue import tissue_preset
 
     ss = st.session_state
     if not force and all(f"w_comp_{f}" in ss for f, *_ in COMPOSITION_FIELDS):
@@ -115,7 +115,7 @@ def apply_probe_set(probes: list[tuple[str, float, float, float]], filters: list
 
 def setup_sidebar() -> dict:
     """Tissue, excitation, camera and target widgets in the sidebar; returns their values."""
-    from probeplan.tissue import preset_names
+    from probeplan.model.tissue import preset_names
 
     sb = st.sidebar
     sb.header("Imaging set-up")

@@ -42,7 +42,7 @@ def _lost_depth_text(depth_mm: float, deepest_mm: float) -> str:
 
 def depth_view(setup: Setup, mpe: float | None) -> None:
     """SBR, SNR and blur against depth, and the depth at which each probe is lost."""
-    from probeplan.fluorescence import DEFAULT_SBR_THRESHOLD, depth_at_threshold
+    from probeplan.model.fluorescence import DEFAULT_SBR_THRESHOLD, depth_at_threshold
 
     st.subheader("SBR, SNR and blur against depth")
     ss = st.session_state
@@ -90,7 +90,7 @@ def channels_view(setup: Setup, mpe: float | None) -> None:
     """Spectra with filter bands, crosstalk, separability; then the design search."""
     from page_design import design_section
 
-    from probeplan.channels import SEPARABLE_CONDITION_LIMIT
+    from probeplan.model.channels import SEPARABLE_CONDITION_LIMIT
 
     st.subheader(f"Separability at the target depth ({setup.target_depth_mm:g} mm)")
     irradiance_check(setup, mpe)

@@ -17,8 +17,8 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
-from probeplan import transport as tr  # noqa: E402
-from probeplan.montecarlo import Layer, simulate_point_source, simulate_slab  # noqa: E402
+from probeplan.model import transport as tr  # noqa: E402
+from probeplan.model.montecarlo import Layer, simulate_point_source, simulate_slab  # noqa: E402
 
 MU_A, MU_SP, N_REL = 0.1, 10.0, 1.4  # cm^-1, cm^-1, tissue/air
 MFP_MM = 10.0 / (MU_A + MU_SP)

@@ -2,6 +2,6 @@
 
 import sys
 
-from probeplan.cli import main
+from probeplan.cli.main import main
 
 sys.exit(main())

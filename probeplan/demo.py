@@ -73,9 +73,9 @@ class DemoModel:
 
 def demo_model(plan) -> DemoModel:
     """Probes, channels and responses of a plan at its target depth (the forward model of the demo stacks)."""
-    from probeplan.channels import response_matrix
-    from probeplan.evaluate import plan_model
-    from probeplan.fluorescence import background_rates
+    from probeplan.model.channels import response_matrix
+    from probeplan.study.evaluate import plan_model
+    from probeplan.model.fluorescence import background_rates
 
     m = plan_model(plan)
     tgt = plan.target
@@ -93,10 +93,10 @@ def demo_model(plan) -> DemoModel:
 
 def generate_demo_files(folder: str | Path, plan=None) -> list[Path]:
     """Write the demo's reference spectra and stacks into ``folder`` (seeded: the same bytes every time)."""
-    from probeplan.io import write_stack
-    from probeplan.outputs import write_csv_atomic
-    from probeplan.plan import load_plan
-    from probeplan.synthetic import DEMO_SEED, demo_scene, simulate_counts
+    from probeplan.io.stacks import write_stack
+    from probeplan.io.atomic import write_csv_atomic
+    from probeplan.study.plan import load_plan
+    from probeplan.unmixing.synthetic import DEMO_SEED, demo_scene, simulate_counts
 
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
@@ -144,13 +144,13 @@ def run_demo(out_dir: str | Path = DEFAULT_DEMO_OUT) -> DemoResult:
     ground truth (the fraction of pixels inside ±2 standard errors); write the
     report (``report/report.html``) with every table and figure.
     """
-    from probeplan.evaluate import evaluate_plan
-    from probeplan.io import read_stack
-    from probeplan.plan import load_plan
-    from probeplan.references import read_references_csv
-    from probeplan.report import plan_report, write_report
-    from probeplan.rules import load_rules
-    from probeplan.unmix import unmix_file
+    from probeplan.study.evaluate import evaluate_plan
+    from probeplan.io.stacks import read_stack
+    from probeplan.study.plan import load_plan
+    from probeplan.unmixing.references import read_references_csv
+    from probeplan.report.document import plan_report, write_report
+    from probeplan.study.rules import load_rules
+    from probeplan.unmixing.pipeline import unmix_file
 
     folder = demo_folder()
     missing = [f for f in DEMO_FILES if not (folder / f).is_file()]
@@ -195,7 +195,7 @@ def run_demo(out_dir: str | Path = DEFAULT_DEMO_OUT) -> DemoResult:
     report.figures.append(("False-colour overlay of the unmixed abundances", report.extra_files["overlay.png"]))
     report.assumptions.append(
         "Demo data: invented scenario; stacks simulated from the channel model at the target depth with Poisson and "
-        "read noise, no lateral blur (probeplan.synthetic).")
+        "read noise, no lateral blur (probeplan.unmixing.synthetic).")
     files = write_report(report, out / "report")
     written = [*result.outputs.values(), *files.values()]
     return DemoResult(out, files["html"], [Path(p) for p in written], rules_passed=evaluation.passed,

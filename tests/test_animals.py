@@ -1,4 +1,4 @@
-"""Tests of probeplan.animals against statsmodels (an independent power solver) and Cohen's table.
+"""Tests of probeplan.study.animals against statsmodels (an independent power solver) and Cohen's table.
 
 Sources:
 * [SM] statsmodels.stats.power.TTestIndPower, the registry's reference implementation.
@@ -16,8 +16,8 @@ import math
 import pytest
 from statsmodels.stats.power import TTestIndPower
 
-from probeplan import animals
-from probeplan.animals import (
+from probeplan.study import animals
+from probeplan.study.animals import (
     SampleSize,
     animals_per_group,
     power_two_sample,

@@ -221,7 +221,7 @@ def test_design_bad_widths_is_an_error_line():
 
 def _test_stack(tmp_path: Path) -> tuple[bytes, bytes, np.ndarray, np.ndarray]:
     """A 3-channel stack mixed from two known abundance maps (test data of our own)."""
-    from probeplan.io import write_stack
+    from probeplan.io.stacks import write_stack
 
     refs = np.array([[0.7, 0.1], [0.2, 0.3], [0.1, 0.6]])  # columns sum to 1 (the page's 'sum' normalisation)
     abundance = np.zeros((2, 40, 48))
@@ -389,8 +389,8 @@ def test_session_folder_is_removed_with_its_holder(page_common):
 
 
 def test_app_command_line_is_loopback_streamlit(monkeypatch, capsys):
-    from probeplan.cli import main
-    from probeplan.commands import app as app_cmd
+    from probeplan.cli.main import main
+    from probeplan.cli.commands import app as app_cmd
 
     launched = {}
     monkeypatch.setattr(app_cmd, "_launch", lambda cmd: launched.setdefault("cmd", cmd) and 0)
@@ -407,8 +407,8 @@ def test_app_command_line_is_loopback_streamlit(monkeypatch, capsys):
 
 
 def test_app_command_warns_when_not_loopback(monkeypatch, capsys):
-    from probeplan.cli import main
-    from probeplan.commands import app as app_cmd
+    from probeplan.cli.main import main
+    from probeplan.cli.commands import app as app_cmd
 
     monkeypatch.setattr(app_cmd, "_launch", lambda cmd: 0)
     assert main(["app", "--host", "0.0.0.0"]) == 0
@@ -417,8 +417,8 @@ def test_app_command_warns_when_not_loopback(monkeypatch, capsys):
 
 @pytest.mark.parametrize("argv", [["app", "--port", "0"], ["app", "--max-upload-mb", "0"], ["app", "--host", " "]])
 def test_app_command_refuses_bad_options(monkeypatch, capsys, argv):
-    from probeplan.cli import main
-    from probeplan.commands import app as app_cmd
+    from probeplan.cli.main import main
+    from probeplan.cli.commands import app as app_cmd
 
     monkeypatch.setattr(app_cmd, "_launch", lambda cmd: pytest.fail("must not start"))
     assert main(argv) == 2
@@ -426,8 +426,8 @@ def test_app_command_refuses_bad_options(monkeypatch, capsys, argv):
 
 
 def test_app_command_without_the_page(monkeypatch, tmp_path, capsys):
-    from probeplan.cli import main
-    from probeplan.commands import app as app_cmd
+    from probeplan.cli.main import main
+    from probeplan.cli.commands import app as app_cmd
 
     fake = tmp_path / "site-packages" / "probeplan" / "__init__.py"
     fake.parent.mkdir(parents=True)

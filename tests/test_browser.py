@@ -103,7 +103,7 @@ def _stop(proc: subprocess.Popen) -> None:
 
 def _test_stack(folder: Path) -> tuple[Path, Path]:
     """A three-channel stack mixed from two known abundance maps, and its reference spectra (our own test data)."""
-    from probeplan.io import write_stack
+    from probeplan.io.stacks import write_stack
 
     refs = np.array([[0.7, 0.1], [0.2, 0.3], [0.1, 0.6]])
     yy, xx = np.mgrid[0:96, 0:128]

@@ -5,8 +5,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from probeplan import dots, optics
-from probeplan.channels import (
+from probeplan.model import dots
+from probeplan.model import optics
+from probeplan.model.channels import (
     channel_report,
     condition_number,
     crosstalk,

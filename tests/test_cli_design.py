@@ -6,9 +6,10 @@ import json
 
 import pytest
 
-from probeplan import dots, optics
-from probeplan.cli import main
-from probeplan.design import design
+from probeplan.model import dots
+from probeplan.model import optics
+from probeplan.cli.main import main
+from probeplan.design.search import design
 
 BASE = ["design", "--candidate-probe", "CdTe:660-720:20", "--candidate-probe", "CdTe:690",
         "--candidate-filter", "660/20", "--candidate-filter", "700/40", "--filter-grid", "680:740:30:20",

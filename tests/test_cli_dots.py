@@ -1,4 +1,4 @@
-"""Tests of ``probeplan dots`` through probeplan.cli.main."""
+"""Tests of ``probeplan dots`` through probeplan.cli.main.main."""
 
 from __future__ import annotations
 
@@ -6,7 +6,7 @@ import json
 
 import pytest
 
-from probeplan.cli import main
+from probeplan.cli.main import main
 
 
 def _json(capsys):

@@ -7,8 +7,8 @@ import re
 
 import pytest
 
-from probeplan.cli import main
-from probeplan.report import Report, write_report
+from probeplan.cli.main import main
+from probeplan.report.document import Report, write_report
 
 BASE = ["--irradiance", "8", "--exposure-s", "0.01", "--f-number", "4", "--binning", "2"]
 
@@ -70,7 +70,7 @@ def test_report_is_self_contained(tmp_path):
     import matplotlib
 
     matplotlib.use("Agg")
-    from probeplan.plots import new_figure
+    from probeplan.report.figures import new_figure
 
     rep = Report("Test report", cautions=["heavy metal"], assumptions=["an assumption"])
     rep.add_table("checks", "Rule checks", [{"rule": "a", "passed": True}, {"rule": "b", "passed": False}])

@@ -9,8 +9,8 @@ from pathlib import Path
 import pytest
 
 from probeplan import RESEARCH_USE_CAUTION
-from probeplan.cli import main
-from probeplan.report import HEAVY_METAL_CAUTION, LASER_CAUTION
+from probeplan.cli.main import main
+from probeplan.report.document import HEAVY_METAL_CAUTION, LASER_CAUTION
 
 
 def _evaluation_tests():
@@ -175,7 +175,7 @@ def test_out_that_is_a_file_or_an_input_is_refused(tmp_path, capsys):
 
 
 def test_failure_while_writing_removes_the_folders_it_created(tmp_path, capsys, monkeypatch):
-    import probeplan.report
+    import probeplan.report.document
     from probeplan.errors import input_error
 
     def failing_write(report, out_dir):
@@ -183,7 +183,7 @@ def test_failure_while_writing_removes_the_folders_it_created(tmp_path, capsys, 
         (Path(out_dir) / "checks.csv").write_text("half", encoding="utf-8")
         raise input_error(str(out_dir), "no space left on the device", "free some space")
 
-    monkeypatch.setattr(probeplan.report, "write_report", failing_write)
+    monkeypatch.setattr(probeplan.report.document, "write_report", failing_write)
     out = tmp_path / "new" / "report"
     assert main(["plan", str(write_plan(tmp_path)), "--out", str(out)]) == 2
     assert "no space left" in capsys.readouterr().err

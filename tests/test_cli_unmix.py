@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 import tifffile
 
-from probeplan.cli import main
-from probeplan.io import read_stack
+from probeplan.cli.main import main
+from probeplan.io.stacks import read_stack
 
 M = np.array([[5, 1, 0.5], [3, 3, 1], [1, 4, 2], [0.5, 2, 4], [0.2, 1, 5]], float)
 NAMES = [f"ch{i}" for i in range(5)]
@@ -49,7 +49,7 @@ def test_single_stack_outputs(tmp_path, capsys):
     assert info.channel_names == ("dotA", "dotB", "dotC") and info.pixel_size_um == (2.0, 2.0)
     assert ab.dtype == np.float32
     # chunked file pipeline equals the in-memory library call (column-sum normalised references)
-    from probeplan.unmix import unmix
+    from probeplan.unmixing.pipeline import unmix
 
     expected = unmix(data, M / M.sum(axis=0))
     np.testing.assert_allclose(ab, expected.astype(np.float32), rtol=1e-6)
@@ -114,7 +114,7 @@ def test_folder_resume_and_checksums(tmp_path, capsys):
 
 
 def test_interrupt_leaves_no_partial_file(tmp_path, monkeypatch):
-    import probeplan.unmix as um
+    import probeplan.unmixing.pipeline as um
 
     _stack(tmp_path / "s.ome.tif")
     ref = _refs(tmp_path / "ref.csv")

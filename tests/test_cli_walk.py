@@ -1,6 +1,6 @@
 """Walk every subcommand with bad inputs: exit 2, a short message naming the file or option and the fix, no output.
 
-Subcommands are discovered as ``probeplan.cli`` discovers them.  Each one with a file input is
+Subcommands are discovered as ``probeplan.cli.main`` discovers them.  Each one with a file input is
 given that file missing, empty, truncated (the first half of a valid demo file), of the wrong
 type (a PNG or a TOML file where a TIFF/CSV is expected) and in the wrong unit; numeric options
 are given NaN, a negative number and text.  The checks: exit status 2, at most three lines on
@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from probeplan.cli import _command_modules, main
+from probeplan.cli.main import _command_modules, main
 
 DEMO = Path(__file__).resolve().parents[1] / "demo_tissue"
 COMMANDS = [name for name, _ in _command_modules()]
@@ -101,7 +101,7 @@ def _bad_files(tmp_path: Path, kind: str) -> dict[str, tuple[Path, str]]:
             continue
         path = folder / f"{name}{suffix}"
         if kind == "stack" and name == "wrong_unit":
-            from probeplan.io import write_stack
+            from probeplan.io.stacks import write_stack
 
             write_stack(path, np.zeros((4, 8, 8), np.uint16), channel_names=["0.665", "0.7", "0.78", "0.88"],
                         dtype=np.uint16)
@@ -207,7 +207,7 @@ def test_demo_refuses_an_existing_file_as_out(tmp_path, capsys):
                                   ["--max-upload-mb", "0"], ["--max-upload-mb", "abc"], ["--host", " "]],
                          ids=lambda a: " ".join(a))
 def test_app_bad_options_exit_2_without_starting(capsys, monkeypatch, argv):
-    import probeplan.commands.app as app
+    import probeplan.cli.commands.app as app
 
     def _no_launch(command):  # the server must never start in this test
         raise AssertionError(f"the page was launched: {command}")
@@ -263,7 +263,7 @@ def _with_option(base: list, option: str, value: str) -> list:
 
 @pytest.mark.parametrize(("label", "option", "value"), list(_numeric_cases()))
 def test_numeric_options_nan_negative_text(tmp_path, capsys, monkeypatch, label, option, value):
-    import probeplan.commands.app as app
+    import probeplan.cli.commands.app as app
 
     monkeypatch.setattr(app, "_launch", lambda command: pytest.fail(f"the page was launched: {command}"))
     base, _ = _NUMERIC[label]

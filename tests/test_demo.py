@@ -5,10 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from probeplan.cli import main
+from probeplan.cli.main import main
 from probeplan.demo import DEMO_FILES, demo_folder, generate_demo_files, run_demo
-from probeplan.io import read_stack
-from probeplan.references import read_references_csv
+from probeplan.io.stacks import read_stack
+from probeplan.unmixing.references import read_references_csv
 
 
 def test_shipped_demo_files_are_the_generator_output(tmp_path):
@@ -67,8 +67,8 @@ def test_demo_command(tmp_path, capsys):
 def test_references_from_the_channel_model_match_the_demo_references():
     # The demo's reference CSV was written from the channel model; predicting the references from the
     # plan (probeplan unmix --references-from-plan) must give the same probe columns.
-    from probeplan.evaluate import plan_references
-    from probeplan.plan import load_plan
+    from probeplan.study.evaluate import plan_references
+    from probeplan.study.plan import load_plan
 
     predicted = plan_references(load_plan(demo_folder() / "plan.toml"))
     shipped = read_references_csv(demo_folder() / "references.csv", normalise=None)

@@ -1,4 +1,4 @@
-"""Tests of probeplan.design: exactness of the pruned search, agreement with the channel model, limits.
+"""Tests of probeplan.design.search: exactness of the pruned search, agreement with the channel model, limits.
 
 Outside references used here:
 
@@ -18,8 +18,10 @@ import math
 import numpy as np
 import pytest
 
-from probeplan import channels, dots, optics
-from probeplan.design import (
+from probeplan.model import channels
+from probeplan.model import dots
+from probeplan.model import optics
+from probeplan.design.search import (
     camera_for_filter,
     design,
     exhaustive_search,
@@ -104,7 +106,7 @@ def test_exhaustive_search_equals_brute_force_on_random_tables(k, n_ch, n_src, s
 
 
 def test_each_candidate_equals_channel_report(small):
-    # design's evaluation must be the channel model's (probeplan.channels.channel_report), probe for probe
+    # design's evaluation must be the channel model's (probeplan.model.channels.channel_report), probe for probe
     probes, filters, res = small
     for cand in res.candidates[:2]:
         chosen = [probes[res.probe_names.index(n)] for n in cand.probes]

@@ -8,9 +8,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.integrate import quad
 
-from probeplan import dots
+from probeplan.model import dots
 from probeplan.errors import AssumptionWarning, InputError, ModelValidityWarning
-from probeplan.spectra import Spectrum
+from probeplan.model.spectra import Spectrum
 
 HC = 1239.84  # eV nm, the value REFERENCES.md uses for the PbS worked point
 SIZED = ("CdSe", "CdTe", "CdS", "PbS", "PbSe")

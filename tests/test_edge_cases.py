@@ -15,15 +15,16 @@ import warnings
 import numpy as np
 import pytest
 
-from probeplan import animals as an
-from probeplan import channels as ch
-from probeplan import dots, optics
-from probeplan import fluorescence as fl
-from probeplan import safety as sf
-from probeplan import tissue as ti
-from probeplan import transport as tr
+from probeplan.study import animals as an
+from probeplan.model import channels as ch
+from probeplan.model import dots
+from probeplan.model import optics
+from probeplan.model import fluorescence as fl
+from probeplan.study import safety as sf
+from probeplan.model import tissue as ti
+from probeplan.model import transport as tr
 from probeplan.errors import InputError, ModelValidityWarning, ProbeplanWarning
-from probeplan.unmix import CONDITION_WARN, check_references, unmix, unmix_stack
+from probeplan.unmixing.pipeline import CONDITION_WARN, check_references, unmix, unmix_stack
 
 # Three Gaussian-like emission bands sampled by four channels (invented, common practice, no source).
 M4x3 = np.array([[0.70, 0.10, 0.02], [0.25, 0.60, 0.08], [0.04, 0.25, 0.50], [0.01, 0.05, 0.40]])

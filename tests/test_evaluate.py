@@ -8,9 +8,9 @@ from pathlib import Path
 import pytest
 
 from probeplan.errors import InputError
-from probeplan.evaluate import SCHEDULE_NOTES, Evaluation, evaluate_plan, plan_model
-from probeplan.plan import load_plan, parse_plan_text
-from probeplan.rules import default_rules, load_rules
+from probeplan.study.evaluate import SCHEDULE_NOTES, Evaluation, evaluate_plan, plan_model
+from probeplan.study.plan import load_plan, parse_plan_text
+from probeplan.study.rules import default_rules, load_rules
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO_PLAN = ROOT / "demo_tissue" / "plan.toml"
@@ -311,7 +311,7 @@ def test_d_equal_one_needs_17_per_group():
 
 
 def test_imaging_predictions_follow_the_depth_model():
-    from probeplan.fluorescence import depth_profile
+    from probeplan.model.fluorescence import depth_profile
 
     ev = evaluate()
     m = ev.model

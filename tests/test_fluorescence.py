@@ -9,9 +9,11 @@ import pytest
 import scipy.constants as const
 from scipy import integrate
 
-from probeplan import dots, optics, transport
+from probeplan.model import dots
+from probeplan.model import optics
+from probeplan.model import transport
 from probeplan.errors import InputError
-from probeplan.fluorescence import (
+from probeplan.model.fluorescence import (
     Autofluorescence,
     depth_at_threshold,
     depth_profile,
@@ -19,7 +21,7 @@ from probeplan.fluorescence import (
     photons_per_s_per_mw,
     probe_rate_e_per_s,
 )
-from probeplan.tissue import Tissue
+from probeplan.model.tissue import Tissue
 
 
 @pytest.fixture(scope="module")
@@ -54,7 +56,7 @@ def test_photon_rate_against_scipy_constants():
                                                                 (0.5, 1.0, 0.05, 20.0)])
 def test_disc_escape_equals_integral_of_farrell_exitance(radius, depth, mu_a, mu_sp):
     # Closed form against numerical integration (scipy.integrate.quad) of the image-source surface flux
-    # of Farrell, Patterson & Wilson 1992 as implemented in probeplan.transport.
+    # of Farrell, Patterson & Wilson 1992 as implemented in probeplan.model.transport.
     def integrand(rho):
         return 2 * math.pi * rho * float(transport.point_source_exitance_per_mm2(rho, depth, mu_a, mu_sp))
 
@@ -89,8 +91,8 @@ def test_snr_and_sbr_follow_their_definitions(setup):
 def test_sliced_sphere_tends_to_a_point_source_for_a_small_deep_target(setup):
     # A target much smaller than its depth acts as a point source: the exitance above it per emitted
     # photon equals the image-source point exitance at rho = 0 (Farrell, Patterson & Wilson 1992).
-    from probeplan.fluorescence import M_PER_UM, _excitation_fluence_photons
-    from probeplan.tissue import optical_properties, tissue_preset
+    from probeplan.model.fluorescence import M_PER_UM, _excitation_fluence_photons
+    from probeplan.model.tissue import optical_properties, tissue_preset
 
     tissue = tissue_preset("soft tissue")
     size, depth, conc = 0.2, 6.0, 1.0
@@ -108,7 +110,7 @@ def test_sliced_sphere_tends_to_a_point_source_for_a_small_deep_target(setup):
 def test_coarse_transport_grid_matches_a_1nm_evaluation(setup, monkeypatch):
     # The 4 nm evaluation of the target's transport, interpolated onto the 1 nm grid, changes the detected
     # signal by well under 1 % against evaluating it at every nm (a numerical check of our own).
-    import probeplan.fluorescence as fl
+    import probeplan.model.fluorescence as fl
 
     coarse = _profile(setup)
     monkeypatch.setattr(fl, "_TRANSPORT_STEP_NM", 1.0)

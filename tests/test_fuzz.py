@@ -25,12 +25,12 @@ from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
 
 from probeplan.errors import InputError
-from probeplan.io import read_stack, write_stack
-from probeplan.optics import read_filter_csv
-from probeplan.plan import parse_plan_text
-from probeplan.references import read_references_csv
-from probeplan.rules import parse_rules_text
-from probeplan.spectra import MAX_WAVELENGTH_NM, MIN_WAVELENGTH_NM, parse_spectra_text, read_spectra_csv
+from probeplan.io.stacks import read_stack, write_stack
+from probeplan.model.optics import read_filter_csv
+from probeplan.study.plan import parse_plan_text
+from probeplan.unmixing.references import read_references_csv
+from probeplan.study.rules import parse_rules_text
+from probeplan.model.spectra import MAX_WAVELENGTH_NM, MIN_WAVELENGTH_NM, parse_spectra_text, read_spectra_csv
 
 DEMO = Path(__file__).resolve().parents[1] / "demo_tissue"
 #: Examples per test: enough to reach every refusal branch, small enough for ~1-2 s per test.

@@ -24,7 +24,7 @@ import numpy as np
 import pytest
 import tifffile
 
-from probeplan.cli import main
+from probeplan.cli.main import main
 
 DEMO = Path(__file__).resolve().parents[1] / "demo_tissue"
 MANIFEST = "probeplan_unmix_manifest.json"

@@ -5,7 +5,7 @@ import pytest
 import tifffile
 
 from probeplan.errors import InputError
-from probeplan.io import StackWriter, open_stack, read_stack, write_stack
+from probeplan.io.stacks import StackWriter, open_stack, read_stack, write_stack
 
 
 def _ome(path, data, axes, names=None, **meta):

@@ -6,8 +6,9 @@ import json
 
 import pytest
 
-from probeplan import library, tissue
-from probeplan.cli import main
+from probeplan.catalog import library
+from probeplan.model import tissue
+from probeplan.cli.main import main
 from probeplan.errors import InputError
 
 
@@ -87,7 +88,7 @@ def test_cli_debug_reraises():
 
 
 def test_cli_help_on_every_command(capsys):
-    from probeplan.cli import _command_modules
+    from probeplan.cli.main import _command_modules
 
     assert main(["--help"]) == 0
     for name, _ in _command_modules():

@@ -1,5 +1,5 @@
-"""Tests of probeplan.montecarlo: against adding-doubling (iadpython 0.5.3), closed-form single-scattering
-limits, conservation laws, and the diffusion formulas of probeplan.transport.
+"""Tests of probeplan.model.montecarlo: against adding-doubling (iadpython 0.5.3), closed-form single-scattering
+limits, conservation laws, and the diffusion formulas of probeplan.model.transport.
 
 Tolerances come from the reported batch-means standard errors: |MC - reference| < Z sigma + a small
 absolute allowance for the reference's own discretisation.  Photon counts are kept small so that the
@@ -15,9 +15,9 @@ import numpy as np
 import pytest
 from scipy import integrate, special
 
-from probeplan import transport as tr
+from probeplan.model import transport as tr
 from probeplan.errors import InputError
-from probeplan.montecarlo import ENGINES, Layer, McResult, _scatter_array, simulate_point_source, simulate_slab
+from probeplan.model.montecarlo import ENGINES, Layer, McResult, _scatter_array, simulate_point_source, simulate_slab
 
 Z = 4.0  # sigmas allowed for a statistical comparison
 

@@ -8,7 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from probeplan.errors import InputError
-from probeplan.nnls import (
+from probeplan.unmixing.nnls import (
     STATUS_CONSTRAINED,
     STATUS_INTERIOR,
     STATUS_NAN,

@@ -8,9 +8,9 @@ import numpy as np
 import pytest
 from scipy.integrate import quad
 
-from probeplan import optics
+from probeplan.model import optics
 from probeplan.errors import InputError
-from probeplan.spectra import Spectrum
+from probeplan.model.spectra import Spectrum
 
 # ---------------------------------------------------------------- parameterised filters
 

@@ -9,7 +9,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from probeplan.errors import InputError
-from probeplan.plan import load_plan, parse_plan_text
+from probeplan.study.plan import load_plan, parse_plan_text
 
 DEMO = Path(__file__).resolve().parents[1] / "demo_tissue" / "plan.toml"
 

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 from probeplan.errors import AssumptionWarning, InputError
-from probeplan.references import (
+from probeplan.unmixing.references import (
     normalise_columns,
     read_references_csv,
     references_from_controls,

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 from probeplan.errors import InputError
-from probeplan.roi import RoiAccumulator, parse_rectangle, roi_statistics, rois_from_labels, write_roi_csv
+from probeplan.unmixing.roi import RoiAccumulator, parse_rectangle, roi_statistics, rois_from_labels, write_roi_csv
 
 
 def test_rectangle_parsing():

@@ -1,4 +1,4 @@
-"""Tests of probeplan.rules: the shipped defaults, the institution file, validation and checks."""
+"""Tests of probeplan.study.rules: the shipped defaults, the institution file, validation and checks."""
 
 from __future__ import annotations
 
@@ -9,9 +9,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from probeplan import rules as rules_module
+from probeplan.study import rules as rules_module
 from probeplan.errors import InputError
-from probeplan.rules import (
+from probeplan.study.rules import (
     Rule,
     RuleCheck,
     Rules,

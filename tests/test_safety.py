@@ -1,4 +1,4 @@
-"""Tests of probeplan.safety against the laser-safety standards and Diehl et al. 2001.
+"""Tests of probeplan.study.safety against the laser-safety standards and Diehl et al. 2001.
 
 Sources named beside each check:
 * [STD]  ANSI Z136.1 / IEC 60825-1 / ICNIRP skin MPE and C_A (Directive 2006/25/EC, Annex II,
@@ -15,10 +15,10 @@ import numpy as np
 import pytest
 from scipy import integrate
 
-from probeplan import safety
+from probeplan.study import safety
 from probeplan.errors import AssumptionWarning, InputError
-from probeplan.rules import default_rules, parse_rules_text
-from probeplan.safety import (
+from probeplan.study.rules import default_rules, parse_rules_text
+from probeplan.study.safety import (
     aperture_averaged_irradiance_mw_per_cm2,
     correction_factor_ca,
     irradiance_mw_per_cm2,

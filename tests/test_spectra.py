@@ -8,7 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from probeplan.errors import InputError
-from probeplan.spectra import Spectrum, WavelengthGrid, parse_spectra_text, read_spectra_csv
+from probeplan.model.spectra import Spectrum, WavelengthGrid, parse_spectra_text, read_spectra_csv
 
 # ---------------------------------------------------------------- grid
 

@@ -7,9 +7,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from probeplan import tissue
+from probeplan.model import tissue
 from probeplan.errors import AssumptionWarning, InputError
-from probeplan.spectra import Spectrum
+from probeplan.model.spectra import Spectrum
 
 # Prahl's haemoglobin compilation (Gratzer, Kollias), values quoted in REFERENCES.md.
 HB_POINTS = [

@@ -1,4 +1,4 @@
-"""Tests of probeplan.transport against published values, independent numerics and iadpython.
+"""Tests of probeplan.model.transport against published values, independent numerics and iadpython.
 
 Sources are named beside each check.  "REFERENCES.md" values are the project's
 collected check values (Haskell et al. 1994; Groenhuis et al. 1983; Farrell et al. 1992).
@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 from scipy import integrate, optimize
 
-from probeplan import transport as tr
+from probeplan.model import transport as tr
 from probeplan.errors import InputError, ModelValidityWarning
 
 

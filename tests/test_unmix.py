@@ -4,9 +4,9 @@ import numpy as np
 import pytest
 
 from probeplan.errors import InputError, ModelValidityWarning
-from probeplan.nnls import STATUS_NAN, STATUS_SATURATED
-from probeplan.references import references_from_matrix
-from probeplan.unmix import check_references, design_matrix, unmix, unmix_stack
+from probeplan.unmixing.nnls import STATUS_NAN, STATUS_SATURATED
+from probeplan.unmixing.references import references_from_matrix
+from probeplan.unmixing.pipeline import check_references, design_matrix, unmix, unmix_stack
 
 
 def _refs(C=8, K=3):

@@ -10,8 +10,9 @@ import time
 import numpy as np
 import pytest
 
-from probeplan import dots, optics
-from probeplan.fluorescence import depth_profile
+from probeplan.model import dots
+from probeplan.model import optics
+from probeplan.model.fluorescence import depth_profile
 
 TARGET_S = 0.050
 

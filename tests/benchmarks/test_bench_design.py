@@ -16,8 +16,9 @@ import warnings
 import numpy as np
 import pytest
 
-from probeplan import dots, optics
-from probeplan.design import design, exhaustive_search, probe_series
+from probeplan.model import dots
+from probeplan.model import optics
+from probeplan.design.search import design, exhaustive_search, probe_series
 
 TARGET_S = {3: 3.0, 4: 60.0}
 

@@ -13,8 +13,8 @@ import time
 import numpy as np
 import pytest
 
-from probeplan import transport as tr
-from probeplan.montecarlo import Layer, simulate_slab
+from probeplan.model import transport as tr
+from probeplan.model.montecarlo import Layer, simulate_slab
 
 #: Target rate of the fast engine, interactions per second (2 cores).
 TARGET_INTERACTIONS_PER_S = 10e6

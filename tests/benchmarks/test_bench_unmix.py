@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 import scipy.optimize
 
-from probeplan.unmix import unmix
+from probeplan.unmixing.pipeline import unmix
 
 pytestmark = pytest.mark.benchmark
 
@@ -160,7 +160,7 @@ def test_cold_start():
     code = (
         "import time; t = time.perf_counter()\n"
         "import numpy as np\n"
-        "from probeplan.unmix import unmix\n"
+        "from probeplan.unmixing.pipeline import unmix\n"
         "t1 = time.perf_counter()\n"
         "unmix(np.ones((8, 16, 16), np.float32), np.eye(8)[:, :4] + 0.1)\n"
         "t2 = time.perf_counter()\n"

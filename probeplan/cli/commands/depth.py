@@ -1,0 +1,101 @@
+"""``probeplan depth``: SBR, SNR and blur against depth for probes in a tissue."""
+
+from __future__ import annotations
+
+import argparse
+
+HELP = "SBR, SNR and blur against target depth for each probe in a tissue"
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    from probeplan.catalog.setup import add_model_options
+
+    add_model_options(parser)
+    g = parser.add_argument_group("depths and output")
+    g.add_argument("--depth-max-mm", type=float, default=10.0, help="deepest target depth in mm (default 10)")
+    g.add_argument("--depth-step-mm", type=float, default=0.5, help="depth step in mm (default 0.5)")
+    g.add_argument("--sbr-threshold", type=float, default=2.0,
+                   help="SBR below which a target counts as lost (default 2: common practice, not a standard)")
+    g.add_argument("--json", action="store_true", help="print every row and the summary as JSON")
+    g.add_argument("--csv", metavar="FILE", help="write every row to a CSV file")
+    g.add_argument("--plot", metavar="PNG", help="write SBR/SNR/blur against depth to a PNG file")
+
+
+def run(args: argparse.Namespace) -> int:
+    import math
+
+    import numpy as np
+
+    from probeplan import RESEARCH_USE_CAUTION
+    from probeplan.study import safety
+    from probeplan.catalog.setup import make_camera, make_filter, make_lens, make_source, probes_from_args, tissue_from_args
+    from probeplan.cli.common import model_notes, print_json, print_table
+    from probeplan.errors import input_error
+    from probeplan.model.fluorescence import Autofluorescence, depth_at_threshold, depth_profile
+    from probeplan.io.atomic import refuse_input_paths, write_bytes_atomic, write_csv_atomic
+
+    probes = probes_from_args(args)
+    filters = args.filter or []
+    if len(filters) not in (1, len(probes)):
+        raise input_error("--filter", f"{len(filters)} filters for {len(probes)} probes",
+                          "give one --filter per --probe (or one for all)")
+    if not (0 < args.depth_step_mm <= args.depth_max_mm < math.inf):  # also refuses NaN
+        raise input_error("--depth-max-mm/--depth-step-mm", f"got {args.depth_max_mm:g}/{args.depth_step_mm:g}",
+                          "give a positive maximum depth and a smaller positive step")
+    outputs = [p for p in (args.csv, args.plot) if p]
+    refuse_input_paths(outputs, [s.partition("@")[2] for s in args.probe if "@" in s], option="--csv/--plot")
+    tissue = tissue_from_args(args)
+    source, lens = make_source(args), make_lens(args)
+    cam = make_camera(args.camera, args.binning)
+    af = None if args.af_yield is None else Autofluorescence(yield_per_cm=args.af_yield)
+    depths = np.arange(0.0, args.depth_max_mm + args.depth_step_mm / 2, args.depth_step_mm)
+    profiles = []
+    with model_notes() as messages:
+        for i, probe in enumerate(probes):
+            filt = make_filter(filters[i] if len(filters) > 1 else filters[0]) if filters else None
+            if filt is None:
+                raise input_error("--filter", "no emission filter given", "give --filter, e.g. 700/30")
+            profiles.append(depth_profile(
+                tissue, probe, source=source, irradiance_mw_per_cm2=args.irradiance, emission_filter=filt,
+                camera=cam, lens=lens, exposure_s=args.exposure_s, depth_mm=depths, target_size_mm=args.size_mm,
+                concentration_uM=args.concentration_uM, uptake_ratio=args.uptake_ratio, autofluorescence=af,
+            ))
+    mpe = float(safety.skin_mpe_mw_per_cm2(args.excitation_nm, max(10.0, args.exposure_s)))
+    summary = []
+    for p in profiles:
+        lost = depth_at_threshold(p, args.sbr_threshold)
+        summary.append({"probe": p.probe, "depth_at_sbr_threshold_mm": lost,
+                        "sbr_at_surface": float(p.sbr[0]), "snr_at_surface": float(p.snr[0]),
+                        "background_e": p.background_e, "saturates": bool(p.saturated.any())})
+    rows = [r for p in profiles for r in p.rows()]
+    if args.csv:
+        write_csv_atomic(args.csv, rows)
+    if args.plot:
+        from probeplan.report.figures import depth_and_spectra_figure
+        from probeplan.report.document import figure_png_bytes
+
+        write_bytes_atomic(args.plot, figure_png_bytes(depth_and_spectra_figure(profiles, args.sbr_threshold)))
+    notes = sorted({n for p in profiles for n in p.notes}) + messages
+    skin = {"wavelength_nm": args.excitation_nm, "irradiance_mw_per_cm2": args.irradiance,
+            "skin_mpe_mw_per_cm2": mpe, "fraction_of_mpe": args.irradiance / mpe}
+    if args.json:
+        print_json({"caution": RESEARCH_USE_CAUTION, "sbr_threshold": args.sbr_threshold,
+                    "sbr_threshold_note": "common practice, not a standard", "skin": skin,
+                    "summary": summary, "rows": rows, "notes": notes})
+        return 0
+    print(RESEARCH_USE_CAUTION)
+    flag = "  ABOVE THE SKIN LIMIT" if args.irradiance > mpe else ""
+    print(f"excitation {args.excitation_nm:g} nm at {args.irradiance:g} mW/cm^2; skin MPE (>= 10 s) "
+          f"{mpe:.0f} mW/cm^2 ({100 * args.irradiance / mpe:.1f} % of it){flag}\n")
+    step = max(1, int(round(1.0 / args.depth_step_mm)))
+    shown = [r for p in profiles for r in p.rows()[::step]]
+    print_table(shown, ["probe", "depth_mm", "signal_e", "background_e", "sbr", "snr", "blur_fwhm_mm",
+                        "escaped_peak_nm", "diffusion_valid"])
+    print()
+    print_table(summary, ["probe", "depth_at_sbr_threshold_mm", "sbr_at_surface", "snr_at_surface", "saturates"])
+    print(f"\nSBR threshold {args.sbr_threshold:g} (common practice, not a standard)")
+    for n in notes:
+        print(f"note: {n}")
+    for path in outputs:
+        print(f"wrote {path}")
+    return 0

@@ -1,0 +1,228 @@
+"""``probeplan unmix``: separate the probes in image stacks (one file or a folder of stacks)."""
+
+from __future__ import annotations
+
+import argparse
+
+__all__ = ["HELP", "add_arguments", "run", "MANIFEST_NAME"]
+
+HELP = "unmix image stacks into probe abundance maps with standard errors, residuals, QC and overlay"
+
+#: Manifest of finished stacks (checksums) in the output folder, used by --resume.
+MANIFEST_NAME = "probeplan_unmix_manifest.json"
+_STACK_SUFFIXES = (".tif", ".tiff")
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("stack", help="TIFF/OME-TIFF stack (C,Y,X), (C,Z,Y,X), (T,C,Y,X), or a folder of stacks")
+    refs = parser.add_mutually_exclusive_group(required=True)
+    refs.add_argument("--references", help="reference spectra CSV: channel,<component>,...")
+    refs.add_argument("--references-from-plan", metavar="PLAN",
+                      help="predict the reference spectra from a study plan's probes and channels at its target depth")
+    parser.add_argument("--out", required=True, help="abundance OME-TIFF to write (a folder when STACK is a folder)")
+    parser.add_argument("--method", choices=("nnls", "ls", "wls"), default="nnls",
+                        help="nnls: exact non-negative LS (default); ls: unconstrained; wls: Poisson-weighted LS")
+    parser.add_argument("--channel-axis", type=int, default=None,
+                        help="axis holding the channels, when the file does not say")
+    parser.add_argument("--dark", help="dark-frame stack (same shape), subtracted")
+    parser.add_argument("--flat", help="flat-field stack (same shape), divided")
+    parser.add_argument("--offset", action="store_true", help="add a constant offset component")
+    parser.add_argument("--saturation", type=float, default=None,
+                        help="camera full scale in counts (default: the integer type's maximum)")
+    parser.add_argument("--gain", type=float, default=1.0, help="camera gain, e-/count (default 1)")
+    parser.add_argument("--read-noise", type=float, default=0.0, help="camera read noise, e- rms (default 0)")
+    parser.add_argument("--roi", action="append", default=[],
+                        help="ROI 'name:x0,y0,x1,y1' (pixels, end excluded) or a label TIFF; repeatable")
+    parser.add_argument("--roi-background", default="background", help="name of the background ROI (default background)")
+    parser.add_argument("--memory-mb", type=float, default=None, help="working-memory bound in MiB (default 256)")
+    parser.add_argument("--scheduler", default=None, help="address of a running dask.distributed scheduler")
+    parser.add_argument("--resume", action="store_true", help="skip stacks already done (checked by checksums)")
+    parser.add_argument("--json", action="store_true", help="print a machine-readable summary")
+
+
+def _sha256(path) -> str:
+    import hashlib
+
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 22), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def _settings_digest(args, refs) -> str:
+    import hashlib
+    import json
+
+    settings = {
+        "method": args.method, "channel_axis": args.channel_axis, "offset": args.offset,
+        "saturation": args.saturation, "gain": args.gain, "read_noise": args.read_noise, "roi": args.roi,
+        "roi_background": args.roi_background, "components": list(refs.component_names),
+        "channels": list(refs.channel_names or []), "matrix": refs.matrix.tolist(),
+        "dark": _sha256(args.dark) if args.dark else None, "flat": _sha256(args.flat) if args.flat else None,
+    }
+    return hashlib.sha256(json.dumps(settings, sort_keys=True).encode()).hexdigest()
+
+
+def _load_manifest(path) -> dict:
+    import json
+
+    from probeplan.errors import input_error
+
+    if not path.exists():
+        return {"entries": {}}
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+        if not isinstance(data, dict) or not isinstance(data.get("entries"), dict):
+            raise ValueError("no 'entries'")
+        return data
+    except (ValueError, OSError) as exc:
+        raise input_error(str(path), f"is not a valid manifest ({exc})", "delete it and run again without --resume") from None
+
+
+def _is_done(entry, stack, settings) -> bool:
+    from pathlib import Path
+
+    if not isinstance(entry, dict) or not isinstance(entry.get("outputs"), dict):
+        return False
+    if entry.get("settings_sha256") != settings or entry.get("input_sha256") != _sha256(stack):
+        return False
+    for p, digest in entry["outputs"].items():
+        if not Path(p).is_file() or _sha256(p) != digest:
+            return False
+    return True
+
+
+def run(args: argparse.Namespace) -> int:
+    import signal
+    import sys
+    import time
+    from pathlib import Path
+
+    from tqdm import tqdm
+
+    from probeplan import RESEARCH_USE_CAUTION
+    from probeplan.cli.common import print_json, print_table
+    from probeplan.errors import input_error
+    from probeplan.io.stacks import open_stack
+    from probeplan.io.atomic import write_json_atomic
+    from probeplan.unmixing.references import read_references_csv
+    from probeplan.unmixing.pipeline import DEFAULT_MEMORY_MB, unmix_file
+
+    stack = Path(args.stack)
+    out = Path(args.out)
+    created = None
+    if args.references_from_plan:
+        from probeplan.study.evaluate import plan_references
+        from probeplan.study.plan import load_plan
+
+        refs = plan_references(load_plan(args.references_from_plan))
+        args.references = args.references_from_plan
+    else:
+        refs = read_references_csv(args.references)
+    rect_rois = [r for r in args.roi if not r.lower().endswith(_STACK_SUFFIXES)]
+    label_files = [r for r in args.roi if r.lower().endswith(_STACK_SUFFIXES)]
+    if len(label_files) > 1:
+        raise input_error("--roi", f"{len(label_files)} label images given", "give at most one label TIFF")
+    if stack.is_dir():
+        stacks = sorted(p for p in stack.iterdir() if p.is_file() and p.suffix.lower() in _STACK_SUFFIXES)
+        if not stacks:
+            raise input_error(str(stack), "holds no .tif/.tiff stack", "give a folder of TIFF stacks or one stack file")
+        if out.exists() and not out.is_dir():
+            raise input_error("--out", f"{str(out)!r} is a file but STACK is a folder", "give an output folder")
+        if out.resolve() == stack.resolve():
+            raise input_error("--out", f"{str(out)!r} is the input folder", "give a separate output folder")
+        targets = [(s, out / (s.name.split(".")[0] + ".ome.tif")) for s in stacks]
+        by_target: dict = {}
+        for s, t in targets:
+            if t in by_target:
+                raise input_error(str(stack), f"{by_target[t].name!r} and {s.name!r} would both be written to {t.name!r}",
+                                  "rename one of them (names must differ before the first '.')")
+            by_target[t] = s
+        # The outermost folder this command creates, removed again if no stack is finished.
+        for parent in (out, *out.absolute().parents):
+            if parent.exists():
+                break
+            created = parent
+        folder = out
+    else:
+        if not stack.exists():
+            raise input_error(str(stack), "file not found", "give an existing TIFF stack or folder")
+        if out.is_dir():
+            raise input_error("--out", f"{str(out)!r} is a folder but STACK is a file", "give the abundance file name")
+        targets = [(stack, out)]
+        folder = out.parent if str(out.parent) else Path(".")
+        if not folder.is_dir():
+            raise input_error("--out", f"folder {str(folder)!r} does not exist", "create it first or choose another --out")
+    manifest_path = folder / MANIFEST_NAME
+    try:
+        manifest = _load_manifest(manifest_path)
+    except ValueError:
+        if args.resume:
+            raise
+        manifest = {"entries": {}}
+    for option, p in (("--dark", args.dark), ("--flat", args.flat)):
+        if p and not Path(p).is_file():
+            raise input_error(str(p), "file not found", f"give an existing TIFF stack to {option}")
+    settings = _settings_digest(args, refs)
+    all_inputs = [s for s, _ in targets] + [args.references] + ([args.dark] if args.dark else []) + (
+        [args.flat] if args.flat else []) + label_files
+
+    def _terminate(signum, frame):
+        raise KeyboardInterrupt
+
+    summary = []
+    if created is not None:
+        out.mkdir(parents=True, exist_ok=True)
+    previous = signal.signal(signal.SIGTERM, _terminate)
+    try:
+        for s, target in targets:
+            key = s.name
+            t0 = time.perf_counter()
+            if args.resume and _is_done(manifest["entries"].get(key), s, settings):
+                summary.append({"stack": key, "status": "skipped (done)", "pixels": "", "constrained": "",
+                                "saturated": "", "nan": "", "residual_rms": "", "seconds": 0.0})
+                continue
+            with open_stack(s, channel_axis=args.channel_axis) as r:
+                n_rows = r.info.n_rows
+            with tqdm(total=n_rows, desc=key, unit="row", disable=None if not args.json else True,
+                      file=sys.stderr, leave=False) as bar:
+                result = unmix_file(
+                    s, refs, target, method=args.method, channel_axis=args.channel_axis, dark_path=args.dark,
+                    flat_path=args.flat, offset=args.offset, saturation=args.saturation, gain_e_per_count=args.gain,
+                    read_noise_e=args.read_noise, rois=rect_rois, labels_path=label_files[0] if label_files else None,
+                    roi_background=args.roi_background,
+                    memory_limit_mb=args.memory_mb if args.memory_mb is not None else DEFAULT_MEMORY_MB,
+                    scheduler=args.scheduler, extra_inputs=all_inputs, progress=bar.update,
+                )
+            qc = result.qc
+            manifest["entries"][key] = {
+                "input_sha256": _sha256(s), "settings_sha256": settings,
+                "outputs": {str(p): _sha256(p) for p in result.outputs.values()},
+            }
+            write_json_atomic(manifest_path, manifest)
+            summary.append({
+                "stack": key, "status": "done", "pixels": qc["n_pixels"],
+                "constrained": round(qc["fraction_constrained"], 4), "saturated": qc["n_saturated"],
+                "nan": qc["n_nan"], "residual_rms": qc["residual_rms"]["rms"],
+                "seconds": round(time.perf_counter() - t0, 2), "outputs": {k: str(v) for k, v in result.outputs.items()},
+                "condition_number": qc["condition_number"], "mean_abundance": qc["mean_abundance"],
+            })
+    except BaseException:
+        if created is not None and not any(row["status"] == "done" for row in summary):
+            import shutil
+
+            shutil.rmtree(created, ignore_errors=True)
+        raise
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+    if args.json:
+        print_json({"caution": RESEARCH_USE_CAUTION, "method": args.method, "components": list(refs.component_names),
+                    "stacks": summary, "manifest": str(manifest_path)})
+    else:
+        print_table(summary, ["stack", "status", "pixels", "constrained", "saturated", "nan", "residual_rms", "seconds"])
+        for row in summary:
+            if row["status"] == "done":
+                sys.stdout.write(f"{row['stack']}: {', '.join(str(p) for p in row['outputs'].values())}\n")
+        sys.stdout.write(RESEARCH_USE_CAUTION + "\n")
+    return 0

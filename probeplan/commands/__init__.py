@@ -1,1 +1,0 @@
-"""Subcommands of the ``probeplan`` command line, one module each (see :mod:`probeplan.cli`)."""

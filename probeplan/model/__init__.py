@@ -1,0 +1,14 @@
+"""The physics: spectra, tissue optics, light transport, nanocrystal probes, optics and the forward model.
+
+Holds the wavelength grid and :class:`~probeplan.model.spectra.Spectrum` (``spectra``), tissue
+absorption and scattering from composition (``tissue``), diffusion theory (``transport``), the
+photon-packet Monte Carlo (``montecarlo``), nanocrystal sizing and emission (``dots``), filters,
+sources, cameras and lenses (``optics``), the signal and background at depth (``fluorescence``)
+and the probe × channel response with crosstalk and separability (``channels``).
+
+It may import :mod:`probeplan.errors`, :mod:`probeplan.units`, :mod:`probeplan.io` and the
+shipped tables in :mod:`probeplan.data`; never the catalog, unmixing, design, study, report or
+command line.
+"""
+
+__all__: list[str] = []

@@ -1,0 +1,629 @@
+"""Fluorescence at depth: signal, each background, SBR, SNR and blur against target depth.
+
+The forward model (diffusion theory, :mod:`probeplan.model.transport`)
+----------------------------------------------------------------
+1. **Excitation.** A broad collimated beam of irradiance E0 at the source's
+   wavelengths gives a fluence rate φ(z) = E0·Φ(z) inside the tissue, Φ from
+   :func:`probeplan.model.transport.broad_beam_fluence` with the tissue's μa, μs′ at
+   the excitation wavelength.
+2. **Target.** A uniform spherical inclusion of diameter s with its centre at
+   depth d holds the probe at concentration c; it absorbs μa,p = ln(10)·ε(λx)·c
+   per cm and emits q(z) = QY·μa,p·φ(z) photons per second per unit volume,
+   spread over the probe's emission spectrum f(λ) (unit area).  The sphere is
+   cut into thin discs at Gauss–Legendre depths z_k (8 nodes) with radii ρ_k;
+   a uniform disc of radius ρ at depth z gives, at the surface point above its
+   centre, its power × F(ρ, z, λ)/(πρ²), where F is the fraction of an
+   isotropic point source at depth z escaping through a surface disc of radius
+   ρ (closed form of the image-source solution, :func:`disc_escape_fraction`).
+   Summing the discs gives the exitance above the target's centre, with each
+   slice excited by its own fluence φ(z_k).  The specific signal is the excess
+   over the surrounding tissue: c − c/TBR.  When d < s/2 the target breaks the
+   skin: its slices above the surface are counted as lying at the surface.
+3. **Backgrounds.** (a) Nonspecific uptake: the probe at c/TBR in the whole
+   half-space, exitance ∫ QY·μa,p,bg·φ(z)·E(z, λ) dz with E the total escape
+   fraction from depth z; (b) autofluorescence: a uniform tissue fluorophore of
+   the same form with an emission spectrum and yield set by
+   :class:`Autofluorescence` (a stated assumption, set it from an unlabelled
+   control when you can); (c) excitation leakage: diffusely reflected
+   excitation Rd(λx)·E0 through the emission filter's blocking at λx;
+   (d) camera dark current and read noise of one binned pixel.
+4. **Detection.** The surface is Lambertian; the lens collects the fraction
+   ``lens.collection_efficiency()`` of the exitance from the object-side area
+   of one (binned) pixel; then filter transmission T(λ) and camera QE(λ),
+   integrated over wavelength on a 1 nm grid.  Signal and background are
+   photoelectrons per pixel in the exposure.
+
+SBR = (S + B)/B with B every background in the pixel (light and dark);
+contrast = S/B; SNR = S·t / √((S + B)·t + σr²) with B including dark
+electrons.  The escaping spectrum is attenuated wavelength by wavelength, so it
+red-shifts with depth (``escaped_peak_nm``).
+
+The SBR threshold of 2 used by :func:`depth_at_threshold` is common practice
+for "visible above background", not a standard.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from probeplan.model import transport
+from probeplan.errors import AssumptionWarning, input_error, positive_number
+from probeplan.model.tissue import Tissue, tissue_preset
+from probeplan.model.tissue import optical_properties as _tissue_optical_properties
+
+__all__ = [
+    "Autofluorescence",
+    "DepthProfile",
+    "depth_profile",
+    "depth_at_threshold",
+    "disc_escape_fraction",
+    "probe_rate_e_per_s",
+    "background_rates",
+    "photons_per_s_per_mw",
+    "emission_grid_nm",
+    "DEFAULT_SBR_THRESHOLD",
+    "MM_PER_CM",
+]
+
+#: Millimetres per centimetre.
+MM_PER_CM = 10.0
+#: Planck constant (J s) and speed of light (m/s), CODATA exact values.
+PLANCK_J_S = 6.62607015e-34
+LIGHT_SPEED_M_PER_S = 299792458.0
+#: Metres per nanometre; watts per milliwatt; litres per cubic centimetre; molar per micromolar.
+M_PER_NM = 1e-9
+W_PER_MW = 1e-3
+L_PER_CM3 = 1e-3
+M_PER_UM = 1e-6
+#: Cubic millimetres per cubic centimetre.
+MM3_PER_CM3 = 1000.0
+#: Wavelength step (nm) at which the tissue transport of the target's light is evaluated before
+#: linear interpolation onto the 1 nm emission grid (μa, μs′ and the escape vary slowly with λ).
+_TRANSPORT_STEP_NM = 4.0
+#: Gauss–Legendre nodes and weights on [-1, 1] for slicing a spherical target into discs.
+_SPHERE_NODES = np.polynomial.legendre.leggauss(8)
+#: Mm² per cm².
+MM2_PER_CM2 = 100.0
+#: SBR below which a target is taken as lost (common practice, not a standard).
+DEFAULT_SBR_THRESHOLD = 2.0
+#: Half-width of the emission integration window, in units of the probe's FWHM.
+_WINDOW_FWHM = 3.0
+#: Autofluorescence is integrated over this many decay lengths beyond the excitation.
+_AF_SPAN_DECAYS = 8.0
+#: Wavelengths where filter × QE falls below this fraction of its peak are left out of the
+#: autofluorescence integral (blocked light there is counted as excitation leakage instead).
+_AF_BAND_FLOOR = 1e-4
+#: Depth points used for the background integrals over the half-space.
+_N_BACKGROUND_DEPTHS = 192
+
+
+#: Note added to results whose wavelength grid goes beyond the haemoglobin table.
+HB_BEYOND_TABLE_NOTE = ("haemoglobin absorption beyond 1000 nm is held at its 1000 nm value "
+                        "(the table ends there; a conservative approximation)")
+
+
+def optical_properties(tissue: Tissue, wavelength_nm) -> tuple[np.ndarray, np.ndarray]:
+    """Tissue μa, μs′ for the model's internal grids.
+
+    The haemoglobin-beyond-1000-nm approximation is reported once per result
+    as a note (:data:`HB_BEYOND_TABLE_NOTE`) instead of a warning per call.
+    """
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", AssumptionWarning)
+        return _tissue_optical_properties(tissue, wavelength_nm)
+
+
+def photons_per_s_per_mw(wavelength_nm) -> np.ndarray:
+    """Photon rate carried by 1 mW of light at ``wavelength_nm`` (photons/s per mW).
+
+    Examples
+    --------
+    >>> f"{float(photons_per_s_per_mw(800.0)):.4e}"
+    '4.0273e+15'
+    """
+    from probeplan.model.spectra import as_wavelengths_nm
+
+    wl = as_wavelengths_nm(wavelength_nm)
+    return W_PER_MW * wl * M_PER_NM / (PLANCK_J_S * LIGHT_SPEED_M_PER_S)
+
+
+@dataclass(frozen=True)
+class Autofluorescence:
+    """Parametric tissue autofluorescence: an assumption to state, not a measurement.
+
+    The tissue is taken to hold a uniform fluorophore whose absorption × quantum
+    yield at excitation wavelength λx is
+    ``yield_per_cm * (λx / reference_excitation_nm) ** -excitation_exponent``
+    and whose emission spectrum (unit area) decays exponentially from the
+    excitation wavelength: f(λ) ∝ exp(−(λ − λx)/decay_nm) for λ > λx.
+
+    The defaults are a typical assumption chosen so that autofluorescence is a
+    minor background under red excitation and smaller still in the NIR
+    (autofluorescence falls steeply towards longer wavelengths: common practice,
+    no single source).  Set ``yield_per_cm`` from an unlabelled control animal
+    when you have one; ``Autofluorescence(0.0)`` switches it off.
+    """
+
+    yield_per_cm: float = 2e-4
+    reference_excitation_nm: float = 650.0
+    excitation_exponent: float = 4.0
+    decay_nm: float = 120.0
+
+    def __post_init__(self) -> None:
+        for key in ("yield_per_cm", "reference_excitation_nm", "excitation_exponent", "decay_nm"):
+            value = getattr(self, key)
+            if not isinstance(value, (int, float)) or not math.isfinite(value) or value < 0:
+                raise input_error(f"autofluorescence.{key}", f"got {value!r}", "give a finite number >= 0")
+        if self.decay_nm == 0 or self.reference_excitation_nm == 0:
+            raise input_error("autofluorescence.decay_nm", "must be > 0", "give a positive decay length in nm")
+
+    def yield_at(self, excitation_nm: float) -> float:
+        """Absorption × quantum yield (cm⁻¹) at the excitation wavelength."""
+        return self.yield_per_cm * (excitation_nm / self.reference_excitation_nm) ** (-self.excitation_exponent)
+
+    def emission_per_nm(self, wavelength_nm: np.ndarray, excitation_nm: float) -> np.ndarray:
+        """Emission spectrum (unit area over λ > λx) on ``wavelength_nm``."""
+        shift = np.asarray(wavelength_nm, dtype=np.float64) - excitation_nm
+        return np.where(shift > 0, np.exp(-np.clip(shift, 0, None) / self.decay_nm) / self.decay_nm, 0.0)
+
+
+def disc_escape_fraction(radius_mm, depth_mm, mu_a_per_cm, mu_s_prime_per_cm, n: float = 1.4) -> np.ndarray:
+    """Fraction of an isotropic point source at ``depth_mm`` escaping through a surface disc.
+
+    Closed-form integral over a disc of radius ``radius_mm`` (centred above the
+    source) of the image-source (dipole) surface flux of Farrell, Patterson &
+    Wilson (1992) with the real source at depth d and its negative image at
+    −(d + 2 z_b)::
+
+        F(r) = ½[e^(−μeff d) − d·e^(−μeff R1)/R1] + ½[e^(−μeff d′) − d′·e^(−μeff R2)/R2]
+
+    with d′ = d + 2z_b, R1 = √(d² + r²), R2 = √(d′² + r²).  As r → ∞ it tends
+    to the total escape ½[e^(−μeff d) + e^(−μeff d′)].  Inputs broadcast.
+
+    References
+    ----------
+    T. J. Farrell, M. S. Patterson, B. Wilson, Med. Phys. 19, 879 (1992),
+    doi:10.1118/1.596777.
+
+    Examples
+    --------
+    >>> float(disc_escape_fraction(np.inf, 0.0, 0.0, 10.0))  # non-absorbing: everything escapes
+    1.0
+    """
+    mu_eff_per_mm = transport.mu_eff(mu_a_per_cm, mu_s_prime_per_cm) / MM_PER_CM
+    z_b_mm = transport.extrapolated_boundary_cm(mu_a_per_cm, mu_s_prime_per_cm, n) * MM_PER_CM
+    d = np.asarray(depth_mm, dtype=np.float64)
+    if not np.isfinite(d).all() or (d < 0).any():
+        raise input_error("depth_mm", f"got {depth_mm!r}", "give finite depths in mm >= 0")
+    r = np.asarray(radius_mm, dtype=np.float64)
+    if np.isnan(r).any() or (r < 0).any():
+        raise input_error("radius_mm", f"got {radius_mm!r}", "give a disc radius in mm >= 0 (np.inf for the whole surface)")
+    d2 = d + 2.0 * z_b_mm
+    r1 = np.sqrt(d**2 + r**2)
+    r2 = np.sqrt(d2**2 + r**2)
+    finite = np.isfinite(r)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        tail1 = np.where(finite & (r1 > 0), d * np.exp(-mu_eff_per_mm * r1) / np.where(r1 > 0, r1, 1.0), 0.0)
+        tail2 = np.where(finite, d2 * np.exp(-mu_eff_per_mm * r2) / r2, 0.0)
+    return 0.5 * (np.exp(-mu_eff_per_mm * d) - tail1) + 0.5 * (np.exp(-mu_eff_per_mm * d2) - tail2)
+
+
+def emission_grid_nm(probes, *, step_nm: float = 1.0) -> np.ndarray:
+    """A 1 nm grid covering every probe's emission (±3 FWHM), clipped to 300–2000 nm."""
+    lo = min(p.emission_peak_nm - _WINDOW_FWHM * p.fwhm_nm for p in probes)
+    hi = max(p.emission_peak_nm + _WINDOW_FWHM * p.fwhm_nm for p in probes)
+    lo, hi = max(300.0, math.floor(lo)), min(2000.0, math.ceil(hi))
+    return np.arange(lo, hi + step_nm / 2, step_nm)
+
+
+def _tissue(tissue: str | Tissue) -> Tissue:
+    return tissue_preset(tissue) if isinstance(tissue, str) else tissue
+
+
+def _depths(depth_mm) -> np.ndarray:
+    d = np.atleast_1d(np.asarray(depth_mm, dtype=np.float64))
+    if d.ndim != 1:
+        raise input_error("depth_mm", f"shape {d.shape}", "give a 1-D array of depths in mm")
+    if not np.all(np.isfinite(d)):
+        raise input_error("depth_mm", "contains NaN or inf", "give finite depths in mm")
+    if np.any(d < 0):
+        raise input_error("depth_mm", f"got {d.min():g}", "depths are measured below the surface and must be >= 0")
+    return d
+
+
+def _excitation_fluence_photons(tissue: Tissue, source, irradiance_mw_per_cm2: float, depth_mm: np.ndarray):
+    """Fluence rate (photons/s/cm²) at each depth, integrated over the source spectrum."""
+    wl_x, weights = _source_spectrum(source)
+    mu_a, mu_sp = optical_properties(tissue, wl_x)
+    phi = transport.broad_beam_fluence(depth_mm[:, None], mu_a[None, :], mu_sp[None, :], tissue.refractive_index)
+    photons = irradiance_mw_per_cm2 * photons_per_s_per_mw(wl_x)  # photons/s/cm² per nm-weight
+    return np.trapezoid(phi * photons * weights, wl_x, axis=-1)
+
+
+def _source_spectrum(source) -> tuple[np.ndarray, np.ndarray]:
+    """15 wavelengths (nm) across ±3 widths of the source and its spectrum on them, normalised to unit area."""
+    centre = float(source.centre_nm)
+    width = float(getattr(source, "fwhm_nm", None) or getattr(source, "linewidth_nm", 1.0) or 1.0)
+    half = max(3.0 * width, 1.0)
+    wl_x = np.linspace(centre - half, centre + half, 15)
+    weights = source.spectrum_per_nm(wl_x)
+    return wl_x, weights / np.trapezoid(weights, wl_x)
+
+
+def _detection(camera, lens) -> float:
+    """Object-side area of one binned pixel (mm²) × the lens's collected fraction (geometry × transmission)."""
+    return float(lens.object_pixel_area_mm2(camera)) * float(lens.collected_fraction())
+
+
+@dataclass
+class DepthProfile:
+    """SBR, SNR and blur against depth for one probe in one channel.
+
+    All electron counts are photoelectrons per (binned) pixel in one exposure,
+    arrays of shape ``(D,)`` over ``depth_mm``.  ``escaped_spectrum`` (D, W) is
+    the target's exitance at the surface above it (photons/s/mm²/nm) on
+    ``wavelength_nm``, before the filter: it red-shifts with depth where tissue
+    absorbs the blue side of the emission more.  ``detected_spectrum`` is the
+    same after lens, filter and QE (e⁻/s/nm per pixel).
+    """
+
+    probe: str
+    depth_mm: np.ndarray
+    exposure_s: float
+    signal_e: np.ndarray
+    uptake_background_e: float
+    autofluorescence_e: float
+    leakage_e: float
+    dark_e: float
+    read_noise_e: float
+    sbr: np.ndarray
+    contrast: np.ndarray
+    snr: np.ndarray
+    blur_fwhm_mm: np.ndarray
+    escaped_peak_nm: np.ndarray
+    diffusion_valid: np.ndarray
+    saturated: np.ndarray
+    wavelength_nm: np.ndarray = field(repr=False)
+    escaped_spectrum: np.ndarray = field(repr=False)
+    detected_spectrum: np.ndarray = field(repr=False)
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def background_e(self) -> float:
+        """Every background in the pixel (electrons): uptake, autofluorescence, leakage, dark."""
+        return self.uptake_background_e + self.autofluorescence_e + self.leakage_e + self.dark_e
+
+    def rows(self) -> list[dict[str, Any]]:
+        """One dict per depth, for tables and CSV."""
+        return [
+            {
+                "probe": self.probe,
+                "depth_mm": float(d),
+                "signal_e": float(s),
+                "background_e": self.background_e,
+                "sbr": float(b),
+                "contrast": float(c),
+                "snr": float(n),
+                "blur_fwhm_mm": float(f),
+                "escaped_peak_nm": float(p),
+                "diffusion_valid": bool(v),
+            }
+            for d, s, b, c, n, f, p, v in zip(
+                self.depth_mm, self.signal_e, self.sbr, self.contrast, self.snr, self.blur_fwhm_mm,
+                self.escaped_peak_nm, self.diffusion_valid, strict=True,
+            )
+        ]
+
+
+def probe_rate_e_per_s(
+    tissue: str | Tissue,
+    probe,
+    *,
+    source,
+    irradiance_mw_per_cm2: float,
+    emission_filter,
+    camera,
+    lens,
+    depth_mm,
+    target_size_mm: float = 2.0,
+    concentration_uM: float = 1.0,
+    wavelength_nm: np.ndarray | None = None,
+) -> np.ndarray:
+    """Photoelectrons per second in the pixel above an inclusion, per depth (no background).
+
+    The response of one probe in one channel (source + filter + camera + lens)
+    used by :mod:`probeplan.model.channels`; see the module notes for the model.
+
+    Returns
+    -------
+    ndarray, shape (D,)
+        e⁻/s per binned pixel at each depth.
+    """
+    rate, _, _ = _signal_rate(
+        _tissue(tissue), probe, source, positive_number("irradiance_mw_per_cm2", irradiance_mw_per_cm2),
+        emission_filter, camera, lens, _depths(depth_mm), positive_number("target_size_mm", target_size_mm),
+        positive_number("concentration_uM", concentration_uM, allow_zero=True), wavelength_nm,
+    )
+    return rate
+
+
+def _signal_rate(tissue, probe, source, irradiance, emission_filter, camera, lens, depth, size_mm, conc_uM, wl):
+    """Detected rate (e⁻/s per pixel) and escaping spectrum above a uniform spherical inclusion.
+
+    The sphere (radius r, centre depth d) is cut into thin discs at the
+    Gauss–Legendre nodes z_k = d + r·t_k with weights Δz_k = r·w_k and radii
+    ρ_k = r·√(1 − t_k²) (a slice above the skin is counted at the skin); each disc
+    emits q(z_k) = QY·μa,p·φ(z_k) per unit volume (its own excitation fluence)
+    and the exitance above the centre is Σ_k Δz_k·q(z_k)·F(ρ_k, z_k), F the
+    disc escape fraction (:func:`disc_escape_fraction`; exact for a uniform
+    disc in the image-source model).  F is evaluated every
+    :data:`_TRANSPORT_STEP_NM` nm and interpolated linearly onto the 1 nm grid.
+    """
+    wl = emission_grid_nm([probe]) if wl is None else np.asarray(wl, dtype=np.float64)
+    radius = size_mm / 2.0
+    nodes, weights = _SPHERE_NODES
+    offset = radius * nodes  # (S,) slice positions relative to the centre, mm
+    z = np.maximum(depth[:, None] + offset[None, :], 0.0)  # (D, S) slice depths; above the skin counts as at it
+    dz = np.broadcast_to(radius * weights, z.shape)  # (D, S) slice thickness weights, mm
+    rho = np.broadcast_to(radius * np.sqrt(1.0 - nodes**2), z.shape)  # (D, S) slice radii, mm
+    fluence = _excitation_fluence_photons(tissue, source, irradiance, z.ravel())
+    eps = float(np.asarray(probe.molar_extinction_per_M_cm(float(source.centre_nm))))
+    mu_a_probe = math.log(10.0) * eps * conc_uM * M_PER_UM  # cm^-1
+    # photons/s per mm³ of inclusion in each slice (fluence per cm², coefficient per cm → per cm³ → per mm³)
+    q = probe.quantum_yield * mu_a_probe * fluence.reshape(z.shape) / MM3_PER_CM3
+    # the transport factor varies slowly with wavelength: evaluate it every few nm, interpolate onto the 1 nm grid
+    coarse = _coarse_grid(wl)
+    mu_a, mu_sp = optical_properties(tissue, coarse)
+    frac = disc_escape_fraction(rho[:, :, None], z[:, :, None], mu_a[None, None, :], mu_sp[None, None, :],
+                                tissue.refractive_index)  # (D, S, Wc)
+    exitance = _interp_last(np.einsum("ds,dsw->dw", q * dz, frac), coarse, wl)  # photons/s/mm² per unit spectrum
+    escaped = exitance * probe.emission_per_nm(wl)[None, :]  # photons/s/mm²/nm
+    detect = _detection(camera, lens) * emission_filter.transmission(wl) * camera.qe(wl)
+    rate = np.trapezoid(escaped * detect[None, :], wl, axis=-1)
+    return rate, wl, escaped
+
+
+def _coarse_grid(wl: np.ndarray) -> np.ndarray:
+    """Every :data:`_TRANSPORT_STEP_NM` nm across ``wl``, both ends included."""
+    n = max(2, int(math.ceil((wl[-1] - wl[0]) / _TRANSPORT_STEP_NM)) + 1)
+    return np.linspace(wl[0], wl[-1], n)
+
+
+def _interp_last(values: np.ndarray, x: np.ndarray, x_new: np.ndarray) -> np.ndarray:
+    """Linear interpolation of ``values`` (..., len(x)) along its last axis onto ``x_new`` (inside ``x``)."""
+    i = np.clip(np.searchsorted(x, x_new, side="right") - 1, 0, x.size - 2)
+    t = (x_new - x[i]) / (x[i + 1] - x[i])
+    return values[..., i] * (1.0 - t) + values[..., i + 1] * t
+
+
+def _half_space_integral(tissue, source, irradiance, wl_em, emission_per_nm, yield_per_cm):
+    """Exitance (photons/s/mm²/nm) of a uniform fluorophore in the half-space, excited by the beam."""
+    mu_a_x, mu_sp_x = optical_properties(tissue, float(source.centre_nm))
+    mu_eff_x = float(transport.mu_eff(mu_a_x, mu_sp_x)) / MM_PER_CM
+    z_max = min(60.0, 25.0 / max(mu_eff_x, 1e-3))
+    z = np.concatenate([[0.0], np.geomspace(1e-3, z_max, _N_BACKGROUND_DEPTHS - 1)])
+    fluence = _excitation_fluence_photons(tissue, source, irradiance, z)  # photons/s/cm²
+    mu_a, mu_sp = optical_properties(tissue, wl_em)
+    esc = disc_escape_fraction(np.inf, z[:, None], mu_a[None, :], mu_sp[None, :], tissue.refractive_index)
+    # per cm³: yield_per_cm * fluence photons/s; per mm³ divide by 1000; integrate dz in mm.
+    source_per_mm3 = yield_per_cm * fluence / MM3_PER_CM3
+    return np.trapezoid(source_per_mm3[:, None] * esc, z, axis=0) * emission_per_nm
+
+
+def background_rates(
+    tissue: str | Tissue,
+    probes,
+    *,
+    source,
+    irradiance_mw_per_cm2: float,
+    emission_filter,
+    camera,
+    lens,
+    background_concentration_uM,
+    autofluorescence: Autofluorescence | None = None,
+) -> dict[str, Any]:
+    """Background photoelectron rates (e⁻/s per binned pixel) in one channel.
+
+    Returns
+    -------
+    dict
+        ``"uptake"``: array (K,), each probe's nonspecific uptake at its background
+        concentration in the whole half-space; ``"autofluorescence"``,
+        ``"leakage"`` (diffusely reflected excitation through the filter's
+        blocking), ``"dark"`` (dark current × binning²): floats.
+    """
+    tissue = _tissue(tissue)
+    irradiance = positive_number("irradiance_mw_per_cm2", irradiance_mw_per_cm2)
+    af = Autofluorescence() if autofluorescence is None else autofluorescence
+    conc = np.atleast_1d(np.asarray(background_concentration_uM, dtype=np.float64))
+    if conc.shape != (len(probes),) or not np.all(np.isfinite(conc)) or np.any(conc < 0):
+        raise input_error("background_concentration_uM", f"got {conc.tolist()}", "give one value >= 0 (µM) per probe")
+    pixel = _detection(camera, lens)
+    x_nm = float(source.centre_nm)
+    uptake = np.zeros(len(probes))
+    for k, probe in enumerate(probes):
+        if conc[k] == 0:
+            continue
+        wl = emission_grid_nm([probe])
+        eps = float(np.asarray(probe.molar_extinction_per_M_cm(x_nm)))
+        yield_per_cm = probe.quantum_yield * math.log(10.0) * eps * conc[k] * M_PER_UM
+        exitance = _half_space_integral(tissue, source, irradiance, wl, probe.emission_per_nm(wl), yield_per_cm)
+        uptake[k] = np.trapezoid(exitance * pixel * emission_filter.transmission(wl) * camera.qe(wl), wl)
+    af_rate = 0.0
+    wl_af = np.arange(max(300.0, math.floor(x_nm) + 1), min(2000.0, x_nm + _AF_SPAN_DECAYS * af.decay_nm), 1.0)
+    band = emission_filter.transmission(wl_af) * camera.qe(wl_af)
+    inside = np.nonzero(band >= _AF_BAND_FLOOR * max(float(band.max(initial=0.0)), 1e-300))[0]
+    wl_af = wl_af[inside[0]: inside[-1] + 1] if inside.size else wl_af[:0]
+    if af.yield_per_cm > 0 and wl_af.size >= 2:
+        af_exit = _half_space_integral(tissue, source, irradiance, wl_af, af.emission_per_nm(wl_af, x_nm),
+                                       af.yield_at(x_nm))
+        af_rate = float(np.trapezoid(af_exit * pixel * emission_filter.transmission(wl_af) * camera.qe(wl_af), wl_af))
+    wl_x, weights = _source_spectrum(source)
+    mu_a_x, mu_sp_x = optical_properties(tissue, wl_x)
+    rd = transport.diffuse_reflectance(mu_a_x, mu_sp_x, tissue.refractive_index)
+    leak_exit = irradiance * photons_per_s_per_mw(wl_x) / MM2_PER_CM2 * rd * weights  # photons/s/mm²/nm
+    leak_rate = float(np.trapezoid(leak_exit * pixel * emission_filter.transmission(wl_x) * camera.qe(wl_x), wl_x))
+    dark_rate = float(camera.dark_current_e_per_binned_px_s)
+    return {"uptake": uptake, "autofluorescence": af_rate, "leakage": leak_rate, "dark": dark_rate}
+
+
+def depth_profile(
+    tissue: str | Tissue,
+    probe,
+    *,
+    source,
+    irradiance_mw_per_cm2: float,
+    emission_filter,
+    camera,
+    lens,
+    exposure_s: float,
+    depth_mm,
+    target_size_mm: float = 2.0,
+    concentration_uM: float = 1.0,
+    uptake_ratio: float = 5.0,
+    autofluorescence: Autofluorescence | None = None,
+    warn: bool = True,
+) -> DepthProfile:
+    """Signal, backgrounds, SBR, SNR and blur against depth for one probe.
+
+    Parameters
+    ----------
+    tissue : str or Tissue
+        Preset name or composition.
+    probe : Probe
+        From :func:`probeplan.model.dots.make_probe` (emission, ε at the excitation, QY).
+    source : Source
+        Excitation source (:mod:`probeplan.model.optics`); its spectrum weights the excitation.
+    irradiance_mw_per_cm2 : float
+        Excitation irradiance on the skin (mW/cm²).
+    emission_filter, camera, lens :
+        Detection path (:mod:`probeplan.model.optics`).
+    exposure_s : float
+        Exposure time (s).
+    depth_mm : array_like, shape (D,)
+        Depths of the inclusion's centre below the surface (mm).
+    target_size_mm : float
+        Inclusion diameter (mm).
+    concentration_uM : float
+        Probe concentration in the target (µM).
+    uptake_ratio : float
+        Target-to-background uptake ratio (TBR ≥ 1); the surrounding tissue holds c/TBR.
+    autofluorescence : Autofluorescence, optional
+        The autofluorescence assumption (default :class:`Autofluorescence()`).
+    warn : bool
+        Emit :class:`~probeplan.errors.ModelValidityWarning` where diffusion is unreliable.
+
+    Returns
+    -------
+    DepthProfile
+    """
+    tissue = _tissue(tissue)
+    depth = _depths(depth_mm)
+    irradiance = positive_number("irradiance_mw_per_cm2", irradiance_mw_per_cm2)
+    exposure = positive_number("exposure_s", exposure_s)
+    size = positive_number("target_size_mm", target_size_mm)
+    conc = positive_number("concentration_uM", concentration_uM)
+    tbr = positive_number("uptake_ratio", uptake_ratio)
+    if tbr < 1:
+        raise input_error("uptake_ratio", f"got {tbr:g}", "the target-to-background uptake ratio must be >= 1")
+    af = Autofluorescence() if autofluorescence is None else autofluorescence
+    notes: list[str] = []
+
+    wl = emission_grid_nm([probe])
+    bg_conc = conc / tbr
+    rate_full, wl, escaped = _signal_rate(
+        tissue, probe, source, irradiance, emission_filter, camera, lens, depth, size, conc - bg_conc, wl
+    )
+    detect = _detection(camera, lens) * emission_filter.transmission(wl) * camera.qe(wl)
+    bg = background_rates(tissue, [probe], source=source, irradiance_mw_per_cm2=irradiance,
+                          emission_filter=emission_filter, camera=camera, lens=lens,
+                          background_concentration_uM=[bg_conc], autofluorescence=af)
+    uptake_rate, af_rate, leak_rate, dark_rate = (float(bg["uptake"][0]), bg["autofluorescence"], bg["leakage"],
+                                                  bg["dark"])
+    read_noise = float(camera.read_noise_per_binned_px_e)
+
+    signal = rate_full * exposure
+    uptake_e, af_e, leak_e, dark_e = (uptake_rate * exposure, af_rate * exposure, leak_rate * exposure,
+                                      dark_rate * exposure)
+    background = uptake_e + af_e + leak_e + dark_e
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sbr = np.where(background > 0, (signal + background) / background, np.inf)
+        contrast = np.where(background > 0, signal / background, np.inf)
+    snr = signal / np.sqrt(signal + background + read_noise**2)
+
+    # Blur and the escaping spectrum.
+    mu_a, mu_sp = optical_properties(tissue, wl)
+    spectrum_weight = escaped.sum(axis=0)
+    ref = int(np.argmax(spectrum_weight)) if spectrum_weight.any() else len(wl) // 2
+    blur = transport.point_source_blur_fwhm_mm(depth, mu_a[ref], mu_sp[ref], tissue.refractive_index)
+    blur = np.sqrt(np.asarray(blur, dtype=np.float64) ** 2 + size**2)
+    detected = escaped * detect[None, :]
+    peak = wl[np.argmax(escaped, axis=1)]
+
+    mu_a_x, mu_sp_x = optical_properties(tissue, float(source.centre_nm))
+    det_weight = detected.sum(axis=0)
+    det_ref = int(np.argmax(det_weight)) if det_weight.any() else ref
+    check_mu_a = np.array([float(mu_a_x), mu_a[det_ref]])
+    check_mu_sp = np.array([float(mu_sp_x), mu_sp[det_ref]])
+    valid = transport.diffusion_validity(depth[:, None], check_mu_a[None, :], check_mu_sp[None, :],
+                                         warn=warn).all(axis=1)
+    if not valid.all():
+        notes.append(f"diffusion theory is unreliable at {int((~valid).sum())} of {valid.size} depths "
+                     "(shallower than about one transport mean free path, or absorption not small against "
+                     "scattering); treat those values as rough")
+    full_well = float(getattr(camera, "full_well_e", np.inf))
+    saturated = signal + background > full_well
+    if saturated.any():
+        notes.append("the pixel saturates at some depths: shorten the exposure or lower the irradiance")
+    if wl.max() > 1000.0 or float(source.centre_nm) > 1000.0:
+        notes.append(HB_BEYOND_TABLE_NOTE)
+    if np.any(depth < size / 2.0):
+        notes.append(f"at depths under {size / 2.0:g} mm the {size:g} mm target breaks the surface; "
+                     "its part above the skin is counted as lying at the surface")
+    notes.append("autofluorescence is a parametric assumption "
+                 f"(yield {af.yield_per_cm:g} cm^-1 at {af.reference_excitation_nm:g} nm); set it from an unlabelled control")
+    return DepthProfile(
+        probe=str(getattr(probe, "name", "probe")),
+        depth_mm=depth,
+        exposure_s=exposure,
+        signal_e=signal,
+        uptake_background_e=uptake_e,
+        autofluorescence_e=af_e,
+        leakage_e=leak_e,
+        dark_e=dark_e,
+        read_noise_e=read_noise,
+        sbr=sbr,
+        contrast=contrast,
+        snr=snr,
+        blur_fwhm_mm=blur,
+        escaped_peak_nm=peak,
+        diffusion_valid=valid,
+        saturated=saturated,
+        wavelength_nm=wl,
+        escaped_spectrum=escaped,
+        detected_spectrum=detected,
+        notes=notes,
+    )
+
+
+def depth_at_threshold(profile: DepthProfile, sbr_threshold: float = DEFAULT_SBR_THRESHOLD) -> float:
+    """Deepest depth (mm) before the SBR first falls below ``sbr_threshold``, linearly interpolated.
+
+    Returns ``inf`` if it never falls below within the profile, and 0.0 if it
+    starts below.  The default threshold of 2 is common practice, not a standard.
+    """
+    thr = positive_number("sbr_threshold", sbr_threshold)
+    d, s = profile.depth_mm, profile.sbr
+    below = np.nonzero(s < thr)[0]
+    if below.size == 0:
+        return math.inf
+    i = int(below[0])
+    if i == 0:
+        return 0.0
+    # interpolate between i-1 (above) and i (below)
+    return float(d[i - 1] + (s[i - 1] - thr) * (d[i] - d[i - 1]) / (s[i - 1] - s[i]))
