@@ -113,8 +113,8 @@ def _bad_files(tmp_path: Path, kind: str) -> dict[str, tuple[Path, str]]:
 
 def _file_cases():
     out = []
-    for kind, commands in (("spectra", ["depth", "channels", "design"]), ("references", ["unmix"]),
-                           ("stack", ["unmix"]), ("plan", ["plan", "check"]), ("rules", ["plan", "check"])):
+    for kind, commands in (("spectra", ["depth", "channels", "design"]), ("references", ["unmix", "study"]),
+                           ("stack", ["unmix", "study"]), ("plan", ["plan", "check"]), ("rules", ["plan", "check"])):
         for command in commands:
             for case in ("missing", "empty", "truncated", "png", "toml", "wrong_unit"):
                 if case == "toml" and kind in ("plan", "rules"):
@@ -132,10 +132,14 @@ def _argv(command: str, kind: str, bad: Path, out: Path) -> list:
                           "--depth-mm", "2", "--json"]}
     if kind == "spectra":
         return spectra[command]
-    if command == "unmix":
+    if command in ("unmix", "study"):
         stack = bad if kind == "stack" else DEMO / "stack.tif"
         refs = bad if kind == "references" else DEMO / "references.csv"
-        return ["unmix", stack, "--references", refs, "--out", out]
+        if command == "unmix":
+            return ["unmix", stack, "--references", refs, "--out", out]
+        table = bad.parent / "study.csv"  # one acquisition: the stack under test
+        table.write_text(f"animal,group,time_h,file\nm1,g,1,{stack}\n")
+        return ["study", table, "--references", refs, "--out", out, "--roi", "background:0,0,8,8"]
     plan = bad if kind == "plan" else DEMO / "plan.toml"
     rules = bad if kind == "rules" else DEMO / "rules.toml"
     if command == "plan":
@@ -152,7 +156,7 @@ def test_bad_input_files(tmp_path, capsys, command, kind, case):
     (outdir / "keep.txt").write_text("earlier result\n")
     snapshot = _snapshot(outdir)
     out = outdir / ("new_report" if command == "plan" else "out.ome.tif" if command == "unmix" else "out.csv"
-                    if command == "depth" else "out.png")
+                    if command == "depth" else "study_out" if command == "study" else "out.png")
     code, _, err = _run(_argv(command, kind, path, out), capsys)
     _assert_refused(code, err, named, str(path))
     assert not out.exists(), "partial output left behind"
@@ -234,6 +238,8 @@ _NUMERIC = {
     "design": (_DESIGN, ["--depth-mm", "--irradiance", "--illumination-s", "--exposure-s", "--k", "--channels",
                          "--top", "--binning", "--excitation-nm", "--size-mm"]),
     "unmix": (_UNMIX, ["--saturation", "--gain", "--read-noise", "--memory-mb"]),
+    "study": (["study", "not-read.csv", "--references", str(DEMO / "references.csv"), "--out", "not-written"],
+              ["--gain", "--read-noise", "--channel-axis"]),
     "dots size": (["dots", "size", "CdSe"], ["--peak", "--diameter", "--emission"]),
     "dots conc": (["dots", "conc", "CdSe", "--peak", "550", "--absorbance", "0.1"], ["--path-cm", "--peak", "--absorbance"]),
     "dots dose": (["dots", "dose", "--mass-g", "20", "--stock-uM", "10", "--dose-nmol-per-kg", "8"],
@@ -300,5 +306,5 @@ def test_real_process_usage_error(tmp_path):
 
 
 def test_every_command_is_walked():
-    walked = {"depth", "channels", "design", "unmix", "plan", "check", "library", "demo", "app", "dots"}
+    walked = {"depth", "channels", "design", "unmix", "plan", "check", "library", "demo", "app", "dots", "study"}
     assert set(COMMANDS) <= walked, f"new subcommands to add to the walk: {set(COMMANDS) - walked}"

@@ -151,7 +151,34 @@ def _ifd_chain_broken(tif, file_size: int) -> bool:
     return following != 0 and (following >= file_size or following in offsets)
 
 
-def _inspect(path: Path, channel_axis: int | None) -> StackInfo:
+def _imagej_details(tif, n_planes_c: int | None) -> tuple[tuple[str, ...] | None, tuple[float, float] | None]:
+    """Channel labels and pixel calibration of an ImageJ hyperstack (``Labels``, X/YResolution, ``unit``)."""
+    meta = tif.imagej_metadata or {}
+    names = None
+    labels = meta.get("Labels")
+    if isinstance(labels, (list, tuple)) and n_planes_c and len(labels) >= n_planes_c:
+        # ImageJ keeps one label per plane; in a hyperstack without Z/T the planes are the channels.
+        cand = tuple(str(x) for x in labels[:n_planes_c])
+        if all(cand) and len(labels) == n_planes_c:
+            names = cand
+    size = None
+    unit = str(meta.get("unit", "")).replace("\\u00B5", "µ").strip()
+    page = tif.pages[0]
+    try:
+        xr = page.tags["XResolution"].value
+        yr = page.tags["YResolution"].value
+        px_per_unit_x = xr[0] / xr[1]
+        px_per_unit_y = yr[0] / yr[1]
+        if unit in UM_PER_UNIT and px_per_unit_x > 0 and px_per_unit_y > 0:
+            size = (UM_PER_UNIT[unit] / px_per_unit_y, UM_PER_UNIT[unit] / px_per_unit_x)
+            if not all(math.isfinite(v) and v > 0 for v in size):
+                size = None
+    except (KeyError, ZeroDivisionError, TypeError, IndexError, AttributeError):
+        size = None
+    return names, size
+
+
+def _inspect(path: Path, channel_axis: int | None, *, allow_plane: bool = False) -> StackInfo:
     import tifffile
 
     where = str(path)
@@ -183,12 +210,18 @@ def _inspect(path: Path, channel_axis: int | None) -> StackInfo:
             if _ifd_chain_broken(tif, file_size):
                 raise input_error(where, "truncated or damaged: the chain of image pages breaks off", _FIX_TIFF)
             names, pixel_size = _ome_details(tif.ome_metadata) if tif.is_ome and tif.ome_metadata else (None, None)
+            if not tif.is_ome and tif.is_imagej:
+                n_c = shape[axes.index("C")] if "C" in axes else None
+                names, pixel_size = _imagej_details(tif, n_c)
     except InputError:
         raise
     except Exception as exc:  # tifffile raises many kinds (struct.error, RuntimeError, ...) on damaged files
         raise input_error(where, f"cannot be read as TIFF ({type(exc).__name__}: {exc})", _FIX_TIFF) from None
+    if len(shape) == 2 and allow_plane:  # one channel per file: a plane read as a stack of one channel
+        shape, axes = (1, *shape), "C" + axes
     if len(shape) < 3:
-        raise input_error(where, f"shape {shape} has no channel axis", "give a stack of several channels (C, Y, X)")
+        raise input_error(where, f"shape {shape} has no channel axis",
+                          "give a stack of several channels (C, Y, X), or list one file per channel in a study table")
     if offset is not None and offset + math.prod(shape) * file_dtype.itemsize > file_size:
         raise input_error(where, "truncated: image data runs past the end of the file", _FIX_TIFF)
     ndim = len(shape)
@@ -213,6 +246,14 @@ def _inspect(path: Path, channel_axis: int | None) -> StackInfo:
         raise input_error(
             where, f"axes {axes!r} do not say which axis holds the channels", "pass --channel-axis N (channel_axis=N)"
         )
+    if source == "argument":
+        # The file does not name its axes (tifffile reports e.g. 'QYX' for any 3-D array): the two
+        # last axes other than the channel axis are the image rows and columns.
+        rest = [i for i in range(ndim) if i != c_axis]
+        letters = ["Q"] * ndim
+        letters[c_axis] = "C"
+        letters[rest[-2]], letters[rest[-1]] = "Y", "X"
+        axes = "".join(letters)
     row_axis = axes.index("Y") if "Y" in axes else ndim - 2
     if row_axis == c_axis:
         raise input_error("channel_axis", f"axis {c_axis} is the row (Y) axis of {where}", "choose the channel axis")
@@ -297,7 +338,10 @@ class StackReader:
             self._zarr = z
         key = [slice(None)] * len(self.info.shape)
         key[self.info.row_axis] = slice(r0, r1)
+        plane = len(self._zarr.shape) == len(self.info.shape) - 1  # a single plane read as one channel
         try:
+            if plane:
+                return np.asarray(self._zarr[tuple(key[1:])])[None]
             return np.asarray(self._zarr[tuple(key)])
         except Exception as exc:  # decoding errors of damaged files
             raise input_error(str(self.info.path), f"cannot decode rows {r0}:{r1} ({exc})", _FIX_TIFF) from None
@@ -330,14 +374,17 @@ class StackReader:
         return self.read_rows(0, self.info.n_rows)
 
 
-def open_stack(path: str | os.PathLike, *, channel_axis: int | None = None) -> StackReader:
+def open_stack(path: str | os.PathLike, *, channel_axis: int | None = None, allow_plane: bool = False) -> StackReader:
     """Open a TIFF/OME-TIFF stack for reading by rows.
 
     Parameters
     ----------
     path : path-like
     channel_axis : int, optional
-        Needed only when the file does not name its axes and has more than 3 dimensions.
+        Needed only when the file does not name its axes and has more than 3 dimensions,
+        or to read a plain 3-D file whose channels are last (``channel_axis=2``).
+    allow_plane : bool
+        Read a 2-D image as a stack of one channel (a file per channel).
 
     Returns
     -------
@@ -358,7 +405,7 @@ def open_stack(path: str | os.PathLike, *, channel_axis: int | None = None) -> S
     ...     r.info.n_channels, r.info.channel_axis_source, r.read_rows(1, 3).shape
     (3, 'channel-first convention', (3, 2, 5))
     """
-    return StackReader(_inspect(Path(path), channel_axis))
+    return StackReader(_inspect(Path(path), channel_axis, allow_plane=allow_plane))
 
 
 def read_stack(path: str | os.PathLike, *, channel_axis: int | None = None) -> tuple[np.ndarray, StackInfo]:

@@ -1,0 +1,129 @@
+"""``probeplan study``: every acquisition of a study unmixed, measured, compared between groups and over time."""
+
+from __future__ import annotations
+
+import argparse
+
+__all__ = ["HELP", "add_arguments", "run"]
+
+HELP = "a whole study: unmix every animal and time point, ROI statistics, group comparisons, kinetics, report"
+
+_LABEL_SUFFIXES = (".tif", ".tiff")
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("study", help="study table CSV: animal,group,time_h,file[,channel] (paths relative to it)")
+    parser.add_argument("--references", required=True, help="reference spectra CSV: channel,<component>,...")
+    parser.add_argument("--out", required=True, help="output folder (created; a rerun resumes where it stopped)")
+    parser.add_argument("--method", choices=("nnls", "ls", "wls"), default="nnls",
+                        help="unmixing of the maps written (ROI means are always unconstrained least squares)")
+    parser.add_argument("--roi", action="append", default=[],
+                        help="ROI 'name:x0,y0,x1,y1' (pixels, end excluded) or a label TIFF; repeatable")
+    parser.add_argument("--roi-background", default="background", help="name of the background ROI (default background)")
+    parser.add_argument("--dark", help="dark-frame stack, subtracted (channels matched by name)")
+    parser.add_argument("--flat", help="flat-field stack, divided (channels matched by name)")
+    parser.add_argument("--channel-axis", type=int, default=None,
+                        help="axis holding the channels in files that do not name their axes (2 for Y,X,C)")
+    parser.add_argument("--gain", type=float, default=1.0, help="camera gain, e-/count, for the error maps (default 1)")
+    parser.add_argument("--read-noise", type=float, default=0.0, help="camera read noise, e- rms (default 0)")
+    parser.add_argument("--abundance-unit", default=None, metavar="UNIT",
+                        help="use the references as written (e.g. counts per µM) and call the abundance unit UNIT "
+                             "(e.g. uM); default: references scaled to sum 1, abundance in counts")
+    parser.add_argument("--plan", default=None, help="study plan TOML: show its assumed effect size beside the observed")
+    parser.add_argument("--no-maps", action="store_true", help="write only the tables, not the maps of each acquisition")
+    parser.add_argument("--json", action="store_true", help="print a machine-readable summary")
+
+
+def run(args: argparse.Namespace) -> int:
+    import math
+    import signal
+    import sys
+    from pathlib import Path
+
+    from tqdm import tqdm
+
+    from probeplan import RESEARCH_USE_CAUTION
+    from probeplan.cli.common import print_json
+    from probeplan.errors import input_error
+    from probeplan.study.runs import StudySettings, run_study
+    from probeplan.study.table import read_study_table
+
+    for name in ("gain", "read_noise"):
+        v = getattr(args, name)
+        if not (math.isfinite(v) and (v > 0 if name == "gain" else v >= 0)):
+            raise input_error(f"--{name.replace('_', '-')}", f"got {v}", "give a finite positive value")
+    labels = [r for r in args.roi if r.lower().endswith(_LABEL_SUFFIXES)]
+    rects = [r for r in args.roi if not r.lower().endswith(_LABEL_SUFFIXES)]
+    if len(labels) > 1:
+        raise input_error("--roi", f"{len(labels)} label images given", "give at most one label TIFF")
+    planned = None
+    if args.plan:
+        from probeplan.study.plan import load_plan
+
+        plan = load_plan(args.plan)
+        if not plan.statistics:
+            raise input_error(str(args.plan), "has no [statistics] section with effect_size and sd",
+                              "add one, or omit --plan")
+        planned = {"effect_size": plan.statistics["effect_size"], "sd": plan.statistics["sd"]}
+    settings = StudySettings(
+        method=args.method, rois=tuple(rects), labels_path=Path(labels[0]) if labels else None,
+        roi_background=args.roi_background, dark_path=Path(args.dark) if args.dark else None,
+        flat_path=Path(args.flat) if args.flat else None, channel_axis=args.channel_axis,
+        gain_e_per_count=args.gain, read_noise_e=args.read_noise, write_maps=not args.no_maps,
+    )
+    n_acq = len(read_study_table(args.study))
+    out = Path(args.out)
+    created = None
+    for parent in (out, *out.absolute().parents):
+        if parent.exists():
+            break
+        created = parent
+
+    def _terminate(signum, frame):
+        raise KeyboardInterrupt
+
+    previous = signal.signal(signal.SIGTERM, _terminate)
+    bar = tqdm(total=n_acq, desc="study", unit="acquisition", disable=True if args.json else None, file=sys.stderr,
+               leave=False)
+    try:
+        result = run_study(args.study, args.references, out_dir=out, settings=settings, unit=args.abundance_unit,
+                           planned_effect=planned, progress=lambda acq, status: bar.update(1))
+        from probeplan.report.study import study_report, write_study_report
+
+        report_path = write_study_report(study_report(result, settings), out)
+    except BaseException:
+        # nothing finished: leave no folder behind (finished acquisitions are kept for the rerun to reuse)
+        if created is not None and not any(out.glob("acquisitions/*_measurements.csv")):
+            import shutil
+
+            shutil.rmtree(created, ignore_errors=True)
+        raise
+    finally:
+        bar.close()
+        signal.signal(signal.SIGTERM, previous)
+    g = result.groups
+    n_compared = int(g["p_welch"].notna().sum()) if len(g) else 0
+    summary = {
+        "caution": RESEARCH_USE_CAUTION, "acquisitions": len(result.acquisitions),
+        "animals": int(result.measurements["animal"].nunique()), "groups": sorted(result.measurements["group"].unique()),
+        "time_points_h": sorted(float(t) for t in result.measurements["time_h"].unique()),
+        "resumed": result.skipped, "unit": result.unit, "comparisons": len(g), "comparisons_tested": n_compared,
+        "significant_holm_0.05": int((g["p_adjusted"] < 0.05).sum()) if len(g) else 0,
+        "outputs": {k: str(v) for k, v in {**result.outputs, "report": report_path}.items()}, "notes": result.notes,
+    }
+    if args.json:
+        print_json(summary)
+    else:
+        out_ = sys.stdout.write
+        out_(f"{summary['acquisitions']} acquisitions ({summary['animals']} animals, groups "
+             f"{', '.join(summary['groups'])}, time points {', '.join(f'{t:g}' for t in summary['time_points_h'])} h)"
+             + (f"; {len(result.skipped)} unchanged since the last run, reused" if result.skipped else "") + "\n")
+        out_(f"abundance unit: {result.unit}\n")
+        out_(f"{summary['comparisons']} group comparisons, {n_compared} tested, "
+             f"{summary['significant_holm_0.05']} with Holm-adjusted p < 0.05\n")
+        for note in result.notes[1:]:
+            out_(f"note: {note}\n")
+        for k, v in summary["outputs"].items():
+            out_(f"{k}: {v}\n")
+        out_(RESEARCH_USE_CAUTION + "\n")
+    return 0

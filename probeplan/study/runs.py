@@ -1,0 +1,577 @@
+"""A whole study: every acquisition unmixed, ROI statistics per animal and time point, then groups and kinetics.
+
+:func:`measure_acquisition` is the unit of work: it takes one :class:`Acquisition` (paths and
+names only, so it can run as a separate task) and returns a small table of ROI statistics,
+writing the acquisition's abundance, standard-error and residual maps when asked.
+:func:`run_study` reads the study table, checks every input before anything is written,
+runs the acquisitions (a rerun skips those whose inputs, settings and outputs are unchanged),
+compares the groups (:mod:`probeplan.study.stats`) and fits the time courses
+(:mod:`probeplan.study.kinetics`).
+
+ROI statistics are not biased by the non-negativity constraint: the maps are unmixed by the
+chosen method (exact NNLS by default), but each ROI's mean is the unconstrained
+least-squares abundance of its pixels, which equals the least-squares unmixing of the ROI's
+mean spectrum (the estimator is linear).  Clamping each pixel at zero first would bias the
+mean upwards wherever a component is near zero (an absent probe reads about +0.4 sigma:
+E[max(0, Z)] = 1/sqrt(2 pi) sigma for Gaussian noise) and bias the target-to-background ratio.  The standard
+error of an ROI mean is the pixels' standard deviation over sqrt(n); neighbouring pixels
+are correlated by the tissue's blur, so it understates the uncertainty of one animal's
+value — the group comparisons use the spread between animals instead.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from probeplan.errors import input_error
+from probeplan.study.table import Acquisition, read_study_table
+
+__all__ = [
+    "MEASUREMENT_COLUMNS",
+    "StudySettings",
+    "StudyResult",
+    "load_acquisition",
+    "measure_acquisition",
+    "run_study",
+    "abundance_unit",
+    "write_table_csv",
+    "read_table_csv",
+    "MANIFEST_NAME",
+    "MEASUREMENTS_NOTES",
+]
+
+#: Columns of ``measurements.csv`` (the first eight are the stable interface).
+MEASUREMENT_COLUMNS = ("animal", "group", "time_h", "roi", "component", "mean", "se", "tbr", "tbr_se", "sd",
+                       "n_pixels", "n_excluded", "unit", "acquisition", "channel_match")
+#: Manifest of finished acquisitions in the output folder (checksums), used to resume.
+MANIFEST_NAME = "study_manifest.json"
+MEASUREMENTS_NOTES = (
+    "One row per animal x time point x ROI x component.",
+    "mean: the ROI's mean abundance from unconstrained least squares over its pixels (= the ROI's mean spectrum "
+    "unmixed), not the mean of the non-negative (NNLS) map, which is biased upwards where a component is near zero.",
+    "se: standard error of that mean (pixel SD / sqrt(n_pixels)); pixels are correlated by blur, so it understates "
+    "the uncertainty; group comparisons use the spread between animals.",
+    "tbr: mean / mean of the background ROI for the same component (NaN when that mean is <= 0); tbr_se by the "
+    "delta method.",
+    "n_excluded: NaN or saturated pixels left out.",
+)
+
+
+@dataclass(frozen=True)
+class StudySettings:
+    """How every acquisition of a study is processed (the same for all; part of the resume check).
+
+    Attributes
+    ----------
+    method : {"nnls", "ls", "wls"}
+        Unmixing of the maps written.
+    rois : tuple of str
+        Rectangles ``"name:x0,y0,x1,y1"``.
+    labels_path : Path or None
+        A label TIFF (each non-zero label an ROI).
+    roi_background : str
+        Name of the background ROI for the TBR.
+    dark_path, flat_path : Path or None
+        Dark frame and flat field stacks (channels matched by name when they have names).
+    channel_axis : int or None
+        For plain files whose axes are not named.
+    gain_e_per_count, read_noise_e : float
+        Camera noise model of the standard-error maps.
+    write_maps : bool
+        Write the abundance, standard-error and residual maps of every acquisition.
+    """
+
+    method: str = "nnls"
+    rois: tuple[str, ...] = ()
+    labels_path: Path | None = None
+    roi_background: str = "background"
+    dark_path: Path | None = None
+    flat_path: Path | None = None
+    channel_axis: int | None = None
+    gain_e_per_count: float = 1.0
+    read_noise_e: float = 0.0
+    write_maps: bool = True
+
+
+@dataclass
+class StudyResult:
+    """What :func:`run_study` found: the three tables (pandas DataFrames), notes and written files."""
+
+    measurements: pd.DataFrame
+    groups: pd.DataFrame
+    kinetics: pd.DataFrame
+    acquisitions: list[Acquisition]
+    unit: str
+    notes: list[str] = field(default_factory=list)
+    outputs: dict[str, Path] = field(default_factory=dict)
+    skipped: list[str] = field(default_factory=list)
+
+
+def abundance_unit(references, unit: str | None = None) -> str:
+    """What one unit of abundance means, from the references' normalisation (or the unit given).
+
+    Examples
+    --------
+    >>> from probeplan.unmixing.references import references_from_matrix
+    >>> abundance_unit(references_from_matrix([[1.0], [3.0]], ["dotA"], normalise="sum"))
+    'counts (summed over all channels)'
+    """
+    if unit:
+        return unit
+    how = getattr(references, "normalisation", None)
+    if how == "sum":
+        return "counts (summed over all channels)"
+    if how == "max":
+        return "counts (in the component's brightest channel)"
+    return "reference units (the abundance that gives the reference spectrum as written)"
+
+
+# --------------------------------------------------------------------------- one acquisition
+def _read_one(path: Path, channel_axis, allow_plane: bool):
+    from probeplan.io.stacks import open_stack
+
+    with open_stack(path, channel_axis=channel_axis, allow_plane=allow_plane) as r:
+        return r.read_rows_channel_first(0, r.info.n_rows), r.info
+
+
+def load_acquisition(acq: Acquisition, *, channel_axis: int | None = None):
+    """The acquisition as one channel-first array with its channel names and pixel size.
+
+    Returns
+    -------
+    data : ndarray, shape (C, ..., Y, X)
+    channel_names : tuple of str or None
+    pixel_size_um : (float, float) or None
+    spatial_axes : str
+
+    Raises
+    ------
+    InputError
+        A per-channel file that holds several channels, files of different shapes or pixel sizes.
+    """
+    if acq.channels is None:
+        data, info = _read_one(acq.files[0], channel_axis, False)
+        return data, info.channel_names, info.pixel_size_um, info.spatial_axes
+    planes, sizes, shape = [], set(), None
+    for f, ch in zip(acq.files, acq.channels, strict=True):
+        d, info = _read_one(f, None, True)
+        if d.shape[0] != 1:
+            raise input_error(f"{acq.where} ({f.name})", f"channel {ch!r} is a file of {d.shape[0]} channels",
+                              "list a multi-channel file with an empty channel cell, or give one file per channel")
+        if shape is not None and d.shape != shape:
+            raise input_error(f"{acq.where} ({f.name})", f"shape {d.shape[1:]} differs from {shape[1:]} of the other "
+                              "channels", "give every channel of one acquisition the same image size")
+        shape = d.shape
+        planes.append(d[0])
+        if info.pixel_size_um is not None:
+            sizes.add(tuple(round(v, 9) for v in info.pixel_size_um))
+    if len(sizes) > 1:
+        raise input_error(acq.where, f"the channel files give different pixel sizes {sorted(sizes)} µm",
+                          "give files of one acquisition with one pixel size")
+    dtype = np.result_type(*(p.dtype for p in planes))
+    return np.stack(planes).astype(dtype, copy=False), tuple(acq.channels), (sizes.pop() if sizes else None), "YX"
+
+
+def _matched_references(references, names, where):
+    """References ordered as the stack's channels; how they were matched."""
+    if names is not None and references.channel_names is not None:
+        return references.for_channels(names, where=where), "by name"
+    return references, "by position (the file names no channels)"
+
+
+def _correction(path, names, data_shape, where, what):
+    if path is None:
+        return None
+    from probeplan.io.stacks import read_stack
+
+    arr, info = read_stack(path)
+    arr = np.moveaxis(arr, info.channel_axis, 0).astype(np.float64)
+    if names is not None and info.channel_names is not None:
+        missing = [c for c in names if c not in info.channel_names]
+        if missing:
+            raise input_error(str(path), f"no {what} channel {missing} for {where}",
+                              f"give a {what} stack with the acquisition's channels")
+        arr = arr[[info.channel_names.index(c) for c in names]]
+    if arr.shape != tuple(data_shape):
+        raise input_error(str(path), f"shape {arr.shape} (channels first) differs from {where}'s {tuple(data_shape)}",
+                          f"give a {what} stack of the acquisition's shape")
+    return arr
+
+
+def _rois(settings: StudySettings, shape_yx):
+    from probeplan.unmixing.roi import Roi, parse_rectangle, rois_from_labels
+
+    labels = None
+    out: list[Roi] = []
+    if settings.labels_path is not None:
+        import tifffile
+
+        try:
+            labels = tifffile.imread(settings.labels_path)
+        except Exception as exc:  # tifffile raises many kinds on damaged files
+            raise input_error(str(settings.labels_path), f"cannot be read as TIFF ({exc})",
+                              "give an integer label TIFF") from None
+        if labels.shape != tuple(shape_yx):
+            raise input_error(str(settings.labels_path), f"shape {labels.shape}, images are {tuple(shape_yx)}",
+                              "give a label image of the stacks' Y x X size")
+        out += rois_from_labels(labels)
+    for spec in settings.rois:
+        out.append(parse_rectangle(spec, shape=tuple(shape_yx)))
+    if not out:
+        raise input_error("--roi", "no region of interest given", "give --roi 'name:x0,y0,x1,y1' (and one named "
+                          f"{settings.roi_background!r} for the TBR) or a label TIFF")
+    names = [r.name for r in out]
+    repeated = sorted({n for n in names if names.count(n) > 1})
+    if repeated:
+        raise input_error("--roi", f"ROI name(s) {repeated} given twice", "give each ROI its own name")
+    return out, labels
+
+
+def _roi_mask(roi, labels, shape_yx):
+    if roi.rect is not None:
+        x0, y0, x1, y1 = roi.rect
+        m = np.zeros(shape_yx, bool)
+        m[y0:y1, x0:x1] = True
+        return m
+    return labels == roi.label
+
+
+def roi_least_squares(y, M):
+    """Unconstrained least-squares abundances of pixel spectra ``y`` (C, N): ``(MᵀM)⁻¹Mᵀy``, shape (K, N)."""
+    return np.linalg.solve(M.T @ M, M.T @ y)
+
+
+def measure_acquisition(acq: Acquisition, references, settings: StudySettings = StudySettings(), *,
+                        out_dir: str | os.PathLike | None = None, unit: str | None = None) -> pd.DataFrame:
+    """ROI statistics of one acquisition (and its maps written into ``out_dir``).
+
+    Parameters
+    ----------
+    acq : Acquisition
+    references : ReferenceSpectra
+    settings : StudySettings
+    out_dir : path-like, optional
+        Folder for ``<key>_abundance.ome.tif``, ``<key>_stderr.ome.tif``, ``<key>_residual.ome.tif``.
+    unit : str, optional
+        The abundance unit written in the table (default from the references' normalisation).
+
+    Returns
+    -------
+    DataFrame
+        Columns :data:`MEASUREMENT_COLUMNS`.
+    """
+    from probeplan.unmixing.pipeline import default_saturation, design_matrix, unmix_stack
+
+    data, names, pixel_size, spatial_axes = load_acquisition(acq, channel_axis=settings.channel_axis)
+    refs, match = _matched_references(references, names, acq.where)
+    M, comps = design_matrix(refs, n_channels=data.shape[0])
+    dark = _correction(settings.dark_path, names, data.shape, acq.where, "dark")
+    flat = _correction(settings.flat_path, names, data.shape, acq.where, "flat")
+    if flat is not None and not (flat > 0).all():
+        raise input_error(str(settings.flat_path), "has values <= 0 or NaN", "give a flat field that is > 0 everywhere")
+    shape_yx = data.shape[-2:]
+    rois, labels = _rois(settings, shape_yx)
+    sat = default_saturation(data.dtype)
+    unit = abundance_unit(refs, unit)
+    if out_dir is not None and settings.write_maps:
+        _write_maps(Path(out_dir), acq, data, refs, settings, dark, flat, comps, pixel_size, spatial_axes, unit)
+    C = data.shape[0]
+    raw = data.reshape(C, -1, *shape_yx).astype(np.float64)
+    y = raw - dark.reshape(raw.shape) if dark is not None else raw
+    if flat is not None:
+        y = y / flat.reshape(raw.shape)
+    bad = ~np.isfinite(y).all(axis=0)
+    if sat is not None:
+        bad |= (raw >= sat).any(axis=0)
+    stats = {}
+    for roi in rois:
+        mask = np.broadcast_to(_roi_mask(roi, labels, shape_yx), bad.shape)
+        sel = mask & ~bad
+        a = roi_least_squares(y[:, sel], M)
+        n = a.shape[1]
+        mean = a.mean(axis=1) if n else np.full(len(comps), np.nan)
+        sd = a.std(axis=1, ddof=1) if n > 1 else np.full(len(comps), np.nan)
+        stats[roi.name] = (mean, sd, n, int((mask & bad).sum()))
+    bg = stats.get(settings.roi_background)
+    rows = []
+    for roi in rois:
+        mean, sd, n, excluded = stats[roi.name]
+        se = sd / np.sqrt(n) if n > 1 else np.full(len(comps), np.nan)
+        for k, comp in enumerate(comps):
+            tbr = tbr_se = np.nan
+            if bg is not None and bg[0][k] > 0:
+                b, b_se = bg[0][k], bg[1][k] / np.sqrt(bg[2]) if bg[2] > 1 else np.nan
+                tbr = mean[k] / b
+                # delta method for a ratio of independent means
+                tbr_se = abs(tbr) * np.sqrt((se[k] / mean[k]) ** 2 + (b_se / b) ** 2) if mean[k] != 0 else np.nan
+                if roi.name == settings.roi_background:
+                    tbr_se = 0.0
+            rows.append({"animal": acq.animal, "group": acq.group, "time_h": acq.time_h, "roi": roi.name,
+                         "component": comp, "mean": float(mean[k]), "se": float(se[k]), "tbr": float(tbr),
+                         "tbr_se": float(tbr_se), "sd": float(sd[k]), "n_pixels": int(n), "n_excluded": excluded,
+                         "unit": unit, "acquisition": acq.key, "channel_match": match})
+    return pd.DataFrame(rows, columns=list(MEASUREMENT_COLUMNS))
+
+
+def map_paths(out_dir: Path, key: str) -> dict[str, Path]:
+    """Files written for one acquisition: abundance, standard error and residual maps."""
+    return {"abundance": out_dir / f"{key}_abundance.ome.tif", "stderr": out_dir / f"{key}_stderr.ome.tif",
+            "residual": out_dir / f"{key}_residual.ome.tif"}
+
+
+def _write_maps(out_dir, acq, data, refs, settings, dark, flat, comps, pixel_size, spatial_axes, unit):
+    from probeplan.io.stacks import write_stack
+    from probeplan.unmixing.pipeline import _out_axes, unmix_stack
+
+    r = unmix_stack(data, refs, method=settings.method, dark=dark, flat=flat,
+                    gain_e_per_count=settings.gain_e_per_count, read_noise_e=settings.read_noise_e)
+    axes = _out_axes(spatial_axes)
+    paths = map_paths(out_dir, acq.key)
+    write_stack(paths["abundance"], r.abundances, axes=axes, channel_names=comps, pixel_size_um=pixel_size)
+    write_stack(paths["stderr"], r.standard_error, axes=axes, channel_names=[f"{c} standard error" for c in comps],
+                pixel_size_um=pixel_size)
+    write_stack(paths["residual"], r.residual_rms[None], axes=axes, channel_names=["residual rms (counts)"],
+                pixel_size_um=pixel_size)
+    return paths
+
+
+# --------------------------------------------------------------------------- tables with notes
+def write_table_csv(path: str | os.PathLike, table: pd.DataFrame, notes: Sequence[str] = ()) -> Path:
+    """Write a table as CSV (atomic), its notes first as ``# `` lines (read back by :func:`read_table_csv`)."""
+    from probeplan.io.atomic import write_text_atomic
+
+    head = "".join(f"# {n}\n" for n in notes)
+    return write_text_atomic(path, head + table.to_csv(index=False, lineterminator="\n"))
+
+
+def read_table_csv(path: str | os.PathLike) -> pd.DataFrame:
+    """Read a table written by :func:`write_table_csv` (the leading ``#`` note lines skipped)."""
+    with open(path, encoding="utf-8") as fh:
+        skip = 0
+        for line in fh:
+            if not line.startswith("#"):
+                break
+            skip += 1
+    return pd.read_csv(path, skiprows=skip, keep_default_na=True)
+
+
+# --------------------------------------------------------------------------- the study
+def _sha256(path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 22), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def _settings_digest(settings: StudySettings, refs, unit: str) -> str:
+    d = {
+        "method": settings.method, "rois": list(settings.rois), "roi_background": settings.roi_background,
+        "labels": _sha256(settings.labels_path) if settings.labels_path else None,
+        "dark": _sha256(settings.dark_path) if settings.dark_path else None,
+        "flat": _sha256(settings.flat_path) if settings.flat_path else None,
+        "channel_axis": settings.channel_axis, "gain": settings.gain_e_per_count, "read_noise": settings.read_noise_e,
+        "write_maps": settings.write_maps, "components": list(refs.component_names),
+        "channels": list(refs.channel_names or []), "matrix": np.asarray(refs.matrix).tolist(), "unit": unit,
+    }
+    return hashlib.sha256(json.dumps(d, sort_keys=True).encode()).hexdigest()
+
+
+def _done(entry, acq, digest) -> bool:
+    if not isinstance(entry, dict) or entry.get("settings_sha256") != digest:
+        return False
+    if entry.get("inputs") != {str(f): _sha256(f) for f in acq.files}:
+        return False
+    outs = entry.get("outputs")
+    if not isinstance(outs, dict):
+        return False
+    return all(Path(p).is_file() and _sha256(p) == h for p, h in outs.items())
+
+
+def _check_acquisition(acq: Acquisition, refs, settings: StudySettings):
+    """Headers only: every file readable, channels matching the references, ROIs inside the image."""
+    from probeplan.io.stacks import open_stack
+
+    shapes = []
+    names = []
+    for f, ch in zip(acq.files, acq.channels or (None,) * len(acq.files), strict=True):
+        with open_stack(f, channel_axis=settings.channel_axis if ch is None else None, allow_plane=ch is not None) as r:
+            info = r.info
+        if ch is not None and info.n_channels != 1:
+            raise input_error(f"{acq.where} ({f.name})", f"channel {ch!r} is a file of {info.n_channels} channels",
+                              "list a multi-channel file with an empty channel cell, or give one file per channel")
+        shapes.append(info.spatial_shape)
+        names = info.channel_names if ch is None else None
+    if len(set(shapes)) > 1:
+        raise input_error(acq.where, f"the channel files have different shapes {sorted(set(shapes))}",
+                          "give every channel of one acquisition the same image size")
+    chans = acq.channels if acq.channels is not None else names
+    n = len(acq.files) if acq.channels is not None else info.n_channels
+    if chans is not None and refs.channel_names is not None:
+        refs.for_channels(chans, where=acq.where)
+    elif n != refs.n_channels:
+        raise input_error(acq.where, f"{n} channels but the references have {refs.n_channels} rows",
+                          "give one reference row per channel (a plain 3-D TIFF is read channels-first; "
+                          "pass --channel-axis 2 for channels last)")
+    _rois(settings, shapes[0][-2:])
+
+
+def load_references(references, *, unit: str | None = None):
+    """Reference spectra from a path, a DataFrame with a ``channel`` column, or :class:`ReferenceSpectra`.
+
+    With ``unit`` the references are used as written (abundance in that unit, e.g. ``"uM"``
+    when they are counts per µM); without it each column is scaled to sum 1.
+    """
+    from probeplan.unmixing.references import ReferenceSpectra, read_references_csv, references_from_matrix
+
+    if isinstance(references, ReferenceSpectra):
+        return references
+    normalise = None if unit else "sum"
+    if isinstance(references, pd.DataFrame):
+        if "channel" not in references.columns:
+            raise input_error("references", "the DataFrame has no 'channel' column",
+                              "give a column 'channel' naming each row's channel, then one column per component")
+        comps = [c for c in references.columns if c != "channel"]
+        return references_from_matrix(references[comps].to_numpy(dtype=np.float64), comps,
+                                      references["channel"].astype(str).tolist(), normalise=normalise,
+                                      source="references DataFrame")
+    if isinstance(references, (str, os.PathLike)):
+        return read_references_csv(references, normalise=normalise)
+    raise TypeError(f"references: expected a CSV path, a DataFrame or ReferenceSpectra, got {type(references).__name__}")
+
+
+def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.PathLike | None = None,
+              settings: StudySettings | None = None, unit: str | None = None, planned_effect: dict | None = None,
+              progress: Callable[[Acquisition, str], None] | None = None, **options) -> StudyResult:
+    """Unmix every acquisition of a study, measure its ROIs, compare the groups and fit the kinetics.
+
+    Parameters
+    ----------
+    study_csv : path-like
+        The study table (:mod:`probeplan.study.table`).
+    references : path-like, DataFrame or ReferenceSpectra
+        Reference spectra with channel names (see :func:`load_references`).
+    out_dir : path-like, optional
+        Folder for ``measurements.csv``, ``groups.csv``, ``kinetics.csv`` and the maps of each
+        acquisition (under ``acquisitions/``).  Without it nothing is written.
+    settings : StudySettings, optional
+        Or give its fields as keyword arguments (``rois=["tumour:..."]``, ``method="ls"``...).
+    unit : str, optional
+        Use the references as written and call the abundance unit this (see :func:`load_references`).
+    planned_effect : dict, optional
+        ``{"effect_size": ..., "sd": ...}`` assumed by the plan's power analysis, shown beside
+        the observed effect sizes.
+    progress : callable, optional
+        Called with ``(acquisition, "done" | "skipped")`` after each acquisition.
+
+    Returns
+    -------
+    StudyResult
+
+    Raises
+    ------
+    InputError
+        Any bad input, found before anything is written (see :mod:`probeplan.study.table`).
+    """
+    from probeplan.study.kinetics import KINETICS_NOTES, fit_time_courses
+    from probeplan.study.stats import GROUPS_NOTES, compare_groups
+
+    if settings is None:
+        opts = dict(options)
+        for k in ("labels_path", "dark_path", "flat_path"):
+            if opts.get(k) is not None:
+                opts[k] = Path(opts[k])
+        if "rois" in opts:
+            opts["rois"] = tuple(opts["rois"])
+        try:
+            settings = StudySettings(**opts)
+        except TypeError as exc:
+            raise TypeError(f"run_study: {exc}") from None
+    elif options:
+        raise TypeError(f"run_study: give either settings or its fields, not both ({sorted(options)})")
+    from probeplan.unmixing.pipeline import METHODS
+
+    if settings.method not in METHODS:
+        raise input_error("method", f"{settings.method!r} is not known", f"choose one of {', '.join(METHODS)}")
+    for what, p in (("--dark", settings.dark_path), ("--flat", settings.flat_path), ("--roi", settings.labels_path)):
+        if p is not None and not Path(p).is_file():
+            raise input_error(str(p), "file not found", f"give an existing TIFF to {what}")
+    refs = load_references(references, unit=unit)
+    unit_text = abundance_unit(refs, unit)
+    acqs = read_study_table(study_csv)
+    for acq in acqs:
+        _check_acquisition(acq, refs, settings)
+    out = Path(out_dir) if out_dir is not None else None
+    maps_dir = None
+    manifest: dict = {"entries": {}}
+    outputs: dict[str, Path] = {}
+    if out is not None:
+        from probeplan.io.atomic import refuse_input_paths
+
+        if out.exists() and not out.is_dir():
+            raise input_error("--out", f"{str(out)!r} is a file", "give a folder for the study's outputs")
+        inputs = [Path(study_csv), *(f for a in acqs for f in a.files)]
+        inputs += [p for p in (settings.dark_path, settings.flat_path, settings.labels_path) if p is not None]
+        if isinstance(references, (str, os.PathLike)):
+            inputs.append(Path(references))
+        if any(Path(p).resolve().parent == out.resolve() / "acquisitions" for p in inputs) or any(
+                Path(p).resolve() == out.resolve() for p in inputs):
+            raise input_error("--out", f"{str(out)!r} holds input files", "give a separate output folder")
+        refuse_input_paths([out / n for n in ("measurements.csv", "groups.csv", "kinetics.csv", "report.html")],
+                           inputs, option="--out")
+        maps_dir = out / "acquisitions"
+        maps_dir.mkdir(parents=True, exist_ok=True)
+        mpath = out / MANIFEST_NAME
+        if mpath.is_file():
+            try:
+                loaded = json.loads(mpath.read_text(encoding="utf-8"))
+                if isinstance(loaded, dict) and isinstance(loaded.get("entries"), dict):
+                    manifest = loaded
+            except (ValueError, OSError):
+                manifest = {"entries": {}}  # unreadable: everything is redone
+    digest = _settings_digest(settings, refs, unit_text)
+    tables = []
+    skipped = []
+    for acq in acqs:
+        entry = manifest["entries"].get(acq.key)
+        if maps_dir is not None and _done(entry, acq, digest):
+            tables.append(read_table_csv(maps_dir / f"{acq.key}_measurements.csv"))
+            skipped.append(acq.key)
+            if progress is not None:
+                progress(acq, "skipped")
+            continue
+        table = measure_acquisition(acq, refs, settings, out_dir=maps_dir, unit=unit)
+        if maps_dir is not None:
+            mfile = write_table_csv(maps_dir / f"{acq.key}_measurements.csv", table, MEASUREMENTS_NOTES)
+            written = [mfile, *(map_paths(maps_dir, acq.key).values() if settings.write_maps else [])]
+            manifest["entries"][acq.key] = {
+                "settings_sha256": digest, "inputs": {str(f): _sha256(f) for f in acq.files},
+                "outputs": {str(p): _sha256(p) for p in written},
+            }
+            from probeplan.io.atomic import write_json_atomic
+
+            write_json_atomic(out / MANIFEST_NAME, manifest)
+        tables.append(table)
+        if progress is not None:
+            progress(acq, "done")
+    measurements = pd.concat(tables, ignore_index=True)
+    measurements["time_h"] = measurements["time_h"].astype(float)
+    groups, group_notes = compare_groups(measurements, background=settings.roi_background,
+                                         planned_effect=planned_effect)
+    kinetics, kinetic_notes = fit_time_courses(measurements, background=settings.roi_background)
+    notes = [f"Abundance unit: {unit_text}."]
+    if out is not None:
+        outputs["measurements"] = write_table_csv(out / "measurements.csv", measurements,
+                                                  [*MEASUREMENTS_NOTES, notes[0]])
+        outputs["groups"] = write_table_csv(out / "groups.csv", groups, [*GROUPS_NOTES, *group_notes])
+        outputs["kinetics"] = write_table_csv(out / "kinetics.csv", kinetics, [*KINETICS_NOTES, *kinetic_notes])
+    return StudyResult(measurements, groups, kinetics, acqs, unit_text, notes + group_notes + kinetic_notes, outputs,
+                       skipped)
