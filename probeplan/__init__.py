@@ -6,7 +6,8 @@ laser safety officer, radiation/chemical safety office, or local regulations.
 
 from probeplan.errors import InputError, ModelValidityWarning, ProbeplanWarning
 
-__all__ = ["InputError", "ProbeplanWarning", "ModelValidityWarning", "__version__", "RESEARCH_USE_CAUTION", "run_study"]
+__all__ = ["InputError", "ProbeplanWarning", "ModelValidityWarning", "__version__", "RESEARCH_USE_CAUTION", "run_study",
+           "sphere_reduced_scattering_per_cm", "phantom_recipe", "calibrate_phantom", "apply_calibration"]
 
 __version__ = "0.1.0"
 
@@ -16,11 +17,19 @@ RESEARCH_USE_CAUTION = (
     "committee, laser safety officer, chemical/radiation safety office and local regulations decide."
 )
 
+#: Top-level names imported on first use (keeps ``import probeplan`` light).
+_LAZY = {
+    "run_study": "probeplan.study.runs",
+    "sphere_reduced_scattering_per_cm": "probeplan.model.mie",
+    "phantom_recipe": "probeplan.model.phantom",
+    "calibrate_phantom": "probeplan.study.calibration",
+    "apply_calibration": "probeplan.study.calibration",
+}
+
 
 def __getattr__(name: str):
-    # Entry points that pull in pandas/scipy are imported on first use, so `import probeplan` stays light.
-    if name == "run_study":
-        from probeplan.study.runs import run_study
+    if name in _LAZY:
+        import importlib
 
-        return run_study
+        return getattr(importlib.import_module(_LAZY[name]), name)
     raise AttributeError(f"module 'probeplan' has no attribute {name!r}")

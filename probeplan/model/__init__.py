@@ -4,7 +4,8 @@ Holds the wavelength grid and :class:`~probeplan.model.spectra.Spectrum` (``spec
 absorption and scattering from composition (``tissue``), diffusion theory (``transport``), the
 photon-packet Monte Carlo (``montecarlo``), nanocrystal sizing and emission (``dots``), filters,
 sources, cameras and lenses (``optics``), the signal and background at depth (``fluorescence``)
-and the probe × channel response with crosstalk and separability (``channels``).
+the probe × channel response with crosstalk and separability (``channels``), Mie theory for
+phantom spheres (``mie``) and liquid phantom recipes (``phantom``).
 
 It may import :mod:`probeplan.errors`, :mod:`probeplan.units`, :mod:`probeplan.io` and the
 shipped tables in :mod:`probeplan.data`; never the catalog, unmixing, design, study, report or
