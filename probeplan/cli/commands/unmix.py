@@ -37,6 +37,11 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--memory-mb", type=float, default=None, help="working-memory bound in MiB (default 256)")
     parser.add_argument("--scheduler", default=None, help="address of a running dask.distributed scheduler")
     parser.add_argument("--resume", action="store_true", help="skip stacks already done (checked by checksums)")
+    parser.add_argument("--calibration", metavar="FILE",
+                        help="calibration.csv from 'probeplan calibrate': also write the maps in uM with standard "
+                             "errors and range flags (<stem>_uM*.ome.tif, <stem>_uM_roi.csv)")
+    parser.add_argument("--depth-mm", type=float, default=None,
+                        help="depth of the target (mm), checked against the calibration phantom's depth")
     parser.add_argument("--json", action="store_true", help="print a machine-readable summary")
 
 
@@ -61,6 +66,8 @@ def _settings_digest(args, refs) -> str:
         "channels": list(refs.channel_names or []), "matrix": refs.matrix.tolist(),
         "dark": _sha256(args.dark) if args.dark else None, "flat": _sha256(args.flat) if args.flat else None,
     }
+    if getattr(args, "calibration", None):
+        settings.update(calibration=_sha256(args.calibration), depth_mm=args.depth_mm)
     return hashlib.sha256(json.dumps(settings, sort_keys=True).encode()).hexdigest()
 
 
@@ -120,6 +127,15 @@ def run(args: argparse.Namespace) -> int:
         args.references = args.references_from_plan
     else:
         refs = read_references_csv(args.references)
+    calibration = None
+    if args.calibration:
+        from probeplan.study.calibration import read_calibration_csv
+
+        calibration = read_calibration_csv(args.calibration)
+        if not set(calibration.table["component"]) & set(refs.component_names):
+            raise input_error(args.calibration, f"calibrates {list(calibration.table['component'])}, none of the "
+                              f"references' components {list(refs.component_names)}",
+                              "use the calibration made with these probes (the names must match)")
     rect_rois = [r for r in args.roi if not r.lower().endswith(_STACK_SUFFIXES)]
     label_files = [r for r in args.roi if r.lower().endswith(_STACK_SUFFIXES)]
     if len(label_files) > 1:
@@ -166,12 +182,14 @@ def run(args: argparse.Namespace) -> int:
             raise input_error(str(p), "file not found", f"give an existing TIFF stack to {option}")
     settings = _settings_digest(args, refs)
     all_inputs = [s for s, _ in targets] + [args.references] + ([args.dark] if args.dark else []) + (
-        [args.flat] if args.flat else []) + label_files
+        [args.flat] if args.flat else []) + label_files + ([args.calibration] if args.calibration else [])
 
     def _terminate(signum, frame):
         raise KeyboardInterrupt
 
     summary = []
+    calibration_notes: list[str] = []
+    calibration_flags: dict = {}
     if created is not None:
         out.mkdir(parents=True, exist_ok=True)
     previous = signal.signal(signal.SIGTERM, _terminate)
@@ -196,6 +214,16 @@ def run(args: argparse.Namespace) -> int:
                     scheduler=args.scheduler, extra_inputs=all_inputs, progress=bar.update,
                 )
             qc = result.qc
+            if calibration is not None:
+                from probeplan.cli.common import model_notes
+                from probeplan.study.calibration import calibrate_outputs
+
+                with model_notes() as cal_notes:
+                    cal = calibrate_outputs(result.outputs, calibration, depth_mm=args.depth_mm, rois=rect_rois,
+                                            background=args.roi_background)
+                result.outputs.update({k: v for k, v in cal.items() if k.startswith("uM")})
+                calibration_notes.extend(cal_notes)
+                calibration_flags[key] = cal["n_flagged"]
             manifest["entries"][key] = {
                 "input_sha256": _sha256(s), "settings_sha256": settings,
                 "outputs": {str(p): _sha256(p) for p in result.outputs.values()},
@@ -217,12 +245,21 @@ def run(args: argparse.Namespace) -> int:
     finally:
         signal.signal(signal.SIGTERM, previous)
     if args.json:
+        extra = {}
+        if calibration is not None:
+            extra = {"calibration": str(args.calibration), "unit": "uM", "pixels_by_flag": calibration_flags,
+                     "notes": list(dict.fromkeys(calibration_notes))}
         print_json({"caution": RESEARCH_USE_CAUTION, "method": args.method, "components": list(refs.component_names),
-                    "stacks": summary, "manifest": str(manifest_path)})
+                    "stacks": summary, "manifest": str(manifest_path), **extra})
     else:
         print_table(summary, ["stack", "status", "pixels", "constrained", "saturated", "nan", "residual_rms", "seconds"])
         for row in summary:
             if row["status"] == "done":
                 sys.stdout.write(f"{row['stack']}: {', '.join(str(p) for p in row['outputs'].values())}\n")
+        if calibration is not None:
+            sys.stdout.write("calibrated maps in uM (abundance files stay in counts); pixels by range flag: "
+                             + "; ".join(f"{k}: {v}" for k, v in calibration_flags.items()) + "\n")
+            for n in dict.fromkeys(calibration_notes):
+                sys.stdout.write(f"note: {n}\n")
         sys.stdout.write(RESEARCH_USE_CAUTION + "\n")
     return 0
