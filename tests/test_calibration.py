@@ -191,3 +191,20 @@ def test_unmix_with_calibration_writes_uM_maps(tmp_path, capsys):
     assert flags.dtype == np.uint8
     se, _ = read_stack(tmp_path / "res" / "a_uM_se.ome.tif")
     assert np.all(se[np.isfinite(se)] > 0)
+
+
+def test_unmix_refuses_a_bad_calibration_before_writing(tmp_path, capsys):
+    p, ref = _phantom_files(tmp_path, np.random.default_rng(4))
+    bad = tmp_path / "calibration.csv"
+    bad.write_text("component,slope_counts_per_uM\ndotA,3\n")
+    out = tmp_path / "res" / "a.ome.tif"
+    out.parent.mkdir()
+    stack = tmp_path / "plate_dotA.ome.tif"
+    assert main(["unmix", str(stack), "--references", str(ref), "--out", str(out), "--calibration", str(bad)]) == 2
+    err = capsys.readouterr().err
+    assert "calibration.csv" in err and "missing column" in err
+    assert list(out.parent.iterdir()) == []
+    other = tmp_path / "other.csv"
+    other.write_text(",".join(CALIBRATION_COLUMNS[:7]) + "\ndotQ,3,0,0.1,1,0.2,2\n")
+    assert main(["unmix", str(stack), "--references", str(ref), "--out", str(out), "--calibration", str(other)]) == 2
+    assert "none of the references' components" in capsys.readouterr().err

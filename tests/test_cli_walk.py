@@ -245,6 +245,11 @@ _NUMERIC = {
     "dots dose": (["dots", "dose", "--mass-g", "20", "--stock-uM", "10", "--dose-nmol-per-kg", "8"],
                   ["--mass-g", "--stock-uM", "--dose-nmol-per-kg"]),
     "app": (["app"], ["--port", "--max-upload-mb"]),
+    "calibrate": (["calibrate", str(DEMO / "phantom.csv"), "--references", str(DEMO / "references.csv"),
+                   "--depth-mm", "0"], ["--depth-mm", "--gain", "--read-noise"]),
+    "phantom": (["phantom", "--wavelength-nm", "700", "--mu-a", "0.3", "--mu-s-prime", "10", "--scatterer",
+                 "polystyrene", "--diameter-um", "1"], ["--wavelength-nm", "--mu-a", "--mu-s-prime", "--batch-ml",
+                                                        "--diameter-um"]),
 }
 
 
@@ -275,7 +280,7 @@ def test_numeric_options_nan_negative_text(tmp_path, capsys, monkeypatch, label,
     base, _ = _NUMERIC[label]
     argv = _with_option(base, option, value)
     out = tmp_path / "out.ome.tif"
-    if label == "unmix":
+    if label in ("unmix", "calibrate", "phantom"):
         argv += ["--out", out]
     code, _, err = _run(argv, capsys)
     _assert_refused(code, err, option, option.lstrip("-").replace("-", "_"), "probeplan")
@@ -306,5 +311,6 @@ def test_real_process_usage_error(tmp_path):
 
 
 def test_every_command_is_walked():
-    walked = {"depth", "channels", "design", "unmix", "plan", "check", "library", "demo", "app", "dots", "study"}
+    walked = {"depth", "channels", "design", "unmix", "plan", "check", "library", "demo", "app", "dots", "study",
+              "calibrate", "phantom"}
     assert set(COMMANDS) <= walked, f"new subcommands to add to the walk: {set(COMMANDS) - walked}"

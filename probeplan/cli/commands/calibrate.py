@@ -33,6 +33,11 @@ def run(args: argparse.Namespace) -> int:
     from probeplan.study.calibration import calibrate_phantom, plot_calibration
     from probeplan.unmixing.references import read_references_csv
 
+    from probeplan.errors import positive_number
+
+    positive_number("--depth-mm", args.depth_mm, allow_zero=True)
+    positive_number("--gain", args.gain)
+    positive_number("--read-noise", args.read_noise, allow_zero=True)
     out = Path(args.out)
     if out.exists() and not out.is_dir():
         raise input_error("--out", f"{str(out)!r} is a file", "give a folder for the calibration outputs")

@@ -53,6 +53,15 @@ def run(args: argparse.Namespace) -> int:
     from probeplan.io.atomic import refuse_input_paths, write_bytes_atomic, write_csv_atomic
     from probeplan.study.phantom import PHANTOM_CAUTION
 
+    from probeplan.errors import positive_number
+
+    positive_number("--batch-ml", args.batch_ml)
+    if args.diameter_um is not None:
+        positive_number("--diameter-um", args.diameter_um)
+    for option, values in (("--wavelength-nm", args.wavelength_nm), ("--mu-a", args.mu_a),
+                           ("--mu-s-prime", args.mu_s_prime)):
+        for v in values or ():
+            positive_number(option, v)
     absorber = _absorber(args.absorber)
     explicit = [args.wavelength_nm, args.mu_a, args.mu_s_prime]
     curve = []
