@@ -17,6 +17,8 @@ __all__ = [
     "ProbeplanWarning",
     "ModelValidityWarning",
     "AssumptionWarning",
+    "ScatteringRangeWarning",
+    "ProbeAbsorptionWarning",
     "input_error",
     "positive_number",
 ]
@@ -39,6 +41,14 @@ class ModelValidityWarning(ProbeplanWarning):
 
 class AssumptionWarning(ProbeplanWarning):
     """A result rests on a stated approximation (e.g. an extrapolated table)."""
+
+
+class ScatteringRangeWarning(ModelValidityWarning):
+    """A tissue's scattering law is used outside the wavelength range its source measured."""
+
+
+class ProbeAbsorptionWarning(AssumptionWarning):
+    """The probe's own absorption raises the tissue's absorption noticeably (more than 10 %)."""
 
 
 def input_error(where: str, problem: str, fix: str) -> InputError:

@@ -8,7 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from probeplan.model import tissue
-from probeplan.errors import AssumptionWarning, InputError
+from probeplan.errors import InputError
 from probeplan.model.spectra import Spectrum
 
 # Prahl's haemoglobin compilation (Gratzer, Kollias), values quoted in REFERENCES.md.
@@ -109,8 +109,10 @@ def test_absorption_composition_sum():
     # Jacques 2013 eq. 12 assembled by hand for the dermis composition (Table 3).
     t = tissue.tissue_preset("skin")
     wl = np.array([650.0, 800.0])
-    expected = (0.002 * (0.39 * tissue.absorption("HbO2", wl) + 0.61 * tissue.absorption("Hb", wl))
-                + 0.65 * tissue.absorption("water", wl))
+    # Blood brings its own water (BLOOD_WATER_FRACTION of the water table) besides its haemoglobin.
+    blood = (0.39 * tissue.absorption("HbO2", wl) + 0.61 * tissue.absorption("Hb", wl)
+             + tissue.BLOOD_WATER_FRACTION * tissue.absorption("water", wl))
+    expected = 0.002 * blood + 0.65 * tissue.absorption("water", wl)
     np.testing.assert_allclose(tissue.optical_properties(t, wl)[0], expected, rtol=1e-12)
 
 
@@ -128,14 +130,12 @@ def test_limiting_case_no_chromophores_no_absorption():
     assert np.all(t.mu_a_per_cm([600.0, 900.0]) == 0.0)
 
 
-def test_haemoglobin_beyond_1000nm_is_a_stated_approximation():
-    with pytest.warns(AssumptionWarning, match="held at its 1000 nm value"):
-        v = tissue.molar_extinction("HbO2", 1300.0)
-    assert float(v) == 1024.0
-    with pytest.raises(InputError, match="beyond 2000 nm"):
-        tissue.molar_extinction("Hb", 2100.0)
-    with pytest.raises(InputError, match="250-2000"):
-        tissue.molar_extinction("Hb", 2100.0)
+def test_haemoglobin_alone_is_refused_beyond_its_table():
+    # Prahl's table ends at 1000 nm: nothing is held constant beyond it; whole blood is "blood".
+    with pytest.raises(InputError, match=r"beyond the haemoglobin table's end at 1000 nm.*absorption\(.blood."):
+        tissue.molar_extinction("HbO2", 1300.0)
+    with pytest.raises(InputError, match="1000 nm"):
+        tissue.absorption("Hb", 1300.0)
 
 
 def test_out_of_range_errors_name_the_range():
@@ -150,7 +150,6 @@ def test_out_of_range_errors_name_the_range():
     [
         ({"blood_fraction": 2.0}, "a fraction must lie in 0-1"),
         ({"water_fraction": 0.9, "blood_fraction": 0.2}, "exceed 1"),
-        ({"fat_fraction": 0.2}, "no fat absorption table"),
         ({"a_per_cm": -1.0}, "need a > 0"),
         ({"refractive_index": 3.0}, "refractive_index"),
         ({"saturation": float("nan")}, "finite"),

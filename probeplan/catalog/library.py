@@ -14,7 +14,7 @@ Users add their own items in a folder, by default
     tissues/NAME.toml      one tissue: the keys of a shipped preset (blood_fraction, saturation,
                            water_fraction, a_per_cm, b, refractive_index, ... and a `source` line)
     spectra/emission/*.csv probe emission spectra (one column per probe)
-    spectra/absorption/*.csv absorption spectra in cm^-1 (e.g. `fat`, enabling fat_fraction > 0)
+    spectra/absorption/*.csv absorption spectra in cm^-1 (e.g. `fat`, replacing the shipped fat table)
     filters/*.csv          filter transmission curves (fraction 0-1, one column per filter)
     cameras/NAME.toml      a camera (see probeplan.model.optics)
 

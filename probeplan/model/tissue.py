@@ -15,14 +15,23 @@ Rayleigh + Mie form μs′ = a′·[f_Ray·(λ/500)^−4 + (1−f_Ray)·(λ/500)
 
 Choices where the published tables stop
 ---------------------------------------
-* Haemoglobin beyond 1000 nm: the shipped table ends at 1000 nm.  Between 1000
-  and 2000 nm its extinction is **held at the 1000 nm value**, with an
-  :class:`~probeplan.errors.AssumptionWarning`.  Haemoglobin absorption falls
-  beyond 1000 nm, so this overestimates μa (a conservative choice for
-  planning); in the 1000–1700 nm window water dominates tissue absorption.
-* Fat: no verified fat absorption table is shipped.  A composition with a fat
-  fraction above zero is refused unless the user supplies a fat absorption
-  spectrum (``fat_absorption=``, a :class:`~probeplan.model.spectra.Spectrum`, cm⁻¹).
+* Whole blood (``"blood"``, and the blood term of every tissue) includes
+  blood's own water.  Below 1000 nm: haemoglobin at 150 g/L from Prahl's
+  table (ln(10)·ε·c) plus water at :data:`BLOOD_WATER_FRACTION` of the
+  shipped water table.  From 1000 nm to 1800 nm: the compiled whole-blood
+  spectra of Bosschaart et al. 2014 (haematocrit 45 %, water included),
+  oxygenated and deoxygenated, mixed linearly by saturation.  The two meet at
+  1000 nm with a step (shown in ``docs/tissue_optics_beyond_1000nm.md``);
+  beyond 1800 nm blood is refused.  Haemoglobin alone (``"HbO2"``, ``"Hb"``,
+  :func:`molar_extinction`) stops at 1000 nm, where its table ends: asked
+  beyond, it is refused (whole blood beyond 1000 nm is ``"blood"``).
+* The water fraction W of a tissue is the water outside its blood: the blood
+  fraction B brings its own water.
+* Fat: mammalian fat of van Veen et al. 2005, 429–1098 nm.  No published fat
+  table covering 1098–1700 nm could be found and confirmed, so a tissue with a
+  fat fraction above zero is refused outside 429–1098 nm unless the user
+  supplies a fat absorption spectrum (``fat_absorption=``, cm⁻¹) that covers
+  the wavelengths asked.
 * Melanosome: μa = 519·(λ/500 nm)^−3 cm⁻¹ (Jacques 2013), used 350–1300 nm.
 """
 
@@ -39,7 +48,7 @@ from typing import Any
 
 import numpy as np
 
-from probeplan.errors import AssumptionWarning, input_error
+from probeplan.errors import ScatteringRangeWarning, input_error
 from probeplan.model.spectra import Spectrum, as_wavelengths_nm
 
 __all__ = [
@@ -55,6 +64,9 @@ __all__ = [
     "HEMOGLOBIN_G_PER_MOL",
     "SCATTERING_REFERENCE_NM",
     "SCATTERING_MODELS",
+    "SCATTERING_EXTRAPOLATION_RULE",
+    "MU_S_PRIME_FLOOR_PER_CM",
+    "BLOOD_WATER_FRACTION",
 ]
 
 #: Haemoglobin concentration of whole blood (g/L), Prahl's conversion.
@@ -65,10 +77,15 @@ HEMOGLOBIN_G_PER_MOL = 64500.0
 SCATTERING_REFERENCE_NM = 500.0
 #: Natural log of 10: converts decadic extinction to a natural absorption coefficient.
 LN10 = math.log(10.0)
-#: Last wavelength of the haemoglobin table (nm); beyond it extinction is held (see module notes).
+#: Last wavelength of the haemoglobin table (nm); whole blood beyond it comes from the whole-blood table.
 _HB_TABLE_END_NM = 1000.0
-#: Furthest wavelength to which the held haemoglobin value is used (nm).
-_HB_HOLD_LIMIT_NM = 2000.0
+#: Water volume fraction of whole blood, added to haemoglobin below 1000 nm (about 80 %: common
+#: practice, plasma is about 92 % water and red cells about 65-70 %; from memory, not a measured table).
+BLOOD_WATER_FRACTION = 0.80
+#: Millimetres per centimetre (the whole-blood table is published in mm^-1).
+_MM_PER_CM = 10.0
+#: Centimetres per metre (the fat table is published in 1/m).
+_CM_PER_M = 100.0
 #: Range over which the melanosome formula is used (nm).
 _MELANOSOME_RANGE_NM = (350.0, 1300.0)
 
@@ -77,6 +94,11 @@ _CITE_HB = (
 )
 _CITE_WATER = "D. J. Segelstein, M.S. thesis, University of Missouri-Kansas City (1981), tabulated by S. Prahl"
 _CITE_MEL = "S. L. Jacques, Phys. Med. Biol. 58, R37 (2013), doi:10.1088/0031-9155/58/11/R37"
+_CITE_BLOOD = (
+    "below 1000 nm: Prahl's haemoglobin table + water at the blood's water fraction; 1000-1800 nm: "
+    "N. Bosschaart et al., Lasers Med. Sci. 29, 453 (2014), doi:10.1007/s10103-013-1446-7, appendix"
+)
+_CITE_FAT = "R. L. P. van Veen et al., J. Biomed. Opt. 10, 054004 (2005), as tabulated by S. Prahl (429-1098 nm)"
 
 
 # --------------------------------------------------------------------------- shipped tables
@@ -119,7 +141,14 @@ def load_table(filename: str) -> tuple[tuple[str, ...], np.ndarray, str]:
 def _chromophore_spectra() -> dict[str, Spectrum]:
     hb_cols, hb, hb_prov = _read_tsv("hemoglobin_molar_extinction.tsv")
     w_cols, water, w_prov = _read_tsv("water_absorption.tsv")
+    b_cols, blood, b_prov = _read_tsv("blood_absorption.tsv")
+    f_cols, fat, f_prov = _read_tsv("fat_absorption.tsv")
     return {
+        "blood_oxy": Spectrum(blood[:, 0], blood[:, b_cols.index("mu_a_oxy_per_mm")] * _MM_PER_CM,
+                              "whole blood, oxygenated", "cm^-1", "material", b_prov),
+        "blood_deoxy": Spectrum(blood[:, 0], blood[:, b_cols.index("mu_a_deoxy_per_mm")] * _MM_PER_CM,
+                                "whole blood, deoxygenated", "cm^-1", "material", b_prov),
+        "fat": Spectrum(fat[:, 0], fat[:, f_cols.index("mu_a_per_m")] / _CM_PER_M, "fat", "cm^-1", "material", f_prov),
         "HbO2": Spectrum(hb[:, 0], hb[:, hb_cols.index("HbO2")], "HbO2", "cm^-1 M^-1", "material", hb_prov),
         "Hb": Spectrum(hb[:, 0], hb[:, hb_cols.index("Hb")], "Hb", "cm^-1 M^-1", "material", hb_prov),
         "water": Spectrum(water[:, 0], water[:, 1], "water", "cm^-1", "material", w_prov),
@@ -130,6 +159,9 @@ _CHROMOPHORES = {
     "HbO2": ("oxyhaemoglobin, whole blood at 150 g/L (cm^-1); molar extinction via molar_extinction()", _CITE_HB),
     "Hb": ("deoxyhaemoglobin, whole blood at 150 g/L (cm^-1); molar extinction via molar_extinction()", _CITE_HB),
     "water": ("pure liquid water (cm^-1), 200-2000 nm", _CITE_WATER),
+    "blood": ("whole blood at 45 % haematocrit incl. its water (cm^-1), 250-1800 nm; keyword saturation=",
+              _CITE_BLOOD),
+    "fat": ("mammalian fat (cm^-1), 429-1098 nm; refused beyond (no published table shipped)", _CITE_FAT),
     "melanosome": ("melanosome interior, 519 (lambda/500 nm)^-3 cm^-1, 350-1300 nm", _CITE_MEL),
 }
 
@@ -153,7 +185,7 @@ def molar_extinction(chromophore: str, wavelength_nm) -> np.ndarray:
     chromophore : {"HbO2", "Hb"}
         Oxy- or deoxyhaemoglobin.
     wavelength_nm : array_like
-        Wavelengths (nm), any shape; 250–2000 nm.
+        Wavelengths (nm), any shape; 250–1000 nm.
 
     Returns
     -------
@@ -163,12 +195,8 @@ def molar_extinction(chromophore: str, wavelength_nm) -> np.ndarray:
     Raises
     ------
     InputError
-        Unknown chromophore, or a wavelength below 250 nm or above 2000 nm.
-
-    Warns
-    -----
-    AssumptionWarning
-        Beyond 1000 nm, where the value is held at the 1000 nm figure.
+        Unknown chromophore, or a wavelength outside 250–1000 nm (the table's
+        range; whole blood beyond 1000 nm is ``absorption("blood", ...)``).
 
     References
     ----------
@@ -183,35 +211,60 @@ def molar_extinction(chromophore: str, wavelength_nm) -> np.ndarray:
     if chromophore not in ("HbO2", "Hb"):
         raise input_error("chromophore", f"got {chromophore!r}", _did_you_mean(chromophore, ("HbO2", "Hb")))
     wl = as_wavelengths_nm(wavelength_nm)
-    spec = _chromophore_spectra()[chromophore]
-    if np.any(wl > _HB_HOLD_LIMIT_NM):
+    if np.any(wl > _HB_TABLE_END_NM):
         raise input_error(
-            "wavelength_nm",
-            f"{wl.max():g} nm is beyond {_HB_HOLD_LIMIT_NM:g} nm",
-            f"haemoglobin is covered for {spec.range_nm[0]:g}-{_HB_HOLD_LIMIT_NM:g} nm",
+            f"{chromophore} wavelength_nm",
+            f"{wl.max():g} nm is beyond the haemoglobin table's end at {_HB_TABLE_END_NM:g} nm",
+            'for whole blood (with its water) to 1800 nm use absorption("blood", wavelength_nm, saturation=...)',
         )
-    beyond = wl > _HB_TABLE_END_NM
-    if np.any(beyond):
-        warnings.warn(
-            f"haemoglobin extinction beyond {_HB_TABLE_END_NM:g} nm is held at its {_HB_TABLE_END_NM:g} nm value "
-            "(the table ends there; this overestimates blood absorption, a conservative approximation)",
-            AssumptionWarning,
-            stacklevel=2,
-        )
-    return spec.values_at(np.minimum(wl, _HB_TABLE_END_NM))
+    return _chromophore_spectra()[chromophore].values_at(wl)
 
 
-def absorption(chromophore: str, wavelength_nm) -> np.ndarray:
-    """Absorption coefficient of a pure chromophore (natural log), cm⁻¹.
+def _blood_per_cm(wl: np.ndarray, saturation: float) -> np.ndarray:
+    """Whole blood at 45 % haematocrit with its water (cm⁻¹); see the module notes for the sources."""
+    spectra = _chromophore_spectra()
+    lo = spectra["HbO2"].range_nm[0]
+    hi = spectra["blood_oxy"].range_nm[1]
+    if np.any((wl < lo) | (wl > hi)):
+        bad = wl[(wl < lo) | (wl > hi)].flat[0]
+        raise input_error(
+            "blood wavelength_nm",
+            f"asked at {bad:g} nm; whole-blood absorption is shipped for {lo:g}-{hi:g} nm",
+            "stay inside that range",
+        )
+    out = np.empty_like(wl)
+    low = wl < _HB_TABLE_END_NM
+    if np.any(low):
+        w = wl[low]
+        hb = saturation * spectra["HbO2"].values_at(w) + (1.0 - saturation) * spectra["Hb"].values_at(w)
+        out[low] = (LN10 * hb * HEMOGLOBIN_G_PER_L / HEMOGLOBIN_G_PER_MOL
+                    + BLOOD_WATER_FRACTION * spectra["water"].values_at(w))
+    if np.any(~low):
+        w = wl[~low]
+        out[~low] = (saturation * spectra["blood_oxy"].values_at(w)
+                     + (1.0 - saturation) * spectra["blood_deoxy"].values_at(w))
+    return out
+
+
+def absorption(chromophore: str, wavelength_nm, *, saturation: float = 1.0) -> np.ndarray:
+    """Absorption coefficient of a chromophore (natural log), cm⁻¹.
 
     Parameters
     ----------
-    chromophore : {"water", "melanosome", "HbO2", "Hb"}
+    chromophore : {"blood", "water", "fat", "melanosome", "HbO2", "Hb"}
+        ``"blood"``: whole blood at 45 % haematocrit including its water,
+        250–1800 nm (module notes: Prahl + water below 1000 nm, Bosschaart
+        et al. 2014 from 1000 nm).
         ``"water"``: pure water (Segelstein 1981), 200–2000 nm.
+        ``"fat"``: mammalian fat (van Veen et al. 2005), 429–1098 nm; refused
+        outside (no published table beyond 1098 nm is shipped).
         ``"melanosome"``: 519·(λ/500)^−3 (Jacques 2013), 350–1300 nm.
-        ``"HbO2"``, ``"Hb"``: whole blood at 150 g/L, ln(10)·ε·150/64 500.
+        ``"HbO2"``, ``"Hb"``: haemoglobin alone at 150 g/L, ln(10)·ε·150/64 500,
+        250–1000 nm.
     wavelength_nm : array_like
         Wavelengths (nm), any shape.
+    saturation : float
+        Oxygen saturation of ``"blood"`` in [0, 1] (ignored by the others).
 
     Returns
     -------
@@ -221,7 +274,7 @@ def absorption(chromophore: str, wavelength_nm) -> np.ndarray:
     Raises
     ------
     InputError
-        Unknown chromophore or a wavelength outside its table.
+        Unknown chromophore, a wavelength outside its table, or a saturation outside [0, 1].
 
     Examples
     --------
@@ -229,11 +282,20 @@ def absorption(chromophore: str, wavelength_nm) -> np.ndarray:
     0.01964
     >>> round(float(absorption("melanosome", 500.0)), 1)
     519.0
+    >>> round(float(absorption("blood", 1300.0, saturation=1.0)), 2)
+    1.9
     """
     if chromophore in ("HbO2", "Hb"):
         return LN10 * molar_extinction(chromophore, wavelength_nm) * HEMOGLOBIN_G_PER_L / HEMOGLOBIN_G_PER_MOL
+    if chromophore == "blood":
+        s = float(saturation)
+        if not 0.0 <= s <= 1.0:
+            raise input_error("saturation", f"got {saturation!r}", "give a fraction in 0-1 (e.g. 0.75)")
+        return _blood_per_cm(as_wavelengths_nm(wavelength_nm), s)
     if chromophore == "water":
         return _chromophore_spectra()["water"].values_at(wavelength_nm)
+    if chromophore == "fat":
+        return _fat_per_cm(as_wavelengths_nm(wavelength_nm), None, "fat")
     if chromophore == "melanosome":
         wl = as_wavelengths_nm(wavelength_nm)
         lo, hi = _MELANOSOME_RANGE_NM
@@ -241,6 +303,23 @@ def absorption(chromophore: str, wavelength_nm) -> np.ndarray:
             raise input_error("wavelength_nm", f"melanosome formula asked outside {lo:g}-{hi:g} nm", "stay in that range")
         return 519.0 * (wl / SCATTERING_REFERENCE_NM) ** -3.0
     raise input_error("chromophore", f"got {chromophore!r}", _did_you_mean(chromophore, _CHROMOPHORES))
+
+
+def _fat_per_cm(wl: np.ndarray, user: Spectrum | None, where: str) -> np.ndarray:
+    """Fat absorption (cm⁻¹): the user's spectrum when given, else van Veen et al. 2005 (429–1098 nm)."""
+    spec = user if user is not None else _chromophore_spectra()["fat"]
+    lo, hi = spec.range_nm
+    outside = (wl < lo) | (wl > hi)
+    if np.any(outside):
+        bad = wl[outside].flat[0]
+        if user is not None:
+            fix = "supply a fat spectrum that covers it, or set fat_fraction = 0"
+        else:
+            fix = ("the shipped fat table (van Veen et al. 2005) covers 429-1098 nm and no published fat table "
+                   "beyond is shipped: stay inside it, set fat_fraction = 0, or supply a fat absorption spectrum "
+                   "(column 'fat', cm^-1) in your library folder's spectra/absorption/")
+        raise input_error(where, f"fat absorption asked at {bad:g} nm, outside {lo:g}-{hi:g} nm", fix)
+    return spec.values_at(wl)
 
 
 # --------------------------------------------------------------------------- tissues
@@ -266,6 +345,18 @@ def _rayleigh_mie(wl: np.ndarray, t: Tissue) -> np.ndarray:
 #: Scattering models by name (``scattering_model=``).
 SCATTERING_MODELS = {"power": _power_law, "rayleigh_mie": _rayleigh_mie}
 
+#: The stated rule for μs′ outside the wavelength range its source measured.
+SCATTERING_EXTRAPOLATION_RULE = (
+    "beyond the long end of the measured range, mu_s' continues from its value there as "
+    "(lambda/lambda_end)^-b_Mie, b_Mie the Mie exponent of the tissue's class (Jacques 2013, eq. 2 and "
+    "Table 2: the Rayleigh term falls as lambda^-4, so at long wavelengths the Mie term sets the slope); "
+    "below the short end the tissue's own law continues"
+)
+#: Lowest μs′ (cm⁻¹) a tissue preset may give anywhere in 400-1700 nm: a transport mean free path of
+#: 2 cm, the thickness of a mouse; below it a mouse would be nearly transparent, which no tissue is
+#: (common practice: tissues are turbid throughout the visible to NIR-II).
+MU_S_PRIME_FLOOR_PER_CM = 0.5
+
 _FRACTIONS = ("blood_fraction", "saturation", "water_fraction", "fat_fraction", "melanin_fraction")
 
 
@@ -279,18 +370,25 @@ class Tissue:
         A label.
     blood_fraction, saturation, water_fraction, fat_fraction, melanin_fraction : float
         Volume fractions B, W, F, M and oxygen saturation S, each in [0, 1].
+        B is whole blood with its own water; W is the water outside the blood.
     a_per_cm, b : float
         Power-law scattering μs′ = a·(λ/500)^−b (cm⁻¹ at 500 nm, dimensionless).
     a_prime_per_cm, f_ray, b_mie : float, optional
         Rayleigh + Mie scattering parameters (Jacques 2013), when known.
     refractive_index : float
         Refractive index of the tissue (1.4, common practice).
+    scattering_range_nm : (float, float), optional
+        Wavelength range (nm) over which the scattering source measured; outside
+        it :data:`SCATTERING_EXTRAPOLATION_RULE` applies, with a warning.
+    extrapolation_b : float, optional
+        Mie exponent used beyond the range's long end (default ``b_mie``, else ``b``).
     description : str
         What the preset stands for.
     sources : mapping
         Source of the scattering and of the composition values.
     fat_absorption : Spectrum, optional
-        Fat absorption (cm⁻¹), required when ``fat_fraction > 0``.
+        Fat absorption (cm⁻¹) used instead of the shipped table (van Veen et al.
+        2005, 429–1098 nm) when ``fat_fraction > 0``.
     """
 
     name: str
@@ -305,6 +403,8 @@ class Tissue:
     f_ray: float | None = None
     b_mie: float | None = None
     refractive_index: float = 1.4
+    scattering_range_nm: tuple[float, float] | None = None
+    extrapolation_b: float | None = None
     description: str = ""
     sources: Mapping[str, str] = field(default_factory=dict, hash=False, compare=False)
     fat_absorption: Spectrum | None = field(default=None, hash=False, compare=False)
@@ -330,6 +430,17 @@ class Tissue:
                 "blood + water + fat + melanin fractions exceed 1",
                 "reduce the volume fractions so they sum to at most 1",
             )
+        if self.scattering_range_nm is not None:
+            rng = tuple(float(v) for v in self.scattering_range_nm)
+            if len(rng) != 2 or not all(math.isfinite(v) for v in rng) or not 0 < rng[0] < rng[1]:
+                raise input_error(
+                    f"tissue {self.name!r}: scattering_range_nm",
+                    f"got {self.scattering_range_nm!r}",
+                    "give [shortest, longest] wavelength (nm) the scattering source measured",
+                )
+            object.__setattr__(self, "scattering_range_nm", rng)
+        if self.extrapolation_b is not None and not (math.isfinite(self.extrapolation_b) and self.extrapolation_b >= 0):
+            raise input_error(f"tissue {self.name!r}: extrapolation_b", f"got {self.extrapolation_b!r}", "give b >= 0")
         if self.a_per_cm <= 0 or self.b < 0:
             raise input_error(
                 f"tissue {self.name!r}: a_per_cm/b", f"got a={self.a_per_cm:g}, b={self.b:g}", "need a > 0 and b >= 0"
@@ -337,12 +448,6 @@ class Tissue:
         if not 1.0 <= self.refractive_index <= 2.0:
             raise input_error(
                 f"tissue {self.name!r}: refractive_index", f"got {self.refractive_index:g}", "tissue is about 1.33-1.5"
-            )
-        if self.fat_fraction > 0 and self.fat_absorption is None:
-            raise input_error(
-                f"tissue {self.name!r}: fat_fraction",
-                f"is {self.fat_fraction:g} but no fat absorption table is shipped",
-                "set fat_fraction = 0, or supply fat_absorption (a cm^-1 spectrum, e.g. from your library folder)",
             )
 
     def with_composition(self, **changes: Any) -> Tissue:
@@ -358,18 +463,23 @@ class Tissue:
         wl = as_wavelengths_nm(wavelength_nm)
         mu_a = np.zeros_like(wl)
         if self.blood_fraction > 0:
-            blood = self.saturation * absorption("HbO2", wl) + (1.0 - self.saturation) * absorption("Hb", wl)
-            mu_a = mu_a + self.blood_fraction * blood
+            mu_a = mu_a + self.blood_fraction * _blood_per_cm(wl, float(self.saturation))
         if self.water_fraction > 0:
             mu_a = mu_a + self.water_fraction * absorption("water", wl)
-        if self.fat_fraction > 0 and self.fat_absorption is not None:
-            mu_a = mu_a + self.fat_fraction * self.fat_absorption.values_at(wl)
+        if self.fat_fraction > 0:
+            mu_a = mu_a + self.fat_fraction * _fat_per_cm(wl, self.fat_absorption, f"tissue {self.name!r}: fat_fraction")
         if self.melanin_fraction > 0:
             mu_a = mu_a + self.melanin_fraction * absorption("melanosome", wl)
         return mu_a
 
-    def mu_s_prime_per_cm(self, wavelength_nm, *, scattering_model: str = "power") -> np.ndarray:
-        """Reduced scattering coefficient μs′(λ), cm⁻¹, by ``scattering_model`` (see SCATTERING_MODELS)."""
+    def mu_s_prime_per_cm(self, wavelength_nm, *, scattering_model: str = "power", warn: bool = True) -> np.ndarray:
+        """Reduced scattering coefficient μs′(λ), cm⁻¹, by ``scattering_model`` (see SCATTERING_MODELS).
+
+        Inside :attr:`scattering_range_nm` (the range the source measured) the law
+        itself; outside it :data:`SCATTERING_EXTRAPOLATION_RULE`, with a
+        :class:`~probeplan.errors.ScatteringRangeWarning` when ``warn``.  A tissue
+        without a stated range is used as given (no check possible).
+        """
         wl = as_wavelengths_nm(wavelength_nm)
         try:
             model = SCATTERING_MODELS[scattering_model]
@@ -377,7 +487,37 @@ class Tissue:
             raise input_error(
                 "scattering_model", f"got {scattering_model!r}", _did_you_mean(scattering_model, SCATTERING_MODELS)
             ) from None
-        return model(wl, self)
+        mu_sp = model(wl, self)
+        outside = self.scattering_outside(wl)
+        if outside is None:
+            return mu_sp
+        lo, hi = self.scattering_range_nm  # type: ignore[misc]
+        above = wl > hi
+        if np.any(above):
+            edge = model(np.array(hi), self)
+            mu_sp = np.where(above, edge * (wl / hi) ** (-self.long_wavelength_b()), mu_sp)
+        if warn:
+            warnings.warn(outside, ScatteringRangeWarning, stacklevel=2)
+        return mu_sp
+
+    def long_wavelength_b(self) -> float:
+        """Exponent used beyond the measured range: ``extrapolation_b``, else ``b_mie``, else ``b``."""
+        for value in (self.extrapolation_b, self.b_mie, self.b):
+            if value is not None:
+                return float(value)
+        return float(self.b)
+
+    def scattering_outside(self, wavelength_nm) -> str | None:
+        """A one-line note when some wavelengths lie outside the scattering source's range, else None."""
+        if self.scattering_range_nm is None:
+            return None
+        wl = as_wavelengths_nm(wavelength_nm)
+        lo, hi = self.scattering_range_nm
+        if not np.any((wl < lo) | (wl > hi)):
+            return None
+        return (f"tissue {self.name!r}: mu_s' asked at {float(wl.min()):g}-{float(wl.max()):g} nm, outside the "
+                f"{lo:g}-{hi:g} nm its source measured; {SCATTERING_EXTRAPOLATION_RULE} "
+                f"(b_Mie = {self.long_wavelength_b():g})")
 
 
 @functools.cache
@@ -394,7 +534,10 @@ def preset_names() -> list[str]:
 def _tissue_from_mapping(name: str, entry: Mapping[str, Any]) -> Tissue:
     keys = {f.name for f in fields(Tissue)} - {"name", "sources", "fat_absorption", "description"}
     kwargs = {k: entry[k] for k in keys if k in entry}
-    sources = {k: str(entry[k]) for k in ("scattering_source", "composition_source") if k in entry}
+    sources = {k: str(entry[k]) for k in ("scattering_source", "composition_source", "scattering_range_source")
+               if k in entry}
+    if "scattering_range_nm" in kwargs:
+        kwargs["scattering_range_nm"] = tuple(kwargs["scattering_range_nm"])
     return Tissue(name=name, description=str(entry.get("description", "")), sources=sources, **kwargs)
 
 
@@ -443,6 +586,12 @@ def optical_properties(
     mu_a_per_cm, mu_s_prime_per_cm : ndarray
         Arrays of the shape of ``wavelength_nm``, cm⁻¹.
 
+    Warns
+    -----
+    ScatteringRangeWarning
+        Some wavelengths lie outside the range the tissue's scattering source
+        measured; :data:`SCATTERING_EXTRAPOLATION_RULE` is applied there.
+
     References
     ----------
     S. L. Jacques, "Optical properties of biological tissues: a review",
@@ -458,4 +607,9 @@ def optical_properties(
         tissue = tissue_preset(tissue)
     elif not isinstance(tissue, Tissue):
         raise TypeError(f"tissue: expected a preset name or a Tissue, got {type(tissue).__name__}")
-    return tissue.mu_a_per_cm(wavelength_nm), tissue.mu_s_prime_per_cm(wavelength_nm, scattering_model=scattering_model)
+    mu_a = tissue.mu_a_per_cm(wavelength_nm)
+    mu_sp = tissue.mu_s_prime_per_cm(wavelength_nm, scattering_model=scattering_model, warn=False)
+    note = tissue.scattering_outside(wavelength_nm)
+    if note is not None:
+        warnings.warn(note, ScatteringRangeWarning, stacklevel=2)
+    return mu_a, mu_sp
