@@ -96,7 +96,9 @@ def test_sliced_sphere_tends_to_a_point_source_for_a_small_deep_target(setup):
 
     tissue = tissue_preset("soft tissue")
     size, depth, conc = 0.2, 6.0, 1.0
-    p = _profile(setup, depth_mm=[depth], target_size_mm=size, concentration_uM=conc, uptake_ratio=1e9)
+    # The probe's own absorption is switched off: this checks the geometry against the point source.
+    p = _profile(setup, depth_mm=[depth], target_size_mm=size, concentration_uM=conc, uptake_ratio=1e9,
+                 probe_absorption=False)
     wl = p.wavelength_nm
     fluence = _excitation_fluence_photons(tissue, setup["source"], 10.0, np.array([depth]))[0]
     eps = float(setup["probe"].molar_extinction_per_M_cm(640.0))
@@ -128,9 +130,14 @@ def test_depth_at_threshold_interpolates(setup):
 
 
 def test_background_scales_with_uptake_ratio_and_autofluorescence_switch(setup):
-    base = _profile(setup, uptake_ratio=5.0)
-    half = _profile(setup, uptake_ratio=10.0)
+    # Without the probe's own absorption the uptake background is linear in the background concentration.
+    base = _profile(setup, uptake_ratio=5.0, probe_absorption=False)
+    half = _profile(setup, uptake_ratio=10.0, probe_absorption=False)
     assert half.uptake_background_e == pytest.approx(base.uptake_background_e / 2, rel=1e-9)
+    # With it, the probe also shades itself: doubling the uptake less than doubles the background.
+    base_abs = _profile(setup, uptake_ratio=5.0)
+    half_abs = _profile(setup, uptake_ratio=10.0)
+    assert half_abs.uptake_background_e > base_abs.uptake_background_e / 2
     off = _profile(setup, autofluorescence=Autofluorescence(0.0))
     assert off.autofluorescence_e == 0.0 and base.autofluorescence_e > 0
 

@@ -529,7 +529,8 @@ def design(
                 rates = background_rates(
                     tissue, [probes[pi] for pi in excited], source=src, irradiance_mw_per_cm2=irr[si],
                     emission_filter=filt, camera=filter_cams[fi], lens=lens,
-                    background_concentration_uM=[conc / tbr] * len(excited), autofluorescence=autofluorescence)
+                    background_concentration_uM=[conc / tbr] * len(excited), autofluorescence=autofluorescence,
+                    probe_absorption=False)  # linear in the probes, as the channel model (see its notes)
                 back[si, fi] = rates["autofluorescence"] + rates["leakage"] + rates["dark"]
                 upt[si, excited, fi] = rates["uptake"]
                 for pi in excited:

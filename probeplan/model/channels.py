@@ -17,6 +17,12 @@ per µM of probe in a target inclusion at the given depth (through
   per-channel noise variance per second at the operating point (Poisson signal
   and background, dark current, read noise spread over the exposure).
 
+The channel model is linear in the probes (responses per µM add): the probes'
+own absorption, which :func:`probeplan.model.fluorescence.depth_profile`
+adds to the tissue, is left out here, and :func:`channel_report` notes when
+the probes' background uptake raises the tissue's absorption by more than
+10 % at a channel's excitation, where that shortcut stops being small.
+
 References
 ----------
 R. Neher, E. Neher, "Optimizing imaging parameters for the separation of
@@ -33,7 +39,13 @@ from typing import Any
 import numpy as np
 
 from probeplan.errors import input_error
-from probeplan.model.fluorescence import Autofluorescence, background_rates, probe_rate_e_per_s
+from probeplan.model.fluorescence import (
+    PROBE_ABSORPTION_WARN_FRACTION,
+    Autofluorescence,
+    background_rates,
+    probe_mu_a_per_cm,
+    probe_rate_e_per_s,
+)
 from probeplan.model.tissue import Tissue, tissue_preset
 
 __all__ = [
@@ -165,6 +177,17 @@ def unmixed_snr(response, noise_var, abundance=1.0) -> np.ndarray:
     if np.any(~np.isfinite(a)) or np.any(a < 0):
         raise input_error("abundance", f"got {abundance!r}", "give finite abundances >= 0")
     return a / np.sqrt(_unmixed_variance(m, var))
+
+
+def _probe_absorption_rise(tissue: Tissue, probes, channels, background_uM: float) -> float:
+    """Largest fractional rise of the tissue's μa from all probes' background uptake, over the excitations."""
+    worst = 0.0
+    for x_nm in {float(ch.source.centre_nm) for ch in channels}:
+        tissue_mu_a = float(tissue.mu_a_per_cm(x_nm))
+        added = sum(float(probe_mu_a_per_cm(p, x_nm, background_uM)) for p in probes)
+        if tissue_mu_a > 0:
+            worst = max(worst, added / tissue_mu_a)
+    return worst
 
 
 def response_matrix(
@@ -311,7 +334,7 @@ def channel_report(
             tissue, probes, source=ch.source, irradiance_mw_per_cm2=irradiance_mw_per_cm2,
             emission_filter=ch.emission_filter, camera=ch.camera, lens=ch.lens,
             background_concentration_uM=[concentration_uM / uptake_ratio] * len(probes),
-            autofluorescence=autofluorescence,
+            autofluorescence=autofluorescence, probe_absorption=False,
         )
         leak[c] = rates["leakage"]
         bg[c] = float(np.sum(rates["uptake"])) + rates["autofluorescence"] + rates["leakage"] + rates["dark"]
@@ -325,6 +348,11 @@ def channel_report(
     snr = unmixed_snr(resp, noise_var, abundance=concentration_uM)
     cond = condition_number(resp)
     notes = []
+    rise = _probe_absorption_rise(tissue, probes, channels, concentration_uM / uptake_ratio)
+    if rise > PROBE_ABSORPTION_WARN_FRACTION:
+        notes.append(f"the probes' background uptake ({concentration_uM / uptake_ratio:.3g} uM each) raises the "
+                     f"tissue's absorption by up to {100.0 * rise:.0f} % at the excitation: the channel model leaves "
+                     "the probes' own absorption out (linear in the probes); the depth curves include it")
     if np.any(cond >= SEPARABLE_CONDITION_LIMIT):
         notes.append(f"condition number reaches {np.max(cond):.3g}: the probes cannot be separated reliably "
                      "at some depths (two probes look the same in these channels)")

@@ -27,7 +27,19 @@ The forward model (diffusion theory, :mod:`probeplan.model.transport`)
    control when you can); (c) excitation leakage: diffusely reflected
    excitation Rd(λx)·E0 through the emission filter's blocking at λx;
    (d) camera dark current and read noise of one binned pixel.
-4. **Detection.** The surface is Lambertian; the lens collects the fraction
+4. **The probe absorbs too.** The probe's background uptake c/TBR adds
+   μa,p(λ) = ln(10)·ε(λ)·c/TBR to the tissue's μa everywhere, at the
+   excitation and at the emission wavelengths (:func:`probe_mu_a_per_cm`);
+   inside the target its excess c − c/TBR adds more, applied as a
+   self-attenuation exp(−Δμeff·ℓ) over the path ℓ the light travels inside the
+   inclusion (down to the slice for the excitation, up from it for the
+   emission), Δμeff the rise of μeff from that excess (a first-order stated
+   approximation).  ε(λ) comes from the probe's absorption model up to its
+   first-exciton peak and is taken as 0 beyond it (the Stokes-shifted side,
+   where the model says nothing and the dot absorbs little).  A
+   :class:`~probeplan.errors.ProbeAbsorptionWarning` (and a note) says when the
+   probe raises the tissue's μa by more than 10 %.
+5. **Detection.** The surface is Lambertian; the lens collects the fraction
    ``lens.collection_efficiency()`` of the exitance from the object-side area
    of one (binned) pixel; then filter transmission T(λ) and camera QE(λ),
    integrated over wavelength on a 1 nm grid.  Signal and background are
@@ -36,7 +48,10 @@ The forward model (diffusion theory, :mod:`probeplan.model.transport`)
 SBR = (S + B)/B with B every background in the pixel (light and dark);
 contrast = S/B; SNR = S·t / √((S + B)·t + σr²) with B including dark
 electrons.  The escaping spectrum is attenuated wavelength by wavelength, so it
-red-shifts with depth (``escaped_peak_nm``).
+shifts with depth (``escaped_peak_nm``); the sign of the shift follows from the
+tissue's μeff across the band (blue where μeff rises towards longer wavelengths,
+as for water's 1450 nm band above PbS at 1300 nm; red where it falls, as across
+the haemoglobin bands) and is reported as computed (``spectral_shift_nm``).
 
 The SBR threshold of 2 used by :func:`depth_at_threshold` is common practice
 for "visible above background", not a standard.
@@ -52,9 +67,8 @@ from typing import Any
 import numpy as np
 
 from probeplan.model import transport
-from probeplan.errors import AssumptionWarning, input_error, positive_number
+from probeplan.errors import ProbeAbsorptionWarning, input_error, positive_number
 from probeplan.model.tissue import Tissue, tissue_preset
-from probeplan.model.tissue import optical_properties as _tissue_optical_properties
 
 __all__ = [
     "Autofluorescence",
@@ -66,6 +80,8 @@ __all__ = [
     "background_rates",
     "photons_per_s_per_mw",
     "emission_grid_nm",
+    "probe_mu_a_per_cm",
+    "PROBE_ABSORPTION_WARN_FRACTION",
     "DEFAULT_SBR_THRESHOLD",
     "MM_PER_CM",
 ]
@@ -85,6 +101,11 @@ MM3_PER_CM3 = 1000.0
 #: Wavelength step (nm) at which the tissue transport of the target's light is evaluated before
 #: linear interpolation onto the 1 nm emission grid (μa, μs′ and the escape vary slowly with λ).
 _TRANSPORT_STEP_NM = 4.0
+#: Width (nm) of the step added to the transport grid at a probe's first-exciton edge.
+_EDGE_STEP_NM = 1e-3
+#: The probe's absorption is taken up to this far short of its first-exciton peak (nm): the peak is
+#: recomputed through the sizing curve's round trip, which differs in the last digits.
+_EDGE_MARGIN_NM = 0.01
 #: Gauss–Legendre nodes and weights on [-1, 1] for slicing a spherical target into discs.
 _SPHERE_NODES = np.polynomial.legendre.leggauss(8)
 #: Mm² per cm².
@@ -102,20 +123,60 @@ _AF_BAND_FLOOR = 1e-4
 _N_BACKGROUND_DEPTHS = 192
 
 
-#: Note added to results whose wavelength grid goes beyond the haemoglobin table.
-HB_BEYOND_TABLE_NOTE = ("haemoglobin absorption beyond 1000 nm is held at its 1000 nm value "
-                        "(the table ends there; a conservative approximation)")
+def optical_properties(tissue: Tissue, wavelength_nm, absorbers=()) -> tuple[np.ndarray, np.ndarray]:
+    """Tissue μa (plus the probes' background uptake in ``absorbers``), μs′ for the model's grids.
 
-
-def optical_properties(tissue: Tissue, wavelength_nm) -> tuple[np.ndarray, np.ndarray]:
-    """Tissue μa, μs′ for the model's internal grids.
-
-    The haemoglobin-beyond-1000-nm approximation is reported once per result
-    as a note (:data:`HB_BEYOND_TABLE_NOTE`) instead of a warning per call.
+    Scattering used outside its source's measured range is reported once per
+    result as a note (``DepthProfile.notes``) instead of a warning per call.
     """
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", AssumptionWarning)
-        return _tissue_optical_properties(tissue, wavelength_nm)
+    mu_a = tissue.mu_a_per_cm(wavelength_nm)
+    if absorbers:
+        mu_a = mu_a + _uptake_mu_a(absorbers, wavelength_nm)
+    return mu_a, tissue.mu_s_prime_per_cm(wavelength_nm, warn=False)
+
+
+#: The probe's absorption counts as noticeable when it raises the tissue's μa by more than this fraction.
+PROBE_ABSORPTION_WARN_FRACTION = 0.10
+
+
+def probe_mu_a_per_cm(probe, wavelength_nm, concentration_uM: float) -> np.ndarray:
+    """Absorption coefficient (cm⁻¹, natural log) of a probe at a concentration: ln(10)·ε(λ)·c.
+
+    ε(λ) is the probe's absorption model (:meth:`~probeplan.model.dots.Probe.molar_extinction_per_M_cm`)
+    at wavelengths up to its first-exciton peak, and 0 beyond it (the model says nothing on the
+    Stokes-shifted side, where the dot absorbs little: a stated approximation).  The model's own
+    warnings near the gap are not repeated here.
+
+    Examples
+    --------
+    >>> from probeplan.model.dots import make_probe
+    >>> p = make_probe("CdSe", 600.0, extinction_at_excitation_per_M_cm=1e5)
+    >>> round(float(probe_mu_a_per_cm(p, 500.0, 1.0)), 4)   # ln(10) x 1e5 /M/cm x 1e-6 M
+    0.2303
+    """
+    shape = np.shape(wavelength_nm)
+    wl = np.atleast_1d(np.asarray(wavelength_nm, dtype=np.float64)).ravel()
+    conc = positive_number("concentration_uM", concentration_uM, allow_zero=True)
+    out = np.zeros(wl.shape)
+    if conc == 0:
+        return out.reshape(shape)
+    edge = float(probe.exciton_peak_nm) - _EDGE_MARGIN_NM
+    below = wl <= edge
+    if np.any(below):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            eps = np.asarray(probe.molar_extinction_per_M_cm(wl[below]), dtype=np.float64)
+        out[below] = math.log(10.0) * eps * conc * M_PER_UM
+    return out.reshape(shape)
+
+
+def _uptake_mu_a(absorbers, wavelength_nm) -> np.ndarray:
+    """Summed μa (cm⁻¹) of background probe uptake: ``absorbers`` is [(probe, µM), ...]."""
+    wl = np.asarray(wavelength_nm, dtype=np.float64)
+    total = np.zeros(wl.shape)
+    for probe, conc in absorbers:
+        total = total + probe_mu_a_per_cm(probe, wl.ravel(), conc).reshape(wl.shape)
+    return total
 
 
 def photons_per_s_per_mw(wavelength_nm) -> np.ndarray:
@@ -236,10 +297,11 @@ def _depths(depth_mm) -> np.ndarray:
     return d
 
 
-def _excitation_fluence_photons(tissue: Tissue, source, irradiance_mw_per_cm2: float, depth_mm: np.ndarray):
+def _excitation_fluence_photons(tissue: Tissue, source, irradiance_mw_per_cm2: float, depth_mm: np.ndarray,
+                                absorbers=()):
     """Fluence rate (photons/s/cm²) at each depth, integrated over the source spectrum."""
     wl_x, weights = _source_spectrum(source)
-    mu_a, mu_sp = optical_properties(tissue, wl_x)
+    mu_a, mu_sp = optical_properties(tissue, wl_x, absorbers)
     phi = transport.broad_beam_fluence(depth_mm[:, None], mu_a[None, :], mu_sp[None, :], tissue.refractive_index)
     photons = irradiance_mw_per_cm2 * photons_per_s_per_mw(wl_x)  # photons/s/cm² per nm-weight
     return np.trapezoid(phi * photons * weights, wl_x, axis=-1)
@@ -267,9 +329,16 @@ class DepthProfile:
     All electron counts are photoelectrons per (binned) pixel in one exposure,
     arrays of shape ``(D,)`` over ``depth_mm``.  ``escaped_spectrum`` (D, W) is
     the target's exitance at the surface above it (photons/s/mm²/nm) on
-    ``wavelength_nm``, before the filter: it red-shifts with depth where tissue
-    absorbs the blue side of the emission more.  ``detected_spectrum`` is the
-    same after lens, filter and QE (e⁻/s/nm per pixel).
+    ``wavelength_nm``, before the filter.  ``spectral_shift_nm`` (D,) is the
+    shift of its centroid from the probe's own emission centroid, with its true
+    sign: positive towards the red (where tissue absorbs the blue side more, as
+    across the haemoglobin bands), negative towards the blue (where it absorbs the
+    red side more, as for PbS at 1300 nm below water's 1450 nm band).
+    ``detected_spectrum`` is the same after lens, filter and QE (e⁻/s/nm per
+    pixel).  ``full_well_e`` is the binned pixel's capacity used for
+    ``saturated`` (:attr:`probeplan.model.optics.Camera.binned_full_well_e`);
+    ``probe_absorption_fraction`` the largest rise of the tissue's μa from the
+    probe's background uptake at the excitation and emission wavelengths.
     """
 
     probe: str
@@ -292,6 +361,9 @@ class DepthProfile:
     escaped_spectrum: np.ndarray = field(repr=False)
     detected_spectrum: np.ndarray = field(repr=False)
     notes: list[str] = field(default_factory=list)
+    spectral_shift_nm: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    full_well_e: float = math.inf
+    probe_absorption_fraction: float = 0.0
 
     @property
     def background_e(self) -> float:
@@ -311,13 +383,18 @@ class DepthProfile:
                 "snr": float(n),
                 "blur_fwhm_mm": float(f),
                 "escaped_peak_nm": float(p),
+                "spectral_shift_nm": float(h),
                 "diffusion_valid": bool(v),
             }
-            for d, s, b, c, n, f, p, v in zip(
+            for d, s, b, c, n, f, p, h, v in zip(
                 self.depth_mm, self.signal_e, self.sbr, self.contrast, self.snr, self.blur_fwhm_mm,
-                self.escaped_peak_nm, self.diffusion_valid, strict=True,
+                self.escaped_peak_nm, self._shift(), self.diffusion_valid, strict=True,
             )
         ]
+
+    def _shift(self) -> np.ndarray:
+        return self.spectral_shift_nm if self.spectral_shift_nm.size == self.depth_mm.size else np.full(
+            self.depth_mm.size, np.nan)
 
 
 def probe_rate_e_per_s(
@@ -333,11 +410,14 @@ def probe_rate_e_per_s(
     target_size_mm: float = 2.0,
     concentration_uM: float = 1.0,
     wavelength_nm: np.ndarray | None = None,
+    background_uptake=(),
 ) -> np.ndarray:
     """Photoelectrons per second in the pixel above an inclusion, per depth (no background).
 
     The response of one probe in one channel (source + filter + camera + lens)
     used by :mod:`probeplan.model.channels`; see the module notes for the model.
+    ``background_uptake`` is a sequence of (probe, µM) whose absorption is added
+    to the tissue's μa (default none: the response of a linear model per µM).
 
     Returns
     -------
@@ -348,11 +428,13 @@ def probe_rate_e_per_s(
         _tissue(tissue), probe, source, positive_number("irradiance_mw_per_cm2", irradiance_mw_per_cm2),
         emission_filter, camera, lens, _depths(depth_mm), positive_number("target_size_mm", target_size_mm),
         positive_number("concentration_uM", concentration_uM, allow_zero=True), wavelength_nm,
+        tuple(background_uptake),
     )
     return rate
 
 
-def _signal_rate(tissue, probe, source, irradiance, emission_filter, camera, lens, depth, size_mm, conc_uM, wl):
+def _signal_rate(tissue, probe, source, irradiance, emission_filter, camera, lens, depth, size_mm, conc_uM, wl,
+                 absorbers=(), self_absorption=False):
     """Detected rate (e⁻/s per pixel) and escaping spectrum above a uniform spherical inclusion.
 
     The sphere (radius r, centre depth d) is cut into thin discs at the
@@ -363,6 +445,10 @@ def _signal_rate(tissue, probe, source, irradiance, emission_filter, camera, len
     disc escape fraction (:func:`disc_escape_fraction`; exact for a uniform
     disc in the image-source model).  F is evaluated every
     :data:`_TRANSPORT_STEP_NM` nm and interpolated linearly onto the 1 nm grid.
+    ``absorbers`` (background uptake) add to the tissue's μa everywhere; with
+    ``self_absorption`` the inclusion's own probe at ``conc_uM`` attenuates
+    the light inside it by exp(−Δμeff·ℓ_k), ℓ_k the path from the inclusion's
+    top down to slice k (module notes, step 4).
     """
     wl = emission_grid_nm([probe]) if wl is None else np.asarray(wl, dtype=np.float64)
     radius = size_mm / 2.0
@@ -371,27 +457,52 @@ def _signal_rate(tissue, probe, source, irradiance, emission_filter, camera, len
     z = np.maximum(depth[:, None] + offset[None, :], 0.0)  # (D, S) slice depths; above the skin counts as at it
     dz = np.broadcast_to(radius * weights, z.shape)  # (D, S) slice thickness weights, mm
     rho = np.broadcast_to(radius * np.sqrt(1.0 - nodes**2), z.shape)  # (D, S) slice radii, mm
-    fluence = _excitation_fluence_photons(tissue, source, irradiance, z.ravel())
+    fluence = _excitation_fluence_photons(tissue, source, irradiance, z.ravel(), absorbers).reshape(z.shape)
     eps = float(np.asarray(probe.molar_extinction_per_M_cm(float(source.centre_nm))))
     mu_a_probe = math.log(10.0) * eps * conc_uM * M_PER_UM  # cm^-1
+    coarse = _coarse_grid(wl, absorbers)
+    mu_a, mu_sp = optical_properties(tissue, coarse, absorbers)
+    inside_cm = np.zeros((z.shape[0], z.shape[1], 1))
+    d_mu_eff_em = None
+    if self_absorption and conc_uM > 0:
+        # path inside the inclusion above each slice (cm): from its top (clipped at the skin) down to the slice
+        inside_cm = (z - np.maximum(depth[:, None] - radius, 0.0))[:, :, None] / MM_PER_CM
+        x_nm = float(source.centre_nm)
+        mu_a_x, mu_sp_x = optical_properties(tissue, x_nm, absorbers)
+        d_mu_eff_x = float(transport.mu_eff(mu_a_x + mu_a_probe, mu_sp_x) - transport.mu_eff(mu_a_x, mu_sp_x))
+        fluence = fluence * np.exp(-d_mu_eff_x * inside_cm[:, :, 0])
+        # on the 1 nm grid: the probe's absorption edge at its first exciton is too sharp for the coarse grid
+        mu_a_fine, mu_sp_fine = _interp_last(mu_a, coarse, wl), _interp_last(mu_sp, coarse, wl)
+        excess_em = probe_mu_a_per_cm(probe, wl, conc_uM)
+        d_mu_eff_em = transport.mu_eff(mu_a_fine + excess_em, mu_sp_fine) - transport.mu_eff(mu_a_fine, mu_sp_fine)
     # photons/s per mm³ of inclusion in each slice (fluence per cm², coefficient per cm → per cm³ → per mm³)
-    q = probe.quantum_yield * mu_a_probe * fluence.reshape(z.shape) / MM3_PER_CM3
+    q = probe.quantum_yield * mu_a_probe * fluence / MM3_PER_CM3
     # the transport factor varies slowly with wavelength: evaluate it every few nm, interpolate onto the 1 nm grid
-    coarse = _coarse_grid(wl)
-    mu_a, mu_sp = optical_properties(tissue, coarse)
     frac = disc_escape_fraction(rho[:, :, None], z[:, :, None], mu_a[None, None, :], mu_sp[None, None, :],
                                 tissue.refractive_index)  # (D, S, Wc)
-    exitance = _interp_last(np.einsum("ds,dsw->dw", q * dz, frac), coarse, wl)  # photons/s/mm² per unit spectrum
+    if d_mu_eff_em is None:
+        exitance = _interp_last(np.einsum("ds,dsw->dw", q * dz, frac), coarse, wl)  # photons/s/mm² per unit spectrum
+    else:
+        frac = _interp_last(frac, coarse, wl) * np.exp(-d_mu_eff_em[None, None, :] * inside_cm)
+        exitance = np.einsum("ds,dsw->dw", q * dz, frac)
     escaped = exitance * probe.emission_per_nm(wl)[None, :]  # photons/s/mm²/nm
     detect = _detection(camera, lens) * emission_filter.transmission(wl) * camera.qe(wl)
     rate = np.trapezoid(escaped * detect[None, :], wl, axis=-1)
     return rate, wl, escaped
 
 
-def _coarse_grid(wl: np.ndarray) -> np.ndarray:
-    """Every :data:`_TRANSPORT_STEP_NM` nm across ``wl``, both ends included."""
+def _coarse_grid(wl: np.ndarray, absorbers=()) -> np.ndarray:
+    """Every :data:`_TRANSPORT_STEP_NM` nm across ``wl``, both ends included.
+
+    The first-exciton edges of ``absorbers`` inside the range are added (at the edge and just
+    beyond it), where the probes' absorption steps to zero, so that linear interpolation keeps
+    the step.
+    """
     n = max(2, int(math.ceil((wl[-1] - wl[0]) / _TRANSPORT_STEP_NM)) + 1)
-    return np.linspace(wl[0], wl[-1], n)
+    grid = np.linspace(wl[0], wl[-1], n)
+    edges = [float(p.exciton_peak_nm) - _EDGE_MARGIN_NM for p, _ in absorbers]
+    extra = [e + d for e in edges for d in (0.0, _EDGE_STEP_NM) if wl[0] < e + d < wl[-1]]
+    return np.unique(np.concatenate([grid, extra])) if extra else grid
 
 
 def _interp_last(values: np.ndarray, x: np.ndarray, x_new: np.ndarray) -> np.ndarray:
@@ -401,14 +512,14 @@ def _interp_last(values: np.ndarray, x: np.ndarray, x_new: np.ndarray) -> np.nda
     return values[..., i] * (1.0 - t) + values[..., i + 1] * t
 
 
-def _half_space_integral(tissue, source, irradiance, wl_em, emission_per_nm, yield_per_cm):
+def _half_space_integral(tissue, source, irradiance, wl_em, emission_per_nm, yield_per_cm, absorbers=()):
     """Exitance (photons/s/mm²/nm) of a uniform fluorophore in the half-space, excited by the beam."""
-    mu_a_x, mu_sp_x = optical_properties(tissue, float(source.centre_nm))
+    mu_a_x, mu_sp_x = optical_properties(tissue, float(source.centre_nm), absorbers)
     mu_eff_x = float(transport.mu_eff(mu_a_x, mu_sp_x)) / MM_PER_CM
     z_max = min(60.0, 25.0 / max(mu_eff_x, 1e-3))
     z = np.concatenate([[0.0], np.geomspace(1e-3, z_max, _N_BACKGROUND_DEPTHS - 1)])
-    fluence = _excitation_fluence_photons(tissue, source, irradiance, z)  # photons/s/cm²
-    mu_a, mu_sp = optical_properties(tissue, wl_em)
+    fluence = _excitation_fluence_photons(tissue, source, irradiance, z, absorbers)  # photons/s/cm²
+    mu_a, mu_sp = optical_properties(tissue, wl_em, absorbers)
     esc = disc_escape_fraction(np.inf, z[:, None], mu_a[None, :], mu_sp[None, :], tissue.refractive_index)
     # per cm³: yield_per_cm * fluence photons/s; per mm³ divide by 1000; integrate dz in mm.
     source_per_mm3 = yield_per_cm * fluence / MM3_PER_CM3
@@ -426,8 +537,12 @@ def background_rates(
     lens,
     background_concentration_uM,
     autofluorescence: Autofluorescence | None = None,
+    probe_absorption: bool = True,
 ) -> dict[str, Any]:
     """Background photoelectron rates (e⁻/s per binned pixel) in one channel.
+
+    With ``probe_absorption`` (default) the probes' background uptake adds its
+    absorption to the tissue's μa at every wavelength (module notes, step 4).
 
     Returns
     -------
@@ -445,6 +560,7 @@ def background_rates(
         raise input_error("background_concentration_uM", f"got {conc.tolist()}", "give one value >= 0 (µM) per probe")
     pixel = _detection(camera, lens)
     x_nm = float(source.centre_nm)
+    absorbers = tuple((p, float(c)) for p, c in zip(probes, conc, strict=True) if c > 0) if probe_absorption else ()
     uptake = np.zeros(len(probes))
     for k, probe in enumerate(probes):
         if conc[k] == 0:
@@ -452,7 +568,8 @@ def background_rates(
         wl = emission_grid_nm([probe])
         eps = float(np.asarray(probe.molar_extinction_per_M_cm(x_nm)))
         yield_per_cm = probe.quantum_yield * math.log(10.0) * eps * conc[k] * M_PER_UM
-        exitance = _half_space_integral(tissue, source, irradiance, wl, probe.emission_per_nm(wl), yield_per_cm)
+        exitance = _half_space_integral(tissue, source, irradiance, wl, probe.emission_per_nm(wl), yield_per_cm,
+                                        absorbers)
         uptake[k] = np.trapezoid(exitance * pixel * emission_filter.transmission(wl) * camera.qe(wl), wl)
     af_rate = 0.0
     wl_af = np.arange(max(300.0, math.floor(x_nm) + 1), min(2000.0, x_nm + _AF_SPAN_DECAYS * af.decay_nm), 1.0)
@@ -461,10 +578,10 @@ def background_rates(
     wl_af = wl_af[inside[0]: inside[-1] + 1] if inside.size else wl_af[:0]
     if af.yield_per_cm > 0 and wl_af.size >= 2:
         af_exit = _half_space_integral(tissue, source, irradiance, wl_af, af.emission_per_nm(wl_af, x_nm),
-                                       af.yield_at(x_nm))
+                                       af.yield_at(x_nm), absorbers)
         af_rate = float(np.trapezoid(af_exit * pixel * emission_filter.transmission(wl_af) * camera.qe(wl_af), wl_af))
     wl_x, weights = _source_spectrum(source)
-    mu_a_x, mu_sp_x = optical_properties(tissue, wl_x)
+    mu_a_x, mu_sp_x = optical_properties(tissue, wl_x, absorbers)
     rd = transport.diffuse_reflectance(mu_a_x, mu_sp_x, tissue.refractive_index)
     leak_exit = irradiance * photons_per_s_per_mw(wl_x) / MM2_PER_CM2 * rd * weights  # photons/s/mm²/nm
     leak_rate = float(np.trapezoid(leak_exit * pixel * emission_filter.transmission(wl_x) * camera.qe(wl_x), wl_x))
@@ -488,6 +605,7 @@ def depth_profile(
     uptake_ratio: float = 5.0,
     autofluorescence: Autofluorescence | None = None,
     warn: bool = True,
+    probe_absorption: bool = True,
 ) -> DepthProfile:
     """Signal, backgrounds, SBR, SNR and blur against depth for one probe.
 
@@ -516,7 +634,12 @@ def depth_profile(
     autofluorescence : Autofluorescence, optional
         The autofluorescence assumption (default :class:`Autofluorescence()`).
     warn : bool
-        Emit :class:`~probeplan.errors.ModelValidityWarning` where diffusion is unreliable.
+        Emit :class:`~probeplan.errors.ModelValidityWarning` where diffusion is unreliable,
+        and :class:`~probeplan.errors.ProbeAbsorptionWarning` where the probe raises the
+        tissue's μa by more than 10 %.
+    probe_absorption : bool
+        Add the probe's own absorption (background uptake everywhere, the target's
+        excess inside it) to the tissue's μa (module notes, step 4).  Default True.
 
     Returns
     -------
@@ -536,13 +659,16 @@ def depth_profile(
 
     wl = emission_grid_nm([probe])
     bg_conc = conc / tbr
+    absorbers = ((probe, bg_conc),) if probe_absorption else ()
     rate_full, wl, escaped = _signal_rate(
-        tissue, probe, source, irradiance, emission_filter, camera, lens, depth, size, conc - bg_conc, wl
+        tissue, probe, source, irradiance, emission_filter, camera, lens, depth, size, conc - bg_conc, wl,
+        absorbers, probe_absorption,
     )
     detect = _detection(camera, lens) * emission_filter.transmission(wl) * camera.qe(wl)
     bg = background_rates(tissue, [probe], source=source, irradiance_mw_per_cm2=irradiance,
                           emission_filter=emission_filter, camera=camera, lens=lens,
-                          background_concentration_uM=[bg_conc], autofluorescence=af)
+                          background_concentration_uM=[bg_conc], autofluorescence=af,
+                          probe_absorption=probe_absorption)
     uptake_rate, af_rate, leak_rate, dark_rate = (float(bg["uptake"][0]), bg["autofluorescence"], bg["leakage"],
                                                   bg["dark"])
     read_noise = float(camera.read_noise_per_binned_px_e)
@@ -556,16 +682,38 @@ def depth_profile(
         contrast = np.where(background > 0, signal / background, np.inf)
     snr = signal / np.sqrt(signal + background + read_noise**2)
 
+    # How much the probe's background uptake raises the tissue's absorption (excitation and emission band).
+    x_nm = float(source.centre_nm)
+    band = np.append(wl[probe.emission_per_nm(wl) > 0.5 * probe.emission_per_nm(wl).max()], x_nm)
+    tissue_mu_a = tissue.mu_a_per_cm(band)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rise = np.where(tissue_mu_a > 0, _uptake_mu_a(absorbers, band) / tissue_mu_a, 0.0) if absorbers else 0.0 * band
+    probe_fraction = float(np.max(rise)) if np.size(rise) else 0.0
+    if probe_fraction > PROBE_ABSORPTION_WARN_FRACTION:
+        text = (f"{getattr(probe, 'name', 'probe')} at {bg_conc:.3g} uM background uptake raises the tissue's "
+                f"absorption by up to {100.0 * probe_fraction:.0f} % (excitation and emission band); it is "
+                "included in the fluence and the escape")
+        notes.append(text)
+        if warn:
+            warnings.warn(text, ProbeAbsorptionWarning, stacklevel=2)
+
     # Blur and the escaping spectrum.
-    mu_a, mu_sp = optical_properties(tissue, wl)
+    mu_a, mu_sp = optical_properties(tissue, wl, absorbers)
     spectrum_weight = escaped.sum(axis=0)
     ref = int(np.argmax(spectrum_weight)) if spectrum_weight.any() else len(wl) // 2
     blur = transport.point_source_blur_fwhm_mm(depth, mu_a[ref], mu_sp[ref], tissue.refractive_index)
     blur = np.sqrt(np.asarray(blur, dtype=np.float64) ** 2 + size**2)
     detected = escaped * detect[None, :]
     peak = wl[np.argmax(escaped, axis=1)]
+    shift = _centroid_shift_nm(wl, escaped, probe.emission_per_nm(wl))
+    if depth.size > 1 and np.all(np.isfinite(shift[[0, -1]])):
+        change = float(shift[-1] - shift[0])
+        if abs(change) >= 0.5:
+            notes.append(f"the escaping spectrum moves {'towards the red' if change > 0 else 'towards the blue'} "
+                         f"with depth: its centroid shifts by {change:+.1f} nm from {depth[0]:g} to {depth[-1]:g} mm "
+                         f"({shift[-1]:+.1f} nm from the probe's own emission at {depth[-1]:g} mm)")
 
-    mu_a_x, mu_sp_x = optical_properties(tissue, float(source.centre_nm))
+    mu_a_x, mu_sp_x = optical_properties(tissue, x_nm, absorbers)
     det_weight = detected.sum(axis=0)
     det_ref = int(np.argmax(det_weight)) if det_weight.any() else ref
     check_mu_a = np.array([float(mu_a_x), mu_a[det_ref]])
@@ -576,12 +724,14 @@ def depth_profile(
         notes.append(f"diffusion theory is unreliable at {int((~valid).sum())} of {valid.size} depths "
                      "(shallower than about one transport mean free path, or absorption not small against "
                      "scattering); treat those values as rough")
-    full_well = float(getattr(camera, "full_well_e", np.inf))
+    full_well = float(getattr(camera, "binned_full_well_e", getattr(camera, "full_well_e", np.inf)))
     saturated = signal + background > full_well
     if saturated.any():
-        notes.append("the pixel saturates at some depths: shorten the exposure or lower the irradiance")
-    if wl.max() > 1000.0 or float(source.centre_nm) > 1000.0:
-        notes.append(HB_BEYOND_TABLE_NOTE)
+        notes.append("the pixel saturates at some depths: shorten the exposure or lower the irradiance "
+                     f"({getattr(camera, 'binned_full_well_note', f'full well {full_well:g} e-')})")
+    scattering_note = tissue.scattering_outside(np.append(wl, _source_spectrum(source)[0]))
+    if scattering_note is not None:
+        notes.append(scattering_note)
     if np.any(depth < size / 2.0):
         notes.append(f"at depths under {size / 2.0:g} mm the {size:g} mm target breaks the surface; "
                      "its part above the skin is counted as lying at the surface")
@@ -604,11 +754,23 @@ def depth_profile(
         escaped_peak_nm=peak,
         diffusion_valid=valid,
         saturated=saturated,
+        spectral_shift_nm=shift,
+        full_well_e=full_well,
+        probe_absorption_fraction=probe_fraction,
         wavelength_nm=wl,
         escaped_spectrum=escaped,
         detected_spectrum=detected,
         notes=notes,
     )
+
+
+def _centroid_shift_nm(wl: np.ndarray, escaped: np.ndarray, emission: np.ndarray) -> np.ndarray:
+    """Centroid of each escaped spectrum (D, W) minus the centroid of the probe's own emission (nm)."""
+    own = float(np.trapezoid(wl * emission, wl) / np.trapezoid(emission, wl))
+    total = np.trapezoid(escaped, wl, axis=-1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        centroid = np.trapezoid(escaped * wl[None, :], wl, axis=-1) / total
+    return np.where(total > 0, centroid - own, np.nan)
 
 
 def depth_at_threshold(profile: DepthProfile, sbr_threshold: float = DEFAULT_SBR_THRESHOLD) -> float:

@@ -644,6 +644,9 @@ class Camera:
     charge_binning : bool
         True: binned pixels are summed as charge before read-out (one read noise);
         False: summed digitally (read noise adds in quadrature).
+    output_node_full_well_e : float, optional
+        Charge capacity of the summing well / output node that holds a charge-binned
+        pixel, e-; used only with ``charge_binning`` (see :attr:`binned_full_well_e`).
     description, source : str
 
     Examples
@@ -662,6 +665,7 @@ class Camera:
     pixel_pitch_um: float
     binning: int = 1
     charge_binning: bool = False
+    output_node_full_well_e: float | None = None
     description: str = "generic, typical values"
     source: str = ""
 
@@ -676,6 +680,8 @@ class Camera:
         _number(self.read_noise_e, "read_noise_e", strict=False)
         _number(self.dark_current_e_per_px_s, "dark_current_e_per_px_s", strict=False)
         _number(self.full_well_e, "full_well_e")
+        if self.output_node_full_well_e is not None:
+            _number(self.output_node_full_well_e, "output_node_full_well_e")
         _number(self.pixel_pitch_um, "pixel_pitch_um")
         for key, lo, hi in (("bit_depth", 1, 32), ("binning", 1, 64)):
             value = getattr(self, key)
@@ -692,6 +698,44 @@ class Camera:
     def effective_pixel_um(self) -> float:
         """Side of a binned pixel, um."""
         return float(self.pixel_pitch_um * self.binning)
+
+    @property
+    def binned_full_well_e(self) -> float:
+        """Electrons one binned pixel holds before it saturates.
+
+        Digital binning: each physical pixel is read on its own and summed after
+        read-out, so each of the binning² pixels may fill its own well: binning² ×
+        ``full_well_e``.  Charge binning: the charges are summed in the summing well /
+        output node before read-out, so the binned pixel is limited by that node as
+        well: min(binning² × ``full_well_e``, ``output_node_full_well_e``); when the
+        node's capacity is not given, one pixel's ``full_well_e`` is used (the
+        conservative choice; :attr:`binned_full_well_note` says so).  Without binning
+        it is ``full_well_e``.  (CCD and CMOS binning as described in EMVA 1288
+        practice and camera makers' notes: common practice.)
+        """
+        b2 = self.binning**2
+        if self.binning == 1:
+            return float(self.full_well_e)
+        if not self.charge_binning:
+            return float(b2 * self.full_well_e)
+        if self.output_node_full_well_e is None:
+            return float(self.full_well_e)
+        return float(min(b2 * self.full_well_e, self.output_node_full_well_e))
+
+    @property
+    def binned_full_well_note(self) -> str:
+        """Which full well limits a binned pixel, in words."""
+        if self.binning == 1:
+            return f"full well {self.full_well_e:g} e- per pixel (no binning)"
+        if not self.charge_binning:
+            return (f"digital {self.binning}x{self.binning} binning: each pixel saturates at its own full well, "
+                    f"{self.binned_full_well_e:g} e- per binned pixel")
+        if self.output_node_full_well_e is None:
+            return (f"charge {self.binning}x{self.binning} binning with the output node's capacity unknown: one "
+                    f"pixel's full well ({self.full_well_e:g} e-) is used, conservatively; give "
+                    "output_node_full_well_e for your camera")
+        return (f"charge {self.binning}x{self.binning} binning: the summed charge is limited to "
+                f"{self.binned_full_well_e:g} e- per binned pixel (output node {self.output_node_full_well_e:g} e-)")
 
     @property
     def read_noise_per_binned_px_e(self) -> float:
@@ -734,6 +778,8 @@ def camera_from_dict(name: str, data: dict[str, Any], *, source: str = "user fil
         pixel_pitch_um=float(get("pixel_pitch_um")),
         binning=int(data.get("binning", 1)),
         charge_binning=bool(data.get("charge_binning", False)),
+        output_node_full_well_e=(float(get("output_node_full_well_e")) if "output_node_full_well_e" in data
+                                 else None),
         description=str(data.get("description", "generic, typical values")),
         source=str(data.get("source", source)),
     )
