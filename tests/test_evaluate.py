@@ -10,6 +10,7 @@ import pytest
 from probeplan.errors import InputError
 from probeplan.study.evaluate import SCHEDULE_NOTES, Evaluation, evaluate_plan, plan_model
 from probeplan.study.plan import load_plan, parse_plan_text
+from probeplan.study.rules import parse_rules_text
 from probeplan.study.rules import default_rules, load_rules
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -137,7 +138,8 @@ def test_demo_plan_passes_the_demo_rules_and_the_defaults():
 def test_base_plan_passes_and_has_every_table():
     ev = evaluate()
     assert ev.passed, [c.as_row() for c in ev.failed]
-    assert [t.name for t in ev.tables] == ["injection", "light", "timing", "imaging", "channels", "animals"]
+    assert [t.name for t in ev.tables] == ["injection", "light", "timing", "heavy_metal", "imaging", "channels",
+                                           "animals"]
     assert all(t.rows for t in ev.tables)
     assert ev.assumptions[: len(SCHEDULE_NOTES)] == list(SCHEDULE_NOTES)
     d = ev.as_dict()
@@ -268,6 +270,31 @@ def test_heavy_metal_dose_sums_cd_and_pb_probes():
     assert check.value == 60.0 and not check.passed
     free = evaluate(('material = "CdTe"', 'material = "InP"'))
     assert free.heavy_metals == [] and checks_of(free, "probe.heavy_metal.max_cumulative_dose")[0].value == 0.0
+
+
+def test_metal_dose_in_mg_per_kg_beside_nmol_per_kg():
+    # The CdTe probe (Cd) is counted in mg of Cd per kg from its core size (probeplan.model.metal_dose, checked
+    # against CRC densities and IUPAC weights in tests/test_metal_dose.py); InAs holds no Cd or Pb.
+    from probeplan.model import dots, metal_dose
+
+    ev = evaluate()
+    d = dots.make_probe("CdTe", 700.0).diameter_nm
+    expected = metal_dose.heavy_metal_dose_mg_per_kg("CdTe", d, 20.0)["Cd"]
+    check = checks_of(ev, "probe.heavy_metal.max_cumulative_metal_dose")[0]
+    assert check.value == pytest.approx(expected) and check.unit == "mg/kg" and check.passed
+    row = ev.table("heavy_metal").rows[0]
+    assert row["dose_nmol_per_kg"] == 20 and row["Cd_mg_per_kg"] == pytest.approx(expected)
+    # A rules file can limit the metal in mg/kg on its own: a stricter limit fails while nmol/kg still passes.
+    strict = parse_rules_text('[probe.heavy_metal.max_cumulative_metal_dose]\nvalue = 0.1\nunit = "mg/kg"\n')
+    ev = evaluate(rules=strict)
+    assert [c.rule_id for c in ev.failed] == ["probe.heavy_metal.max_cumulative_metal_dose"]
+    # A CdS shell on a Cd-free core is counted too; a given core diameter replaces the sizing curve.
+    shelled = evaluate(('material = "InAs"\nemission_peak_nm = 880',
+                        'material = "PbS"\nemission_peak_nm = 1300\ncore_diameter_nm = 4.0\nshell = "CdS"\n'
+                        'shell_thickness_nm = 0.5'))
+    rows = {r["probe"]: r for r in shelled.table("heavy_metal").rows}
+    both = metal_dose.heavy_metal_dose_mg_per_kg("PbS", 4.0, 20.0, shell="CdS", shell_thickness_nm=0.5)
+    assert rows["nir"]["Pb_mg_per_kg"] == pytest.approx(both["Pb"]) and rows["nir"]["Cd_mg_per_kg"] > 0
 
 
 def test_tumour_endpoint():

@@ -42,7 +42,7 @@ def test_public_names_exist():
 
 def test_defaults_cite_a_source_or_say_example_only():
     rules = default_rules()
-    assert len(rules) == 24
+    assert len(rules) == 25
     for rule in rules:
         assert rule.unit and rule.description and rule.source
         if rule.example_only:
@@ -74,6 +74,7 @@ def test_limits_without_a_published_value_are_marked_examples():
         "imaging.max_sessions_per_animal",
         "imaging.min_interval_between_sessions",
         "probe.heavy_metal.max_cumulative_dose",
+        "probe.heavy_metal.max_cumulative_metal_dose",
         "endpoint.tumour_max_diameter",
     }
     assert rules["imaging.min_interval_between_sessions"].limit == "min"
@@ -99,7 +100,7 @@ def test_rules_lookup_iteration_and_accessors():
     assert [r.id for r in rules] == list(rules.ids())
     assert "injection.rat.sc" in rules and "injection.rat.xx" not in rules
     assert rules.get("nope") is None
-    assert "24 rules" in repr(rules)
+    assert "25 rules" in repr(rules)
 
 
 def test_unknown_id_lookup_suggests_the_closest():

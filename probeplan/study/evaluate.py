@@ -34,7 +34,9 @@ Definitions (stated in every report, see :data:`SCHEDULE_NOTES`):
   exposure of the session is taken to fall on the same skin site (positions
   may overlap under a broad spot): the conservative reading;
 * the cumulative heavy-metal dose per animal is the sum of the doses of every
-  Cd- or Pb-containing probe (nmol of dots per kg).
+  Cd- or Pb-containing probe (nmol of dots per kg), and the sum of their metal
+  in mg of Cd + Pb per kg (:mod:`probeplan.model.metal_dose`: core sphere from its
+  diameter, shell when given, lattice density and stoichiometry); each has a rule.
 
 Every :class:`~probeplan.errors.ProbeplanWarning` raised while evaluating is
 turned into a line of :attr:`Evaluation.assumptions` instead of a warning.
@@ -98,7 +100,8 @@ SCHEDULE_NOTES = (
     "Skin exposure: the source is on only while the camera exposes, and every exposure of a session is taken to fall "
     "on the same skin site (positions may overlap under a broad spot); sessions are hours apart and are checked "
     "one at a time.",
-    "Cumulative heavy-metal dose per animal = sum of the doses of every Cd- or Pb-containing probe (nmol of dots per kg).",
+    "Cumulative heavy-metal dose per animal = sum of the doses of every Cd- or Pb-containing probe (nmol of dots per kg); "
+    "the mg of metal per kg beside it comes from each dot's size, lattice density and stoichiometry (an estimate).",
     "Each probe's SBR, SNR and blur are read in its own channel (where it responds most at the target depth); "
     "the channel model uses every channel.",
 )
@@ -579,6 +582,16 @@ def _schedule(plan: Plan, rules: Rules, model: PlanModel):
     what = ", ".join(f"{name} ({metal})" for name, metal, _ in heavy) or "no Cd- or Pb-containing probe"
     checks.append(check_value(rules, "probe.heavy_metal.max_cumulative_dose", total,
                               description=f"cumulative Cd/Pb probe dose per animal: {what}"))
+    metal_rows, metal_notes = _metal_dose_rows(plan, model)
+    notes += metal_notes
+    counted = [r for r in metal_rows if r["metal_mg_per_kg"] is not None]
+    metal_total = float(sum(r["metal_mg_per_kg"] for r in counted))
+    uncounted = [r["probe"] for r in metal_rows if r["metal_mg_per_kg"] is None]
+    metal_what = ", ".join(r["probe"] for r in counted if r["metal_mg_per_kg"] > 0) or "no Cd or Pb counted"
+    if uncounted:
+        metal_what += f"; not counted (no core size or lattice data): {', '.join(uncounted)}"
+    checks.append(check_value(rules, "probe.heavy_metal.max_cumulative_metal_dose", metal_total,
+                              description=f"cumulative Cd + Pb per animal, mg of metal per kg: {metal_what}"))
     tumour = plan.target["tumour_diameter_mm"]
     if tumour is not None:
         checks.append(check_value(rules, "endpoint.tumour_max_diameter", tumour,
@@ -595,7 +608,47 @@ def _schedule(plan: Plan, rules: Rules, model: PlanModel):
                      "anaesthesia_min": session_min})
     table = EvaluationTable("timing", "Imaging sessions and anaesthesia", rows,
                             note="Time in hours after the first injection.")
-    return checks, [table], notes, []
+    metal_table = EvaluationTable(
+        "heavy_metal", "Heavy metal per animal: nmol of dots per kg and mg of metal per kg", metal_rows,
+        note="Metal per dot = bulk lattice density x volume (core sphere from its diameter, plus the shell) x the "
+             "metal's mass fraction (CRC Handbook densities, IUPAC atomic weights; probeplan/data/lattice.toml). "
+             "An estimate: ligands, surface and non-stoichiometry are left out.")
+    return checks, [table, metal_table], notes, []
+
+
+def _metal_dose_rows(plan: Plan, model: PlanModel) -> tuple[list[dict[str, Any]], list[str]]:
+    """One row per probe that holds Cd or Pb (core or shell): its dose in nmol/kg and in mg of metal/kg."""
+    from probeplan.model import metal_dose
+
+    rows, notes = [], []
+    compounds = set(metal_dose.compound_names())
+    for i, p in enumerate(plan.probes):
+        probe = model.probes[i]
+        shell, thickness = p.get("shell"), p.get("shell_thickness_nm")
+        shell_heavy = bool(shell) and any(m in shell for m in metal_dose.HEAVY_METALS)
+        if not (probe.heavy_metal or shell_heavy):
+            continue
+        diameter = p.get("core_diameter_nm") or probe.diameter_nm
+        row: dict[str, Any] = {"probe": p["name"], "material": probe.material, "core_diameter_nm": diameter,
+                               "shell": shell or "", "shell_thickness_nm": thickness or 0.0,
+                               "dose_nmol_per_kg": p["dose_nmol_per_kg"], "Cd_mg_per_kg": None,
+                               "Pb_mg_per_kg": None, "metal_mg_per_kg": None}
+        if diameter is None or probe.material not in compounds:
+            notes.append(f"{p['name']}: the metal dose in mg/kg is not computed ({probe.material} has "
+                         f"{'no sizing curve' if diameter is None else 'no shipped lattice density'}); give "
+                         "core_diameter_nm for a CdSe, CdTe, CdS, PbS or PbSe core")
+            rows.append(row)
+            continue
+        if bool(shell) != bool(thickness):
+            notes.append(f"{p['name']}: shell and shell_thickness_nm go together; the shell is left out")
+            shell, thickness = None, 0.0
+        with _located(plan, ("probes", i, "shell")):
+            mg = metal_dose.heavy_metal_dose_mg_per_kg(probe.material, float(diameter), p["dose_nmol_per_kg"],
+                                                        shell=shell or None, shell_thickness_nm=thickness or 0.0)
+        row.update({"Cd_mg_per_kg": mg.get("Cd", 0.0), "Pb_mg_per_kg": mg.get("Pb", 0.0),
+                    "metal_mg_per_kg": float(sum(mg.values()))})
+        rows.append(row)
+    return rows, notes
 
 
 def _depth_grid(target_mm: float) -> np.ndarray:

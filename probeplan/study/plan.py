@@ -87,6 +87,10 @@ _PROBE = {
     "quantum_yield": _num(minimum=0.0, maximum=1.0, exclusive=True),
     "fwhm_nm": _num(minimum=0.0, exclusive=True),
     "extinction_at_excitation_per_M_cm": _num(minimum=0.0, exclusive=True),
+    "core_diameter_nm": _num(minimum=0.0, maximum=100.0, exclusive=True,
+                             help="core diameter in nm (default: from the material's sizing curve)"),
+    "shell": _str(help="shell compound, e.g. 'ZnS' or 'CdS' (counted in the metal dose)"),
+    "shell_thickness_nm": _num(minimum=0.0, maximum=100.0, help="shell thickness in nm"),
 }
 _TARGET = {
     "tissue": _str(True),

@@ -34,6 +34,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     g.add_argument("--volume-ul", type=float, help="injected volume, uL (gives the dose)")
     p.add_argument("--mass-g", type=float, required=True, help="body mass, g")
     p.add_argument("--stock-uM", type=float, required=True, help="stock concentration of dots, uM")
+    p.add_argument("--material", help="core compound (CdSe, CdTe, CdS, PbS, PbSe): adds mg of metal per kg")
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--diameter", type=float, metavar="NM", help="core diameter, nm (with --material)")
+    g.add_argument("--emission", type=float, metavar="NM", help="emission peak, nm: core diameter from the sizing curve")
+    p.add_argument("--shell", help="shell compound, e.g. ZnS or CdS (with --shell-nm)")
+    p.add_argument("--shell-nm", type=float, default=0.0, metavar="NM", help="shell thickness, nm")
     p.add_argument("--json", action="store_true", help="print JSON")
 
     p = sub.add_parser("list", help="list the materials with their emission ranges and sources")
@@ -79,6 +85,7 @@ def _conc(args: argparse.Namespace) -> dict[str, Any]:
 
 
 def _dose(args: argparse.Namespace) -> dict[str, Any]:
+    from probeplan.errors import input_error
     from probeplan.model import dots
 
     if args.volume_ul is not None:
@@ -87,7 +94,7 @@ def _dose(args: argparse.Namespace) -> dict[str, Any]:
     else:
         dose = float(args.dose_nmol_per_kg)
         volume = dots.dose_volume_ul(dose, args.mass_g, args.stock_uM)
-    return {
+    out = {
         "dose_nmol_per_kg": dose,
         "body_mass_g": args.mass_g,
         "stock_uM": args.stock_uM,
@@ -97,6 +104,32 @@ def _dose(args: argparse.Namespace) -> dict[str, Any]:
         "caution": "compare the volume with your institution's injection-volume limit for the species and route "
                    "(see 'probeplan check'); the animal care committee decides",
     }
+    if args.material is None:
+        if args.diameter is not None or args.emission is not None or args.shell is not None:
+            raise input_error("--material", "missing", "give the core compound with --diameter/--emission/--shell")
+        return out
+    from probeplan.model import metal_dose
+
+    name = dots.material_properties(args.material)["name"]
+    if args.diameter is not None:
+        diameter = float(args.diameter)
+    elif args.emission is not None:
+        diameter = float(dots.diameter_nm(name, dots.exciton_peak_from_emission_nm(name, args.emission)))
+    else:
+        raise input_error("--material", "given without a size", "add --diameter NM or --emission NM")
+    mg = metal_dose.heavy_metal_dose_mg_per_kg(name, diameter, dose, shell=args.shell,
+                                               shell_thickness_nm=args.shell_nm)
+    out.update({
+        "material": name,
+        "core_diameter_nm": diameter,
+        "shell": args.shell or "",
+        "shell_thickness_nm": args.shell_nm,
+        **{f"{el}_mg_per_kg": v for el, v in mg.items()},
+        "metal_mg_per_kg": float(sum(mg.values())),
+        "metal_source": "bulk lattice density x dot volume x metal mass fraction (CRC Handbook densities, IUPAC "
+                        "atomic weights; an estimate)",
+    })
+    return out
 
 
 def run(args: argparse.Namespace) -> int:
