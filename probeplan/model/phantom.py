@@ -140,7 +140,7 @@ class PhantomMedium(Tissue):
         wl = np.asarray(wavelength_nm, dtype=np.float64)
         return self.recipe.mu_a_per_cm(wl)
 
-    def mu_s_prime_per_cm(self, wavelength_nm, *, scattering_model: str = "power") -> np.ndarray:
+    def mu_s_prime_per_cm(self, wavelength_nm, *, scattering_model: str = "power", warn: bool = True) -> np.ndarray:
         wl = np.asarray(wavelength_nm, dtype=np.float64)
         return self.recipe.mu_s_prime_per_cm(wl)
 
