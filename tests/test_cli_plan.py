@@ -88,7 +88,11 @@ def test_plan_writes_a_self_contained_report(tmp_path, capsys):
     assert "http://" not in html and "https://" not in html and "<script" not in html and "<link" not in html
     data = json.loads((out / "report.json").read_text(encoding="utf-8"))
     names = set(data["tables"])
-    assert names == {"checks", "injection", "light", "timing", "imaging", "channels", "animals"}
+    assert names == {"checks", "injection", "light", "timing", "heavy_metal", "imaging", "channels", "animals"}
+    # abundances compared across depths carry a caution (the depth model's spectral shift and attenuation)
+    from probeplan.unmixing.pipeline import DEPTH_COMPARISON_CAUTION
+
+    assert DEPTH_COMPARISON_CAUTION in data["cautions"]
     for name in names:
         with open(out / f"{name}.csv", newline="", encoding="utf-8") as fh:
             rows = list(csv.DictReader(fh))

@@ -55,6 +55,7 @@ def test_single_stack_outputs(tmp_path, capsys):
     np.testing.assert_allclose(ab, expected.astype(np.float32), rtol=1e-6)
     qc = json.loads((out.parent / "a_qc.json").read_text())
     assert qc["n_pixels"] == 40 * 48 and qc["rows_per_chunk"] < 40
+    assert "drift apart with depth" in qc["depth_caution"]
     assert (out.parent / "a_overlay.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     se, _ = read_stack(out.parent / "a_stderr.tif")
     assert se.shape == ab.shape and np.all(se > 0)

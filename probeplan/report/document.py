@@ -248,6 +248,9 @@ def plan_report(evaluation) -> Report:
     if ev.heavy_metals:
         report.cautions.append(HEAVY_METAL_CAUTION.format(metals=" and ".join(
             {"Cd": "cadmium", "Pb": "lead"}.get(m, m) for m in ev.heavy_metals)))
+    from probeplan.unmixing.pipeline import DEPTH_COMPARISON_CAUTION
+
+    report.cautions.append(DEPTH_COMPARISON_CAUTION)
     if any(c.example_only for c in ev.checks):
         report.cautions.append("Some limits are probeplan's example values (marked example only): the institution "
                                "must set its own in a rules file (--rules).")

@@ -14,6 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from probeplan.report.document import LASER_CAUTION, Report, render_html
+from probeplan.unmixing.pipeline import DEPTH_COMPARISON_CAUTION
 from probeplan.report.figures import colour, new_figure
 
 __all__ = ["study_report", "write_study_report", "ANIMAL_CAUTION", "MAX_PANELS"]
@@ -151,7 +152,8 @@ def study_report(result, settings=None) -> Report:
     report = Report("Study results", subtitle=f"{m['animal'].nunique()} animals, groups "
                     f"{', '.join(sorted(m['group'].astype(str).unique()))}, time points "
                     f"{', '.join(f'{t:g}' for t in sorted(m['time_h'].unique()))} h", cautions=[ANIMAL_CAUTION,
-                                                                                               LASER_CAUTION])
+                                                                                               LASER_CAUTION,
+                                                                                               DEPTH_COMPARISON_CAUTION])
     report.summary.append(f"Abundance unit: {result.unit}.")
     tested = g[g["p_welch"].notna()] if len(g) else g
     if len(tested):

@@ -690,6 +690,7 @@ def _imaging(plan: Plan, model: PlanModel) -> dict[str, Any]:
             "leakage_e": prof.leakage_e, "dark_e": prof.dark_e, "sbr": float(prof.sbr[at]),
             "contrast": float(prof.contrast[at]), "snr": float(prof.snr[at]), "blur_fwhm_mm": float(prof.blur_fwhm_mm[at]),
             "escaped_peak_nm": float(prof.escaped_peak_nm[at]),
+            "spectral_shift_nm": float(prof.spectral_shift_nm[at]),
             "depth_at_sbr_threshold_mm": _finite(depth_at_threshold(prof, DEFAULT_SBR_THRESHOLD)),
             "noise_amplification": float(report.noise_amplification[0, k]),
             "unmixed_snr": float(report.unmixed_snr[0, k]),

@@ -40,6 +40,7 @@ from probeplan.errors import ModelValidityWarning, input_error
 from probeplan.unmixing.nnls import STATUS_CONSTRAINED, STATUS_NAN, STATUS_SATURATED, lstsq_pixels, nnls_pixels
 
 __all__ = [
+    "DEPTH_COMPARISON_CAUTION",
     "METHODS",
     "CONDITION_WARN",
     "OFFSET_NAME",
@@ -58,6 +59,13 @@ __all__ = [
 ]
 
 METHODS = ("nnls", "ls", "wls")
+#: Written with every unmixing result and shown in the reports: abundances hold at the references' depth.
+DEPTH_COMPARISON_CAUTION = (
+    "Abundances (and uM from a calibration) hold for targets at the depth and in the tissue of the reference "
+    "spectra or phantom: deeper light is attenuated and its spectrum shifted differently for each probe, so "
+    "abundances of two probes, or of one probe at different depths, drift apart with depth (tens of per cent "
+    "over several mm; see probeplan depth). Compare targets at similar depths, or correct with the depth model."
+)
 
 #: Condition number (columns scaled to unit length) above which a ModelValidityWarning is given.
 CONDITION_WARN = 1e3
@@ -744,7 +752,8 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
             _run_on_cluster(scheduler, chunks, handle, reader, dark_r, flat_r, params)
         qc_summary = qc.summary()
         qc_summary.update(
-            probeplan_version=__version__, caution=RESEARCH_USE_CAUTION, stack=str(info.path),
+            probeplan_version=__version__, caution=RESEARCH_USE_CAUTION, depth_caution=DEPTH_COMPARISON_CAUTION,
+            stack=str(info.path),
             stack_shape=list(info.shape), stack_axes=info.axes, channel_axis=info.channel_axis,
             channel_axis_source=info.channel_axis_source, channel_names=list(info.channel_names or []),
             pixel_size_um=list(info.pixel_size_um) if info.pixel_size_um else None,

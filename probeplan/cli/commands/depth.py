@@ -90,7 +90,7 @@ def run(args: argparse.Namespace) -> int:
     step = max(1, int(round(1.0 / args.depth_step_mm)))
     shown = [r for p in profiles for r in p.rows()[::step]]
     print_table(shown, ["probe", "depth_mm", "signal_e", "background_e", "sbr", "snr", "blur_fwhm_mm",
-                        "escaped_peak_nm", "diffusion_valid"])
+                        "escaped_peak_nm", "spectral_shift_nm", "diffusion_valid"])
     print()
     print_table(summary, ["probe", "depth_at_sbr_threshold_mm", "sbr_at_surface", "snr_at_surface", "saturates"])
     print(f"\nSBR threshold {args.sbr_threshold:g} (common practice, not a standard)")
