@@ -56,7 +56,7 @@ def test_check_fails_with_exit_1_and_names_the_rule(tmp_path, capsys):
     plan = write_plan(tmp_path, ("stock_uM = 20.0\ndose_nmol_per_kg = 20", "stock_uM = 4.0\ndose_nmol_per_kg = 50"))
     assert main(["check", str(plan)]) == 1
     out = capsys.readouterr().out
-    assert "2 of 11 rule checks FAIL: injection.mouse.iv\n" in out
+    assert "2 of 12 rule checks FAIL: injection.mouse.iv\n" in out
     failing = [line for line in out.splitlines() if " FAIL " in line]
     # the probe alone (12.5 mL/kg) and together with the other probe given at the same time (12.5 + 1 mL/kg)
     assert [line.split()[0] for line in failing] == ["injection.mouse.iv"] * 2
