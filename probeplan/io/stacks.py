@@ -29,7 +29,7 @@ from pathlib import Path
 import numpy as np
 
 from probeplan.errors import InputError, input_error
-from probeplan.io.atomic import atomic_path
+from probeplan.io.atomic import atomic_path, write_error
 
 __all__ = [
     "StackInfo",
@@ -525,13 +525,19 @@ class StackWriter:
             for a, i in enumerate(idx):
                 start = start * self.shape[a] + i
             start = (start * self.shape[ra] + r0) * inner * item
-            os.pwrite(self._fd, memoryview(flat[j]).cast("B"), self._offset + start)
+            try:
+                os.pwrite(self._fd, memoryview(flat[j]).cast("B"), self._offset + start)
+            except OSError as exc:  # a full disk, a vanished folder: one line naming the output
+                raise write_error(self.path, exc) from None
         if nrows and r0 + nrows > self.shape[ra]:
             raise input_error("rows", f"{r0}:{r0 + nrows} outside 0:{self.shape[ra]}", "write rows inside the image")
 
     def commit(self) -> Path:
         """Flush, close and rename onto the target; return the target path."""
-        os.fsync(self._fd)
+        try:
+            os.fsync(self._fd)
+        except OSError as exc:
+            raise write_error(self.path, exc) from None
         os.close(self._fd)
         self._fd = None
         self._ctx.__exit__(None, None, None)

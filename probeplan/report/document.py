@@ -22,7 +22,8 @@ from typing import Any
 
 from probeplan import RESEARCH_USE_CAUTION, __version__
 from probeplan.errors import input_error
-from probeplan.io.atomic import write_csv_atomic, write_json_atomic, write_text_atomic
+from probeplan.io.atomic import (make_output_folder, output_batch, write_csv_atomic, write_json_atomic,
+                                 write_text_atomic)
 
 __all__ = ["Report", "Table", "write_report", "format_number", "HEAVY_METAL_CAUTION", "LASER_CAUTION",
            "figure_png_bytes", "plan_report", "report_pdf_bytes"]
@@ -181,8 +182,8 @@ def render_html(report: Report) -> str:
 def write_report(report: Report, out_dir: str | Path) -> dict[str, Path]:
     """Write ``report.html``, ``report.json`` and one CSV per table into ``out_dir``.
 
-    The folder is created if missing.  Every file is written atomically; the
-    HTML is written last, so its presence means the report is complete.
+    The folder is created if missing.  The files are written as one group
+    (:func:`probeplan.io.atomic.output_batch`): all of them appear, or none.
 
     Returns
     -------
@@ -192,7 +193,12 @@ def write_report(report: Report, out_dir: str | Path) -> dict[str, Path]:
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise input_error("--out", f"{str(out)!r} is a file", "give a folder for the report")
-    out.mkdir(parents=True, exist_ok=True)
+    with output_batch():  # every file of the report appears together, or none does
+        make_output_folder(out)
+        return _write_report_files(report, out)
+
+
+def _write_report_files(report: Report, out: Path) -> dict[str, Path]:
     written: dict[str, Path] = {}
     for table in report.tables:
         written[table.name] = write_csv_atomic(out / f"{table.name}.csv", table.rows, table.cols())
