@@ -124,7 +124,7 @@ def test_plan_exits_0_when_rules_fail_and_shows_them(tmp_path, capsys):
         ("depth_mm = 2.0\n", "", r"target\.depth_mm: is missing"),  # missing key
         ("size = 10", 'size = "ten"', r"animals\.groups\[0\]\.size: expected a number"),  # wrong type
         # a negative mass
-        ("body_mass_g = [20.0, 30.0]", "body_mass_g = [-20.0, 30.0]", r"animals\.body_mass_g\[0\]: got -20, expected > 0"),
+        ("body_mass_g = [20.0, 30.0]", "body_mass_g = [-20.0, 30.0]", r"animals\.body_mass_g\[0\]: got -20, allowed above 0 up to 5000"),
         # a dose in the wrong unit
         ("dose_nmol_per_kg = 20", "dose_mg_per_kg = 20",
          r"probes\[0\]\.dose_mg_per_kg: unknown key 'dose_mg_per_kg': this plan takes 'dose_nmol_per_kg'"),

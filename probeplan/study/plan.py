@@ -16,8 +16,15 @@ A plan file has these tables (units are in the key names)::
     [analysis]     stack, references, rois, method ("nnls" | "ls" | "wls")
     [statistics]   effect_size, sd, alpha, power, attrition   (optional: the primary comparison)
 
+Every number has a stated range (the schema below is the one table of them): physical
+limits where they exist (wavelengths of the far-red to NIR-II windows, a quantum yield, a
+probability) and practical limits elsewhere, far beyond any real small-animal study but small
+enough that no value can make an evaluation run for hours or exhaust memory; lists and arrays
+of tables have a largest length too.  They are checked before any work.
+
 Every refusal names the file, the line, the key path and the fix, e.g.
-``plan.toml:14: probes[2].dose_nmol_per_kg: expected a number, got "ten"; ...``.
+``plan.toml:14: probes[2].dose_nmol_per_kg: expected a number, got "ten"; ...`` or
+``plan.toml:9: animals.sessions_per_animal: got 1e+06, allowed 1 to 1000; ...``.
 Unknown keys are refused with "did you mean".  Paths in ``[analysis]`` are
 relative to the plan file's folder.
 """
@@ -33,7 +40,7 @@ from probeplan.errors import input_error
 from probeplan.catalog.library import did_you_mean
 from probeplan.io.tomlsource import format_path, line_of, load_toml, parse_toml_text
 
-__all__ = ["Plan", "load_plan", "parse_plan_text", "SCHEMA", "ROUTES", "SPECIES"]
+__all__ = ["Plan", "load_plan", "parse_plan_text", "SCHEMA", "ROUTES", "SPECIES", "MAX_TABLES"]
 
 #: Numbers at or beyond this size (TOML's 64-bit integer range) are refused as too large.
 _LARGEST_INTEGER = 2**63
@@ -52,13 +59,22 @@ class _Field:
     exclusive_minimum: bool = False
     choices: tuple[str, ...] | None = None
     help: str = ""
+    max_items: int | None = None  #: largest length of a list
+
+
+#: Largest number of tables in each array of tables (practical limits).
+MAX_TABLES = {"probes": 16, "groups": 100, "channels": 64}
 
 
 def _num(required=False, default=None, minimum=None, maximum=None, exclusive=False, help=""):
+    if maximum is None:
+        raise ValueError("every number in the plan needs a maximum")  # pragma: no cover - schema rule
     return _Field("number", required, default, minimum, maximum, exclusive, None, help)
 
 
 def _int(required=False, default=None, minimum=None, maximum=None, help=""):
+    if maximum is None:
+        raise ValueError("every number in the plan needs a maximum")  # pragma: no cover - schema rule
     return _Field("integer", required, default, minimum, maximum, False, None, help)
 
 
@@ -68,25 +84,25 @@ def _str(required=False, default=None, choices=None, help=""):
 
 _STUDY = {"title": _str(True, help="a title of your own"), "description": _str(default=""),
           "protocol_id": _str(default="")}
-_GROUP = {"name": _str(True), "size": _int(True, minimum=1, help="animals in the group")}
+_GROUP = {"name": _str(True), "size": _int(True, minimum=1, maximum=1000, help="animals in the group")}
 _ANIMALS = {
     "species": _str(True, choices=SPECIES),
     "strain": _str(default=""),
     "body_mass_g": _Field("pair", True, None, 0.0, 5000.0, True, help="[lightest, heaviest] in g"),
-    "sessions_per_animal": _int(default=1, minimum=1),
-    "session_interval_h": _num(default=24.0, minimum=0.0),
+    "sessions_per_animal": _int(default=1, minimum=1, maximum=1000),
+    "session_interval_h": _num(default=24.0, minimum=0.0, maximum=8760.0, help="hours, at most a year"),
 }
 _PROBE = {
     "name": _str(default=""),
     "material": _str(True),
-    "emission_peak_nm": _num(True, minimum=0.0, exclusive=True),
-    "stock_uM": _num(True, minimum=0.0, exclusive=True, help="stock concentration in µM"),
-    "dose_nmol_per_kg": _num(True, minimum=0.0, exclusive=True, help="dose in nmol per kg body mass"),
+    "emission_peak_nm": _num(True, minimum=200.0, maximum=3000.0),
+    "stock_uM": _num(True, minimum=0.0, maximum=1e6, exclusive=True, help="stock concentration in µM"),
+    "dose_nmol_per_kg": _num(True, minimum=0.0, maximum=1e6, exclusive=True, help="dose in nmol per kg body mass"),
     "route": _str(True, choices=ROUTES),
-    "injection_time_h": _num(default=0.0),
+    "injection_time_h": _num(default=0.0, minimum=-8760.0, maximum=8760.0),
     "quantum_yield": _num(minimum=0.0, maximum=1.0, exclusive=True),
-    "fwhm_nm": _num(minimum=0.0, exclusive=True),
-    "extinction_at_excitation_per_M_cm": _num(minimum=0.0, exclusive=True),
+    "fwhm_nm": _num(minimum=0.0, maximum=1000.0, exclusive=True),
+    "extinction_at_excitation_per_M_cm": _num(minimum=0.0, maximum=1e9, exclusive=True),
     "core_diameter_nm": _num(minimum=0.0, maximum=100.0, exclusive=True,
                              help="core diameter in nm (default: from the material's sizing curve)"),
     "shell": _str(help="shell compound, e.g. 'ZnS' or 'CdS' (counted in the metal dose)"),
@@ -96,37 +112,38 @@ _TARGET = {
     "tissue": _str(True),
     "depth_mm": _num(True, minimum=0.0, maximum=100.0),
     "size_mm": _num(True, minimum=0.0, maximum=100.0, exclusive=True),
-    "uptake_ratio": _num(True, minimum=1.0, help="target-to-background uptake ratio, >= 1"),
-    "concentration_uM": _num(default=0.5, minimum=0.0, exclusive=True, help="expected probe concentration in target"),
-    "tumour_diameter_mm": _num(minimum=0.0, exclusive=True, help="largest planned tumour diameter"),
+    "uptake_ratio": _num(True, minimum=1.0, maximum=1e6, help="target-to-background uptake ratio, >= 1"),
+    "concentration_uM": _num(default=0.5, minimum=0.0, maximum=1e6, exclusive=True,
+                             help="expected probe concentration in target"),
+    "tumour_diameter_mm": _num(minimum=0.0, maximum=100.0, exclusive=True, help="largest planned tumour diameter"),
 }
 _CHANNEL = {"name": _str(True), "filter": _str(True, help="e.g. '720/40' or a library filter"),
             "exposure_s": _num(True, minimum=0.0, maximum=3600.0, exclusive=True)}
 _ACQUISITION = {
     "source": _str(default="laser", choices=("laser", "led")),
-    "wavelength_nm": _num(True, minimum=0.0, exclusive=True),
-    "linewidth_nm": _num(default=None, minimum=0.0, exclusive=True),
-    "irradiance_mw_per_cm2": _num(minimum=0.0, exclusive=True),
-    "power_mw": _num(minimum=0.0, exclusive=True),
-    "spot_diameter_mm": _num(minimum=0.0, exclusive=True),
+    "wavelength_nm": _num(True, minimum=200.0, maximum=3000.0),
+    "linewidth_nm": _num(default=None, minimum=0.0, maximum=500.0, exclusive=True),
+    "irradiance_mw_per_cm2": _num(minimum=0.0, maximum=1e5, exclusive=True),
+    "power_mw": _num(minimum=0.0, maximum=1e6, exclusive=True),
+    "spot_diameter_mm": _num(minimum=0.0, maximum=1000.0, exclusive=True),
     "beam_profile": _str(default="top-hat", choices=("top-hat", "gaussian")),
     "camera": _str(True),
     "f_number": _num(default=2.0, minimum=0.5, maximum=64.0),
     "magnification": _num(default=0.1, minimum=0.0, maximum=100.0, exclusive=True),
     "binning": _int(default=1, minimum=1, maximum=64),
-    "positions": _int(default=1, minimum=1),
-    "time_points_h": _Field("numbers", True, None, 0.0, None, False),
-    "overhead_min": _num(default=10.0, minimum=0.0, help="anaesthesia induction, positioning, recovery"),
+    "positions": _int(default=1, minimum=1, maximum=100),
+    "time_points_h": _Field("numbers", True, None, 0.0, 8760.0, False, max_items=1000),
+    "overhead_min": _num(default=10.0, minimum=0.0, maximum=1440.0, help="anaesthesia induction, positioning, recovery"),
 }
 _ANALYSIS = {
     "stack": _str(default=""),
     "references": _str(default=""),
-    "rois": _Field("strings", False, ()),
+    "rois": _Field("strings", False, (), max_items=1000),
     "method": _str(default="nnls", choices=("nnls", "ls", "wls")),
 }
 _STATISTICS = {
-    "effect_size": _num(True, minimum=0.0, exclusive=True, help="difference of group means to detect"),
-    "sd": _num(True, minimum=0.0, exclusive=True, help="standard deviation, same unit as effect_size"),
+    "effect_size": _num(True, minimum=0.0, maximum=1e12, exclusive=True, help="difference of group means to detect"),
+    "sd": _num(True, minimum=0.0, maximum=1e12, exclusive=True, help="standard deviation, same unit as effect_size"),
     "alpha": _num(default=0.05, minimum=0.0, maximum=0.5, exclusive=True),
     "power": _num(default=0.8, minimum=0.5, maximum=0.999),
     "attrition": _num(default=0.0, minimum=0.0, maximum=0.9, help="expected fraction of animals lost"),
@@ -205,7 +222,8 @@ class _Validator:
                 if abs(v) >= _LARGEST_INTEGER:
                     raise OverflowError
             except OverflowError:
-                raise self.fail(path, "number too large", f"write a plain number{_unit_hint(path)}") from None
+                raise self.fail(path, f"number too large, allowed {_describe_range(spec)}",
+                                f"write a plain number{_unit_hint(path)}") from None
             if not math.isfinite(v):
                 raise self.fail(path, f"got {_show(raw)}", "write a finite number")
             self.bounds(path, spec, v)
@@ -221,6 +239,7 @@ class _Validator:
         if spec.kind in ("numbers", "pair"):
             if not isinstance(raw, list) or not raw:
                 raise self.fail(path, f"expected a list of numbers, got {_show(raw)}", "write e.g. [1, 4, 24]")
+            self.length(path, spec.max_items, raw)
             out = [self.value(path + (i,), _Field("number", True, None, spec.minimum, spec.maximum,
                                                   spec.exclusive_minimum), v) for i, v in enumerate(raw)]
             if spec.kind == "pair":
@@ -231,17 +250,19 @@ class _Validator:
         if spec.kind == "strings":
             if not isinstance(raw, list) or not all(isinstance(v, str) for v in raw):
                 raise self.fail(path, f"expected a list of text, got {_show(raw)}", 'write e.g. ["a", "b"]')
+            self.length(path, spec.max_items, raw)
             return list(raw)
         raise AssertionError(spec.kind)  # pragma: no cover
 
+    def length(self, path, max_items: int | None, raw: list) -> None:
+        if max_items is not None and len(raw) > max_items:
+            raise self.fail(path, f"{len(raw)} entries, allowed at most {max_items}", "shorten the list")
+
     def bounds(self, path, spec: _Field, v: float) -> None:
-        if spec.minimum is not None:
-            bad = v <= spec.minimum if spec.exclusive_minimum else v < spec.minimum
-            if bad:
-                rel = ">" if spec.exclusive_minimum else ">="
-                raise self.fail(path, f"got {v:g}, expected {rel} {spec.minimum:g}", f"give a value {rel} {spec.minimum:g}")
-        if spec.maximum is not None and v > spec.maximum:
-            raise self.fail(path, f"got {v:g}, expected <= {spec.maximum:g}", f"check the unit{_unit_hint(path)}")
+        low_bad = spec.minimum is not None and (v <= spec.minimum if spec.exclusive_minimum else v < spec.minimum)
+        if low_bad or (spec.maximum is not None and v > spec.maximum):
+            raise self.fail(path, f"got {v:g}, allowed {_describe_range(spec)}",
+                            f"give a value{_unit_hint(path)} in that range" if low_bad else f"check the unit{_unit_hint(path)}")
 
     def table(self, path: tuple[Any, ...], fields: dict[str, _Field], subs: dict[str, dict[str, _Field]],
               raw: Any) -> dict[str, Any]:
@@ -263,8 +284,18 @@ class _Validator:
             items = raw.get(key, [])
             if not isinstance(items, list):
                 raise self.fail(path + (key,), "expected a list of tables", f"write each as [[{format_path(path + (key,))}]]")
+            self.length(path + (key,), MAX_TABLES.get(key), items)
             out[key] = [self.table(path + (key, i), sub, {}, item) for i, item in enumerate(items)]
         return out
+
+
+def _describe_range(spec: _Field) -> str:
+    """The field's allowed range in words: ``"1 to 1000"``, ``"above 0 up to 5000"``."""
+    if spec.minimum is None:
+        return f"up to {spec.maximum:g}"
+    if spec.exclusive_minimum:
+        return f"above {spec.minimum:g}" + ("" if spec.maximum is None else f" up to {spec.maximum:g}")
+    return f"{spec.minimum:g} or more" if spec.maximum is None else f"{spec.minimum:g} to {spec.maximum:g}"
 
 
 def _help(spec: _Field) -> str:
@@ -315,6 +346,7 @@ def _validate(data: dict[str, Any], text: str, source: str) -> dict[str, Any]:
             items = data[key]
             if not isinstance(items, list) or not items:
                 raise v.fail((key,), "expected one or more tables", f"write each as [[{key}]]")
+            v.length((key,), MAX_TABLES.get(key), items)
             out[key] = [v.table((key, i), fields, subs, item) for i, item in enumerate(items)]
         else:
             out[key] = v.table((key,), fields, subs, data[key])
