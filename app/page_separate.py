@@ -183,7 +183,7 @@ def separate_view() -> None:
         c = st.columns(4)
         c[0].metric("condition number of the references", fmt(qc["condition_number"]))
         c[1].metric("pixels", f"{qc['n_pixels']:,}")
-        c[2].metric("saturated or missing pixels", f"{qc['n_saturated'] + qc['n_nan']:,}")
+        c[2].metric("saturated or missing pixels", f"{qc['n_saturated'] + qc['n_invalid']:,}")
         c[3].metric("residual RMS (counts)", fmt(qc["residual_rms"]["rms"]))
         st.markdown("**Abundance maps**")
         st.image(maps_png(result["abundances"], result["names"], "abundance (counts, all channels)"),

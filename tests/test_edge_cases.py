@@ -24,6 +24,7 @@ from probeplan.study import safety as sf
 from probeplan.model import tissue as ti
 from probeplan.model import transport as tr
 from probeplan.errors import InputError, ModelValidityWarning, ProbeplanWarning
+from probeplan.unmixing.nnls import STATUS_NAN
 from probeplan.unmixing.pipeline import CONDITION_WARN, check_references, unmix, unmix_stack
 
 # Three Gaussian-like emission bands sampled by four channels (invented, common practice, no source).
@@ -40,7 +41,7 @@ def test_all_zero_pixels_give_zero_abundance_and_finite_errors(method):
     # the variance floor (1 count) keeps the standard errors finite and positive where the signal is zero
     assert np.isfinite(r.standard_error).all() and (r.standard_error > 0).all()
     np.testing.assert_array_equal(r.residual_rms, 0.0)
-    assert r.qc["n_nan"] == 0 and r.qc["n_saturated"] == 0
+    assert r.qc["n_invalid"] == 0 and r.qc["n_saturated"] == 0
 
 
 def test_saturated_pixels_are_nan_and_counted_others_untouched():
@@ -137,7 +138,59 @@ def test_nan_pixels_are_nan_in_the_output_and_counted():
     stack[2, 1, 0] = np.nan
     r = unmix_stack(stack, M4x3)
     assert np.isnan(r.abundances[:, 1, 0]).all() and np.isfinite(r.abundances[:, 0, 0]).all()
-    assert r.qc["n_nan"] == 1
+    assert r.qc["n_invalid"] == 1
+
+
+@pytest.mark.parametrize("method", ["nnls", "ls", "wls"])
+@pytest.mark.parametrize("engine", ["numba", "numpy"])
+def test_infinite_pixels_are_invalid_not_constrained(method, engine):
+    """+inf and -inf in a float stack are masked and counted as invalid, like NaN (never "constrained")."""
+    rng = np.random.default_rng(3)
+    stack = rng.poisson(50.0, (4, 6, 7)).astype(np.float32)
+    stack[0, 1, 1], stack[3, 2, 5], stack[1, 4, 0], stack[2, 5, 6] = np.inf, -np.inf, np.nan, np.inf
+    bad = np.zeros((6, 7), bool)
+    bad[1, 1] = bad[2, 5] = bad[4, 0] = bad[5, 6] = True
+    r = unmix_stack(stack, M4x3, method=method, engine=engine, saturation=np.inf if method != "wls" else None)
+    assert r.qc["n_invalid"] == 4 and (r.status[bad] == STATUS_NAN).all()
+    assert np.isnan(r.abundances[:, bad]).all() and np.isnan(r.standard_error[:, bad]).all()
+    assert np.isfinite(r.abundances[:, ~bad]).all() and np.isfinite(r.residual_rms[~bad]).all()
+    # the valid pixels are solved exactly as without the bad ones (numpy.linalg.lstsq for ls)
+    clean = unmix_stack(np.where(np.isfinite(stack), stack, 0.0), M4x3, method=method, engine=engine)
+    np.testing.assert_allclose(r.abundances[:, ~bad], clean.abundances[:, ~bad], rtol=1e-6)
+    if method == "ls":
+        want = np.linalg.lstsq(M4x3, stack.reshape(4, -1)[:, ~bad.ravel()].astype(np.float64), rcond=None)[0]
+        np.testing.assert_allclose(r.abundances[:, ~bad], want, rtol=1e-5, atol=1e-4)
+
+
+def test_infinite_pixels_in_a_file_reported_in_the_table_and_strict_qc_json(tmp_path, capsys):
+    import json
+
+    import tifffile
+
+    from probeplan.cli.main import main
+
+    stack = np.full((4, 8, 8), 100.0, np.float32)
+    stack[1, 0, :] = np.inf  # 8 pixels
+    stack[2, 7, :3] = -np.inf  # 3 pixels
+    stack[:, 3, 3] = np.inf  # 1 pixel, every channel
+    tifffile.imwrite(tmp_path / "s.tif", stack, photometric="minisblack")
+    (tmp_path / "r.csv").write_text("channel,a,b,c\n" + "".join(
+        f"ch{c},{','.join(str(v) for v in M4x3[c])}\n" for c in range(4)))
+    assert main(["unmix", str(tmp_path / "s.tif"), "--references", str(tmp_path / "r.csv"), "--channel-axis", "0",
+                 "--out", str(tmp_path / "a.ome.tif"), "--json"]) == 0
+    row = json.loads(capsys.readouterr().out)["stacks"][0]
+    assert row["invalid"] == 12
+    qc = json.loads((tmp_path / "a_qc.json").read_text(), parse_constant=lambda c: pytest.fail(f"{c} in QC JSON"))
+    assert qc["n_invalid"] == 12 and qc["n_pixels"] == 64 and qc["n_constrained"] + 12 <= 64
+    assert np.isfinite(qc["residual_rms"]["max"])
+
+    # every pixel invalid: the statistics have no value; null in strict JSON, with a note naming them
+    tifffile.imwrite(tmp_path / "all.tif", np.full((4, 4, 4), np.inf, np.float32), photometric="minisblack")
+    assert main(["unmix", str(tmp_path / "all.tif"), "--references", str(tmp_path / "r.csv"), "--channel-axis", "0",
+                 "--out", str(tmp_path / "all.ome.tif")]) == 0
+    qc = json.loads((tmp_path / "all_qc.json").read_text(), parse_constant=lambda c: pytest.fail(f"{c} in QC JSON"))
+    assert qc["n_invalid"] == 16 and qc["residual_rms"]["rms"] is None
+    assert "residual_rms.rms: NaN" in qc["null_values"]
 
 
 # --------------------------------------------------------------------------- model inputs sweep

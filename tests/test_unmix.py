@@ -102,7 +102,7 @@ def test_nan_and_saturated_pixels():
     f = stack.astype(np.float64)
     f[1, 1, 1] = np.nan
     res = unmix_stack(f, M)
-    assert res.status[1, 1] == STATUS_NAN and res.qc["n_nan"] == 1
+    assert res.status[1, 1] == STATUS_NAN and res.qc["n_invalid"] == 1
     assert np.isnan(res.abundances[:, 1, 1]).all() and np.isnan(res.standard_error[:, 1, 1]).all()
     assert res.qc["n_saturated"] == 0  # float stacks have no default full scale
 
@@ -112,7 +112,7 @@ def test_qc_summary_contents():
     rng = np.random.default_rng(5)
     stack = rng.poisson(50.0, (8, 10, 10)).astype(np.float64)
     qc = unmix_stack(stack, M).qc
-    for key in ("condition_number", "fraction_constrained", "residual_rms", "n_saturated", "n_nan", "n_pixels"):
+    for key in ("condition_number", "fraction_constrained", "residual_rms", "n_saturated", "n_invalid", "n_pixels"):
         assert key in qc
     assert qc["condition_number"] == pytest.approx(check_references(M))
     assert 0 <= qc["fraction_constrained"] <= 1

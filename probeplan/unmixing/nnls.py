@@ -20,7 +20,8 @@ Two engines give the same answer (both in float64 arithmetic whatever the input 
     and each pixel keeps the feasible one with the lowest objective.
 
 Status codes returned per pixel: :data:`STATUS_INTERIOR` (no constraint active),
-:data:`STATUS_CONSTRAINED`, :data:`STATUS_NAN` (a channel was NaN; output NaN),
+:data:`STATUS_CONSTRAINED`, :data:`STATUS_NAN` (a channel was NaN, +inf or -inf: the pixel is
+invalid; output NaN),
 :data:`STATUS_SATURATED` (a channel reached the saturation level; output NaN).
 """
 
@@ -203,7 +204,7 @@ def _slow_pixels(Y, acc, bad, i0, n, Mt, G, sat, check_sat, nonneg, tol_rel, nor
         for c in range(C):
             v = np.float64(Y[c, i0 + i])
             y[c] = v
-            if v != v:
+            if v - v != 0.0:  # NaN or +-inf: invalid
                 isnan = True
             elif check_sat and v >= sat:
                 issat = True
@@ -276,8 +277,7 @@ def _nnls_kernel(Y, P, Mt, G, sat, check_sat, nonneg, tol_rel, max_enum, out, st
                 out[k, i0 + i] = v
                 if nonneg:
                     bad[i] |= not v >= 0.0
-                else:
-                    bad[i] |= v != v
+                bad[i] |= v - v != 0.0  # NaN or +-inf: looked at pixel by pixel
         nbad = 0
         for i in range(n):
             status[i0 + i] = 0
@@ -298,7 +298,7 @@ def _numpy_engine(Y, P, M, sat, check_sat, nonneg, out, status):
     step = max(1, 2**18 // max(1, 2**K if nonneg else 1))
     for i0 in range(0, N, step):
         y = np.asarray(Y[:, i0 : i0 + step], dtype=np.float64)
-        nan = np.isnan(y).any(axis=0)
+        nan = ~np.isfinite(y).all(axis=0)  # NaN or +-inf in a channel: invalid
         satm = (y >= sat).any(axis=0) & ~nan if check_sat else np.zeros(y.shape[1], dtype=bool)
         x = P @ y
         st = np.zeros(y.shape[1], dtype=np.uint8)

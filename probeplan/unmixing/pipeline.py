@@ -87,7 +87,8 @@ class UnmixResult:
     residual_rms : ndarray, shape (...)
         Root mean square over channels of ``y − M a`` (counts).
     status : ndarray of uint8, shape (...)
-        0 no constraint active, 1 a constraint active, 2 NaN input, 3 saturated.
+        0 no constraint active, 1 a constraint active, 2 invalid input (NaN, +inf or -inf in a
+        channel), 3 saturated.
     component_names : list of str
     qc : dict
     """
@@ -268,9 +269,10 @@ def unmix_block(Y, params: _Params, dark=None, flat=None):
         w = 1.0 / var
         A = np.einsum("ck,cn,cj->nkj", M, w, M)
         rhs = np.einsum("ck,cn->nk", M, w * y)
-        nan = np.isnan(y).any(axis=0)
+        nan = ~np.isfinite(y).all(axis=0)  # NaN or infinite in any channel: invalid
         A[nan] = np.eye(K)
         rhs[nan] = 0.0
+        A[~np.isfinite(A).all(axis=(1, 2))] = np.eye(K)
         x = np.linalg.solve(A, rhs[..., None])[..., 0].T
         status = np.zeros(y.shape[1], dtype=np.uint8)
         status[nan] = STATUS_NAN
@@ -281,7 +283,7 @@ def unmix_block(Y, params: _Params, dark=None, flat=None):
         if corrected and np.dtype(Y.dtype) == np.float32:
             x = x.astype(np.float32)
     if satmask is not None:
-        satmask &= status != STATUS_NAN
+        satmask &= status < STATUS_NAN
         status[satmask] = STATUS_SATURATED
         x[:, satmask] = np.nan
     if not params.errors:
@@ -320,7 +322,7 @@ class QcAccumulator:
             "components": self.names,
             "n_channels": int(M.shape[0]),
             "condition_number": float(condition_number),
-            "n_pixels": 0, "n_nan": 0, "n_saturated": 0, "n_constrained": 0,
+            "n_pixels": 0, "n_invalid": 0, "n_saturated": 0, "n_constrained": 0,
         }
         self._r = [0, 0.0, 0.0, 0.0]  # n, sum, sum of squares, max
         self._a = np.zeros((len(self.names), 3))  # n finite, sum, zero count
@@ -328,7 +330,7 @@ class QcAccumulator:
     def add(self, x, resid, status) -> None:
         st = status.reshape(-1)
         self.qc["n_pixels"] += int(st.size)
-        self.qc["n_nan"] += int((st == STATUS_NAN).sum())
+        self.qc["n_invalid"] += int((st == STATUS_NAN).sum())
         self.qc["n_saturated"] += int((st == STATUS_SATURATED).sum())
         self.qc["n_constrained"] += int((st == STATUS_CONSTRAINED).sum())
         xa = np.asarray(x, dtype=np.float64).reshape(len(self.names), -1)
@@ -345,7 +347,7 @@ class QcAccumulator:
 
     def summary(self) -> dict:
         qc = dict(self.qc)
-        n = max(qc["n_pixels"] - qc["n_nan"] - qc["n_saturated"], 0)
+        n = max(qc["n_pixels"] - qc["n_invalid"] - qc["n_saturated"], 0)
         qc["fraction_constrained"] = qc["n_constrained"] / n if n else float("nan")
         qc["mean_abundance"] = {k: (float(self._a[i, 1] / self._a[i, 0]) if self._a[i, 0] else float("nan"))
                                 for i, k in enumerate(self.names)}
@@ -659,7 +661,7 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
 
     from probeplan import RESEARCH_USE_CAUTION, __version__
     from probeplan.io.stacks import StackWriter, open_stack
-    from probeplan.io.atomic import refuse_input_paths, write_json_atomic
+    from probeplan.io.atomic import check_outputs, refuse_input_paths, write_json_atomic
     from probeplan.unmixing.overlay import downsample_mean, overlay_factor, write_overlay_png
     from probeplan.unmixing.roi import Roi, RoiAccumulator, parse_rectangle, rois_from_labels, write_roi_csv
 
@@ -707,6 +709,7 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     if src and Path(str(src)).is_file():
         inputs.append(src)
     refuse_input_paths(paths.values(), inputs, option="--out")
+    check_outputs(paths.values())  # an existing output not ours is refused before any work
     sat = default_saturation(info.dtype) if saturation is None else float(saturation)
     params = _Params(M, method, sat, float(gain_e_per_count), float(read_noise_e), float(variance_floor_counts),
                      engine, True)
