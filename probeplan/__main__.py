@@ -1,7 +1,5 @@
 """``python -m probeplan``."""
 
-import sys
+from probeplan.cli.main import console
 
-from probeplan.cli.main import main
-
-sys.exit(main())
+console()

@@ -13,6 +13,8 @@ tests/test_demo.py); ``app`` starts a server, so only its bad options are tried.
 from __future__ import annotations
 
 import hashlib
+import json
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -314,3 +316,119 @@ def test_every_command_is_walked():
     walked = {"depth", "channels", "design", "unmix", "plan", "check", "library", "demo", "app", "dots", "study",
               "calibrate", "phantom"}
     assert set(COMMANDS) <= walked, f"new subcommands to add to the walk: {set(COMMANDS) - walked}"
+
+
+# --------------------------------------------------------------------------- huge numbers under a memory limit
+
+#: A memory ceiling for the sweeps below: far above what a refusal needs (about 110 MiB), far below what
+#: building a plan with 9.2e18 sessions or a depth grid of 1e300 points would take.
+_MEMORY_LIMIT_MB = 1024
+_HUGE = ("9223372036854775807", "1e300")
+
+_SWEEP_SCRIPT = """
+import json, resource, sys
+limit = {limit} * 2**20
+resource.setrlimit(resource.RLIMIT_AS, (limit, limit))
+import probeplan.cli.commands.app as app
+app._launch = lambda command: 99
+from probeplan.cli.main import main
+results = []
+for argv in json.loads(sys.stdin.read()):
+    code = main(argv)
+    results.append(code)
+print(json.dumps(results))
+"""
+
+
+def _sweep(cases: list[list[str]], tmp_path: Path) -> tuple[list[int], str]:
+    """Run ``main`` on every argv in one interpreter under the memory limit; exit codes and stderr."""
+    proc = subprocess.run([sys.executable, "-c", _SWEEP_SCRIPT.format(limit=_MEMORY_LIMIT_MB)], input=json.dumps(cases),
+                          capture_output=True, text=True, timeout=300, cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    return json.loads(proc.stdout.strip().splitlines()[-1]), proc.stderr
+
+
+def _plan_with(text: str, section: str, key: str, value: str) -> str:
+    """The demo plan with ``key = value`` set in the first ``[section]`` / ``[[section]]`` table."""
+    lines = text.splitlines()
+    header = next(i for i, line in enumerate(lines) if line.strip() in (f"[{section}]", f"[[{section}]]"))
+    end = next((i for i in range(header + 1, len(lines)) if lines[i].lstrip().startswith("[")), len(lines))
+    for i in range(header + 1, end):
+        if lines[i].split("=")[0].strip() == key:
+            lines[i] = f"{key} = {value}"
+            break
+    else:
+        lines.insert(header + 1, f"{key} = {value}")
+    return "\n".join(lines) + "\n"
+
+
+def _plan_numeric_fields():
+    from probeplan.study.plan import SCHEMA
+
+    for section, (fields, _, subs) in SCHEMA.items():
+        for key, spec in fields.items():
+            if spec.kind in ("number", "integer", "numbers", "pair"):
+                yield section, key, spec
+        for sub, sub_fields in subs.items():
+            for key, spec in sub_fields.items():
+                if spec.kind in ("number", "integer", "numbers", "pair"):
+                    yield f"{section}.{sub}", key, spec
+
+
+def test_every_plan_number_has_a_stated_range():
+    fields = list(_plan_numeric_fields())
+    assert len(fields) >= 30
+    missing = [f"{s}.{k}" for s, k, spec in fields if spec.maximum is None or spec.minimum is None]
+    assert not missing, f"plan numbers without a range: {missing}"
+
+
+def test_huge_plan_numbers_are_refused_naming_line_and_range_within_a_memory_limit(tmp_path):
+    # sessions_per_animal = 9223372036854775807 (valid TOML) once grew to 24 GB before the kernel killed it
+    base = (DEMO / "plan.toml").read_text()
+    cases, labels = [], []
+    for section, key, spec in _plan_numeric_fields():
+        for huge in _HUGE:
+            value = f"[{huge}, {huge}]" if spec.kind in ("numbers", "pair") else huge
+            path = tmp_path / f"{section}.{key}.{huge[:4]}.toml"
+            path.write_text(_plan_with(base, section, key, value))
+            cases.append(["check", str(path)])
+            labels.append(f"{section}.{key}={huge}")
+    codes, err = _sweep(cases, tmp_path)
+    assert codes == [2] * len(cases), [lab for lab, c in zip(labels, codes, strict=True) if c != 2]
+    lines = err.strip().splitlines()
+    assert len(lines) == len(cases), err[-3000:]
+    for label, line in zip(labels, lines, strict=True):
+        section, key = label.split("=")[0].rsplit(".", 1)
+        assert re.search(rf"\.toml:\d+: {re.escape(section.split('.')[0])}.*{key}(\[\d\])?: .*allowed", line), (label, line)
+        assert "Traceback" not in line
+
+
+def test_every_numeric_option_has_a_stated_range():
+    from probeplan.cli.common import OPTION_RANGES, numeric_options
+    from probeplan.cli.main import build_parser
+
+    missing = sorted({f"{a.option_strings[-1]} ({a.dest})" for a, _ in numeric_options(build_parser())
+                      if a.dest not in OPTION_RANGES})
+    assert not missing, f"numeric options without a range in probeplan.cli.common.OPTION_RANGES: {missing}"
+
+
+def test_huge_option_values_are_refused_with_the_range_within_a_memory_limit(tmp_path):
+    cases, labels = [], []
+    for label, (base, options) in _NUMERIC.items():
+        for option in options:
+            if option == "--saturation":  # any full scale is valid (inf: no saturation)
+                continue
+            for huge in _HUGE:
+                argv = _with_option(base, option, huge)
+                if label == "unmix":
+                    argv += ["--out", str(tmp_path / "out.ome.tif")]
+                cases.append([str(a) for a in argv])
+                labels.append(f"{label} {option}={huge}")
+    codes, err = _sweep(cases, tmp_path)
+    assert codes == [2] * len(cases), [lab for lab, c in zip(labels, codes, strict=True) if c != 2]
+    lines = err.strip().splitlines()
+    assert len(lines) == len(cases), err[-3000:]
+    for label, line in zip(labels, lines, strict=True):
+        option = label.split(" ")[-1].split("=")[0]
+        assert option in line or "invalid" in line, (label, line)
+    assert not (tmp_path / "out.ome.tif").exists()

@@ -6,7 +6,10 @@ while a later stack is being computed or written).  Afterwards every file in the
 must be complete (TIFFs readable with tifffile, JSON loadable, PNGs whole, manifest checksums
 matching) with no temporary ``.*.part`` file left; a rerun with ``--resume`` must skip the
 stacks already done (their files untouched) and finish the rest, and the final outputs must be
-bit-for-bit those of an uninterrupted run.  Also here: no command writes to one of its inputs.
+bit-for-bit those of an uninterrupted run.  SIGKILL, which leaves the process no chance to clean
+up, may leave only a hidden staging folder (removed by the next run); every visible file belongs
+to a stack recorded as done, and ``--resume`` redoes a stack whose output was damaged afterwards.
+Also here: no command writes to one of its inputs.
 """
 
 from __future__ import annotations
@@ -76,10 +79,14 @@ def _check_complete(folder: Path) -> dict:
             assert raw.startswith(PNG_SIGNATURE) and raw.endswith(PNG_END), p
     manifest = folder / MANIFEST
     entries = json.loads(manifest.read_text(encoding="utf-8"))["entries"] if manifest.exists() else {}
-    for entry in entries.values():
+    done = {k: e for k, e in entries.items() if e["status"] == "done"}
+    for entry in done.values():
         for path, digest in entry["outputs"].items():
             assert _sha256(Path(path)) == digest, f"{path} does not match the manifest"
-    return entries
+    recorded = {Path(p).name for e in done.values() for p in e["outputs"]} | {MANIFEST}
+    unrecorded = sorted(p.name for p in folder.iterdir() if p.name not in recorded)
+    assert not unrecorded, f"files that look finished but no finished stack records: {unrecorded}"
+    return done
 
 
 def _wait_for_first_finished(proc: subprocess.Popen, manifest: Path, timeout_s: float = 120.0) -> None:
@@ -89,7 +96,8 @@ def _wait_for_first_finished(proc: subprocess.Popen, manifest: Path, timeout_s: 
             pytest.fail(f"the run ended (exit {proc.returncode}) before it could be interrupted")
         if manifest.exists():
             try:
-                if json.loads(manifest.read_text(encoding="utf-8"))["entries"]:
+                entries = json.loads(manifest.read_text(encoding="utf-8"))["entries"]
+                if any(e["status"] == "done" for e in entries.values()):
                     return
             except (ValueError, KeyError):  # pragma: no cover - the manifest is written atomically
                 pytest.fail("the manifest was seen half-written")
@@ -132,7 +140,7 @@ def test_interrupt_then_resume_equals_an_uninterrupted_run(tmp_path, job, signum
             want = tifffile.imread(job["reference"] / f"s{i}{suffix}")
             np.testing.assert_array_equal(got, want)
         qc, qc_ref = (json.loads((d / f"s{i}_qc.json").read_text()) for d in (out, job["reference"]))
-        for key in ("n_pixels", "n_nan", "n_saturated", "n_constrained", "mean_abundance", "residual_rms"):
+        for key in ("n_pixels", "n_invalid", "n_saturated", "n_constrained", "mean_abundance", "residual_rms"):
             assert qc[key] == qc_ref[key], key
 
 
@@ -183,3 +191,50 @@ def test_no_command_writes_to_an_input(tmp_path, capsys, case):
     assert "Traceback" not in err and len(err.strip().splitlines()) <= 3
     after = {p: _sha256(p) for p in tmp_path.rglob("*") if p.is_file()}
     assert after == before, "an input was modified or a file was written"
+
+
+def test_sigkill_leaves_nothing_that_looks_finished_and_resume_redoes_damaged_outputs(tmp_path, job):
+    """SIGKILL gives the run no chance to clean up: only a hidden staging folder may remain.
+
+    Every non-hidden file must belong to a stack the manifest records as done, with matching
+    checksums.  An output damaged afterwards (cut short) is not counted as done by --resume: that
+    stack is redone, and the staging folder of the killed run is removed.
+    """
+    out = tmp_path / "out"
+    proc = subprocess.Popen(_unmix_cmd(job["stacks"], job["refs"], out), stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    try:
+        _wait_for_first_finished(proc, out / MANIFEST)
+        time.sleep(0.3)  # land somewhere inside a later stack
+        proc.send_signal(signal.SIGKILL)
+        proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:  # pragma: no cover - only when the test already failed
+            proc.kill()
+            proc.wait()
+    assert proc.returncode == -signal.SIGKILL
+    hidden = [p.name for p in out.iterdir() if p.name.startswith(".")]
+    assert all(name.startswith(".probeplan-partial-") for name in hidden), hidden
+    visible = {p.name for p in out.iterdir() if not p.name.startswith(".")}
+    entries = json.loads((out / MANIFEST).read_text())["entries"]
+    done = {k: e for k, e in entries.items() if e["status"] == "done"}
+    assert 1 <= len(done) < N_STACKS
+    recorded = {Path(p).name for e in done.values() for p in e["outputs"]} | {MANIFEST}
+    assert visible <= recorded, f"files that look finished but are not recorded: {sorted(visible - recorded)}"
+    for e in done.values():
+        for path, digest in e["outputs"].items():
+            assert _sha256(Path(path)) == digest
+
+    damaged_stack = sorted(done)[0]
+    damaged = next(Path(p) for p in done[damaged_stack]["outputs"] if p.endswith("_stderr.tif"))
+    damaged.write_bytes(damaged.read_bytes()[:1000])
+
+    resumed = subprocess.run(_unmix_cmd(job["stacks"], job["refs"], out, "--resume"), capture_output=True, text=True,
+                             timeout=300)
+    assert resumed.returncode == 0, resumed.stderr
+    status = {row["stack"]: row["status"] for row in json.loads(resumed.stdout)["stacks"]}
+    assert status[damaged_stack] == "done", "a damaged output was counted as done"
+    assert {k for k, v in status.items() if v == "skipped (done)"} == set(done) - {damaged_stack}
+    final = _check_complete(out)  # no hidden file left: the killed run's staging folder is gone
+    assert len(final) == N_STACKS
+    np.testing.assert_array_equal(tifffile.imread(damaged), tifffile.imread(job["reference"] / damaged.name))

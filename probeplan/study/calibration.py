@@ -431,12 +431,12 @@ def calibrate_outputs(outputs: dict, calibration: Calibration, *, depth_mm: floa
     dict
         Paths by kind (``uM``, ``uM_se``, ``uM_flags``, ``uM_roi``) and ``names``, ``n_flagged`` (pixels per flag name).
     """
-    from probeplan.io.atomic import write_csv_atomic
+    from probeplan.io.atomic import readable_path, write_csv_atomic
     from probeplan.io.stacks import read_stack, write_stack
     from probeplan.unmixing.roi import parse_rectangle, roi_statistics
 
-    abundance, info = read_stack(outputs["abundance"])
-    stderr, _ = read_stack(outputs["stderr"])
+    abundance, info = read_stack(readable_path(outputs["abundance"]))  # written in this run: maybe still staged
+    stderr, _ = read_stack(readable_path(outputs["stderr"]))
     names = list(info.channel_names or [])
     res = apply_calibration(abundance, stderr, names, calibration, depth_mm=depth_mm)
     base = Path(outputs["abundance"])

@@ -9,6 +9,7 @@ HELP = "channel responses, crosstalk, condition number and noise amplification o
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     from probeplan.catalog.setup import add_model_options
+    from probeplan.cli.common import add_output_options
 
     add_model_options(parser)
     g = parser.add_argument_group("depths and output")
@@ -18,6 +19,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                    help="exit 1 when the set cannot be separated at some depth")
     g.add_argument("--json", action="store_true", help="print the report as JSON")
     g.add_argument("--plot", metavar="PNG", help="write emission spectra with filter bands and the crosstalk map")
+    add_output_options(parser)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -28,10 +30,11 @@ def run(args: argparse.Namespace) -> int:
     from probeplan.catalog.setup import channels_from_args, probes_from_args, tissue_from_args
     from probeplan.cli.common import model_notes, print_json, print_table
     from probeplan.model.fluorescence import Autofluorescence
-    from probeplan.io.atomic import refuse_input_paths
+    from probeplan.io.atomic import check_outputs, refuse_input_paths
 
     if args.plot:
         refuse_input_paths([args.plot], [s.partition("@")[2] for s in args.probe if "@" in s], option="--plot")
+        check_outputs([args.plot])
     probes = probes_from_args(args)
     channels = channels_from_args(args, len(probes))
     depths = args.depth_mm or [1.0, 3.0, 5.0]

@@ -8,10 +8,12 @@ HELP = "run the whole job on the invented demo study and write a report folder"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
+    from probeplan.cli.common import add_output_options
     from probeplan.demo import DEFAULT_DEMO_OUT
 
     parser.add_argument("--out", default=DEFAULT_DEMO_OUT, help=f"output folder (default: ./{DEFAULT_DEMO_OUT})")
     parser.add_argument("--json", action="store_true", help="print what was written as JSON")
+    add_output_options(parser)
 
 
 def run(args: argparse.Namespace) -> int:

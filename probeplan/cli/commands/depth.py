@@ -6,9 +6,13 @@ import argparse
 
 HELP = "SBR, SNR and blur against target depth for each probe in a tissue"
 
+#: Most depths one run evaluates (--depth-max-mm / --depth-step-mm).
+_MAX_DEPTHS = 10_000
+
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     from probeplan.catalog.setup import add_model_options
+    from probeplan.cli.common import add_output_options
 
     add_model_options(parser)
     g = parser.add_argument_group("depths and output")
@@ -19,6 +23,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     g.add_argument("--json", action="store_true", help="print every row and the summary as JSON")
     g.add_argument("--csv", metavar="FILE", help="write every row to a CSV file")
     g.add_argument("--plot", metavar="PNG", help="write SBR/SNR/blur against depth to a PNG file")
+    add_output_options(parser)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -32,7 +37,7 @@ def run(args: argparse.Namespace) -> int:
     from probeplan.cli.common import model_notes, print_json, print_table
     from probeplan.errors import input_error
     from probeplan.model.fluorescence import Autofluorescence, depth_at_threshold, depth_profile
-    from probeplan.io.atomic import refuse_input_paths, write_bytes_atomic, write_csv_atomic
+    from probeplan.io.atomic import check_outputs, refuse_input_paths, write_bytes_atomic, write_csv_atomic
 
     probes = probes_from_args(args)
     filters = args.filter or []
@@ -44,6 +49,11 @@ def run(args: argparse.Namespace) -> int:
                           "give a positive maximum depth and a smaller positive step")
     outputs = [p for p in (args.csv, args.plot) if p]
     refuse_input_paths(outputs, [s.partition("@")[2] for s in args.probe if "@" in s], option="--csv/--plot")
+    check_outputs(outputs)
+    n_depths = int(args.depth_max_mm / args.depth_step_mm) + 1
+    if n_depths > _MAX_DEPTHS:
+        raise input_error("--depth-max-mm/--depth-step-mm", f"{n_depths} depths asked for",
+                          f"give at most {_MAX_DEPTHS} (a larger --depth-step-mm)")
     tissue = tissue_from_args(args)
     source, lens = make_source(args), make_lens(args)
     cam = make_camera(args.camera, args.binning)

@@ -16,6 +16,8 @@ _EPILOG = (
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
+    from probeplan.cli.common import add_output_options
+
     parser.epilog = _EPILOG
     parser.add_argument("plan", metavar="PLAN", help="study plan (TOML), e.g. demo_tissue/plan.toml")
     parser.add_argument("--out", required=True, metavar="DIR", help="folder for the report (created if missing)")
@@ -23,6 +25,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="the institution's rules file (TOML); without it probeplan's defaults are used")
     parser.add_argument("--pdf", action="store_true", help="also write report.pdf (tables as text, figures)")
     parser.add_argument("--json", action="store_true", help="print the result and the files written as JSON")
+    add_output_options(parser)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -33,7 +36,7 @@ def run(args: argparse.Namespace) -> int:
     from probeplan.cli.common import print_json
     from probeplan.errors import input_error
     from probeplan.study.evaluate import evaluate_plan
-    from probeplan.io.atomic import refuse_input_paths
+    from probeplan.io.atomic import check_outputs, refuse_input_paths
     from probeplan.study.plan import load_plan
     from probeplan.report.document import plan_report, report_pdf_bytes, write_report
     from probeplan.study.rules import load_rules
@@ -51,6 +54,8 @@ def run(args: argparse.Namespace) -> int:
     targets = [out / f"{t.name}.csv" for t in report.tables] + [out / n for n in report.extra_files]
     targets += [out / "report.json", out / "report.html"]
     refuse_input_paths(targets, [p for p in (args.plan, args.rules) if p])
+    if out.is_dir():
+        check_outputs(targets)
     # The outermost folder this command creates, removed again if writing fails.
     created = None
     for folder in (out, *out.absolute().parents):

@@ -14,6 +14,8 @@ _STACK_SUFFIXES = (".tif", ".tiff")
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
+    from probeplan.cli.common import add_output_options
+
     parser.add_argument("stack", help="TIFF/OME-TIFF stack (C,Y,X), (C,Z,Y,X), (T,C,Y,X), or a folder of stacks")
     refs = parser.add_mutually_exclusive_group(required=True)
     refs.add_argument("--references", help="reference spectra CSV: channel,<component>,...")
@@ -36,12 +38,15 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--roi-background", default="background", help="name of the background ROI (default background)")
     parser.add_argument("--memory-mb", type=float, default=None, help="working-memory bound in MiB (default 256)")
     parser.add_argument("--scheduler", default=None, help="address of a running dask.distributed scheduler")
-    parser.add_argument("--resume", action="store_true", help="skip stacks already done (checked by checksums)")
+    parser.add_argument("--resume", action="store_true",
+                        help="skip stacks already done (checked by checksums) and redo the others, replacing the "
+                             "outputs the manifest records for them")
     parser.add_argument("--calibration", metavar="FILE",
                         help="calibration.csv from 'probeplan calibrate': also write the maps in uM with standard "
                              "errors and range flags (<stem>_uM*.ome.tif, <stem>_uM_roi.csv)")
     parser.add_argument("--depth-mm", type=float, default=None,
                         help="depth of the target (mm), checked against the calibration phantom's depth")
+    add_output_options(parser)
     parser.add_argument("--json", action="store_true", help="print a machine-readable summary")
 
 
@@ -87,17 +92,45 @@ def _load_manifest(path) -> dict:
         raise input_error(str(path), f"is not a valid manifest ({exc})", "delete it and run again without --resume") from None
 
 
+def _read_manifest_leniently(path) -> dict:
+    """The manifest to add an entry to: a damaged one is started afresh (it is only a record)."""
+    try:
+        return _load_manifest(path)
+    except ValueError:
+        return {"entries": {}}
+
+
+def _record(manifest_path, key: str, entry: dict) -> None:
+    """Add one stack's entry to the folder's manifest, under a lock: concurrent runs keep every entry."""
+    from probeplan.io.atomic import update_json_file
+
+    def add(manifest: dict) -> dict:
+        manifest["entries"][key] = entry
+        return manifest
+
+    update_json_file(manifest_path, add, read=_read_manifest_leniently)
+
+
 def _is_done(entry, stack, settings) -> bool:
     from pathlib import Path
 
-    if not isinstance(entry, dict) or not isinstance(entry.get("outputs"), dict):
+    if not isinstance(entry, dict) or not isinstance(entry.get("outputs"), dict) or entry.get("status") != "done":
         return False
     if entry.get("settings_sha256") != settings or entry.get("input_sha256") != _sha256(stack):
         return False
     for p, digest in entry["outputs"].items():
-        if not Path(p).is_file() or _sha256(p) != digest:
+        if not isinstance(digest, str) or not Path(p).is_file() or _sha256(p) != digest:
             return False
     return True
+
+
+def _recorded_outputs(manifest: dict) -> list:
+    """Every output path the manifest names (finished or being written when a run stopped)."""
+    out = []
+    for entry in manifest.get("entries", {}).values():
+        if isinstance(entry, dict) and isinstance(entry.get("outputs"), dict):
+            out += [str(p) for p in entry["outputs"]]
+    return out
 
 
 def run(args: argparse.Namespace) -> int:
@@ -112,7 +145,7 @@ def run(args: argparse.Namespace) -> int:
     from probeplan.cli.common import print_json, print_table
     from probeplan.errors import input_error
     from probeplan.io.stacks import open_stack
-    from probeplan.io.atomic import write_json_atomic
+    from probeplan.io.atomic import current_policy, output_batch, readable_path
     from probeplan.unmixing.references import read_references_csv
     from probeplan.unmixing.pipeline import DEFAULT_MEMORY_MB, unmix_file
 
@@ -181,6 +214,10 @@ def run(args: argparse.Namespace) -> int:
         if p and not Path(p).is_file():
             raise input_error(str(p), "file not found", f"give an existing TIFF stack to {option}")
     settings = _settings_digest(args, refs)
+    policy = current_policy()
+    if args.resume and policy is not None:
+        # outputs an earlier run of this folder recorded (done, damaged or cut short) may be redone
+        policy.allow(_recorded_outputs(manifest))
     all_inputs = [s for s, _ in targets] + [args.references] + ([args.dark] if args.dark else []) + (
         [args.flat] if args.flat else []) + label_files + ([args.calibration] if args.calibration else [])
 
@@ -199,40 +236,43 @@ def run(args: argparse.Namespace) -> int:
             t0 = time.perf_counter()
             if args.resume and _is_done(manifest["entries"].get(key), s, settings):
                 summary.append({"stack": key, "status": "skipped (done)", "pixels": "", "constrained": "",
-                                "saturated": "", "nan": "", "residual_rms": "", "seconds": 0.0})
+                                "saturated": "", "invalid": "", "residual_rms": "", "seconds": 0.0})
                 continue
             with open_stack(s, channel_axis=args.channel_axis) as r:
                 n_rows = r.info.n_rows
-            with tqdm(total=n_rows, desc=key, unit="row", disable=None if not args.json else True,
-                      file=sys.stderr, leave=False) as bar:
-                result = unmix_file(
-                    s, refs, target, method=args.method, channel_axis=args.channel_axis, dark_path=args.dark,
-                    flat_path=args.flat, offset=args.offset, saturation=args.saturation, gain_e_per_count=args.gain,
-                    read_noise_e=args.read_noise, rois=rect_rois, labels_path=label_files[0] if label_files else None,
-                    roi_background=args.roi_background,
-                    memory_limit_mb=args.memory_mb if args.memory_mb is not None else DEFAULT_MEMORY_MB,
-                    scheduler=args.scheduler, extra_inputs=all_inputs, progress=bar.update,
-                )
-            qc = result.qc
-            if calibration is not None:
-                from probeplan.cli.common import model_notes
-                from probeplan.study.calibration import calibrate_outputs
+            with output_batch() as batch:
+                with tqdm(total=n_rows, desc=key, unit="row", disable=None if not args.json else True,
+                          file=sys.stderr, leave=False) as bar:
+                    result = unmix_file(
+                        s, refs, target, method=args.method, channel_axis=args.channel_axis, dark_path=args.dark,
+                        flat_path=args.flat, offset=args.offset, saturation=args.saturation,
+                        gain_e_per_count=args.gain, read_noise_e=args.read_noise, rois=rect_rois,
+                        labels_path=label_files[0] if label_files else None, roi_background=args.roi_background,
+                        memory_limit_mb=args.memory_mb if args.memory_mb is not None else DEFAULT_MEMORY_MB,
+                        scheduler=args.scheduler, extra_inputs=all_inputs, progress=bar.update,
+                    )
+                if calibration is not None:
+                    from probeplan.cli.common import model_notes
+                    from probeplan.study.calibration import calibrate_outputs
 
-                with model_notes() as cal_notes:
-                    cal = calibrate_outputs(result.outputs, calibration, depth_mm=args.depth_mm, rois=rect_rois,
-                                            background=args.roi_background)
-                result.outputs.update({k: v for k, v in cal.items() if k.startswith("uM")})
-                calibration_notes.extend(cal_notes)
-                calibration_flags[key] = cal["n_flagged"]
-            manifest["entries"][key] = {
-                "input_sha256": _sha256(s), "settings_sha256": settings,
-                "outputs": {str(p): _sha256(p) for p in result.outputs.values()},
-            }
-            write_json_atomic(manifest_path, manifest)
+                    with model_notes() as cal_notes:
+                        cal = calibrate_outputs(result.outputs, calibration, depth_mm=args.depth_mm, rois=rect_rois,
+                                                background=args.roi_background)
+                    result.outputs.update({k: v for k, v in cal.items() if k.startswith("uM")})
+                    calibration_notes.extend(cal_notes)
+                    calibration_flags[key] = cal["n_flagged"]
+                digests = {str(p): _sha256(readable_path(p)) for p in result.outputs.values()}
+                # recorded as being written first: a run killed while moving the files in leaves an
+                # entry that --resume redoes (and whose files it may replace), never one it skips
+                _record(manifest_path, key, {"status": "writing", "outputs": dict.fromkeys(digests)})
+                batch.commit()
+            _record(manifest_path, key, {"status": "done", "input_sha256": _sha256(s), "settings_sha256": settings,
+                                         "outputs": digests})
+            qc = result.qc
             summary.append({
                 "stack": key, "status": "done", "pixels": qc["n_pixels"],
                 "constrained": round(qc["fraction_constrained"], 4), "saturated": qc["n_saturated"],
-                "nan": qc["n_nan"], "residual_rms": qc["residual_rms"]["rms"],
+                "invalid": qc["n_invalid"], "residual_rms": qc["residual_rms"]["rms"],
                 "seconds": round(time.perf_counter() - t0, 2), "outputs": {k: str(v) for k, v in result.outputs.items()},
                 "condition_number": qc["condition_number"], "mean_abundance": qc["mean_abundance"],
             })
@@ -252,7 +292,7 @@ def run(args: argparse.Namespace) -> int:
         print_json({"caution": RESEARCH_USE_CAUTION, "method": args.method, "components": list(refs.component_names),
                     "stacks": summary, "manifest": str(manifest_path), **extra})
     else:
-        print_table(summary, ["stack", "status", "pixels", "constrained", "saturated", "nan", "residual_rms", "seconds"])
+        print_table(summary, ["stack", "status", "pixels", "constrained", "saturated", "invalid", "residual_rms", "seconds"])
         for row in summary:
             if row["status"] == "done":
                 sys.stdout.write(f"{row['stack']}: {', '.join(str(p) for p in row['outputs'].values())}\n")
