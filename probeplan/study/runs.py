@@ -32,6 +32,7 @@ import numpy as np
 import pandas as pd
 
 from probeplan.errors import input_error
+from probeplan.io.atomic import current_policy, make_output_folder, output_batch, readable_path
 from probeplan.study.table import Acquisition, read_study_table
 
 __all__ = [
@@ -385,15 +386,37 @@ def _settings_digest(settings: StudySettings, refs, unit: str) -> str:
     return hashlib.sha256(json.dumps(d, sort_keys=True).encode()).hexdigest()
 
 
+def _read_manifest(path: Path) -> dict:
+    """The study folder's manifest; an unreadable one counts as empty (everything is redone)."""
+    try:
+        loaded = json.loads(Path(path).read_text(encoding="utf-8"))
+        if isinstance(loaded, dict) and isinstance(loaded.get("entries"), dict):
+            return loaded
+    except (ValueError, OSError):
+        pass
+    return {"entries": {}}
+
+
+def _record(path: Path, key: str, entry: dict) -> None:
+    """Add one acquisition's entry to the manifest under a lock (concurrent runs keep every entry)."""
+    from probeplan.io.atomic import update_json_file
+
+    def add(manifest: dict) -> dict:
+        manifest["entries"][key] = entry
+        return manifest
+
+    update_json_file(path, add, read=_read_manifest)
+
+
 def _done(entry, acq, digest) -> bool:
-    if not isinstance(entry, dict) or entry.get("settings_sha256") != digest:
+    if not isinstance(entry, dict) or entry.get("settings_sha256") != digest or entry.get("status", "done") != "done":
         return False
     if entry.get("inputs") != {str(f): _sha256(f) for f in acq.files}:
         return False
     outs = entry.get("outputs")
     if not isinstance(outs, dict):
         return False
-    return all(Path(p).is_file() and _sha256(p) == h for p, h in outs.items())
+    return all(isinstance(h, str) and Path(p).is_file() and _sha256(p) == h for p, h in outs.items())
 
 
 def _check_acquisition(acq: Acquisition, refs, settings: StudySettings):
@@ -528,15 +551,16 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
         refuse_input_paths([out / n for n in ("measurements.csv", "groups.csv", "kinetics.csv", "report.html")],
                            inputs, option="--out")
         maps_dir = out / "acquisitions"
-        maps_dir.mkdir(parents=True, exist_ok=True)
+        make_output_folder(maps_dir)
         mpath = out / MANIFEST_NAME
         if mpath.is_file():
-            try:
-                loaded = json.loads(mpath.read_text(encoding="utf-8"))
-                if isinstance(loaded, dict) and isinstance(loaded.get("entries"), dict):
-                    manifest = loaded
-            except (ValueError, OSError):
-                manifest = {"entries": {}}  # unreadable: everything is redone
+            manifest = _read_manifest(mpath)
+            # a rerun into the study's own folder resumes it: what the earlier run wrote may be replaced
+            policy = current_policy()
+            if policy is not None:
+                policy.allow([out / n for n in ("measurements.csv", "groups.csv", "kinetics.csv", "report.html")])
+                policy.allow(p for e in manifest["entries"].values() if isinstance(e, dict)
+                             for p in (e.get("outputs") or {}))
     digest = _settings_digest(settings, refs, unit_text)
     tables = []
     skipped = []
@@ -548,17 +572,16 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
             if progress is not None:
                 progress(acq, "skipped")
             continue
-        table = measure_acquisition(acq, refs, settings, out_dir=maps_dir, unit=unit)
-        if maps_dir is not None:
-            mfile = write_table_csv(maps_dir / f"{acq.key}_measurements.csv", table, MEASUREMENTS_NOTES)
-            written = [mfile, *(map_paths(maps_dir, acq.key).values() if settings.write_maps else [])]
-            manifest["entries"][acq.key] = {
-                "settings_sha256": digest, "inputs": {str(f): _sha256(f) for f in acq.files},
-                "outputs": {str(p): _sha256(p) for p in written},
-            }
-            from probeplan.io.atomic import write_json_atomic
-
-            write_json_atomic(out / MANIFEST_NAME, manifest)
+        with output_batch() as batch:  # each acquisition's files appear together, then are recorded
+            table = measure_acquisition(acq, refs, settings, out_dir=maps_dir, unit=unit)
+            if maps_dir is not None:
+                mfile = write_table_csv(maps_dir / f"{acq.key}_measurements.csv", table, MEASUREMENTS_NOTES)
+                written = [mfile, *(map_paths(maps_dir, acq.key).values() if settings.write_maps else [])]
+                _record(out / MANIFEST_NAME, acq.key, {"status": "writing", "outputs": dict.fromkeys(map(str, written))})
+                entry = {"status": "done", "settings_sha256": digest, "inputs": {str(f): _sha256(f) for f in acq.files},
+                         "outputs": {str(p): _sha256(readable_path(p)) for p in written}}
+                batch.commit()
+                _record(out / MANIFEST_NAME, acq.key, entry)
         tables.append(table)
         if progress is not None:
             progress(acq, "done")

@@ -12,6 +12,8 @@ _LABEL_SUFFIXES = (".tif", ".tiff")
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
+    from probeplan.cli.common import add_output_options
+
     parser.add_argument("study", help="study table CSV: animal,group,time_h,file[,channel] (paths relative to it)")
     parser.add_argument("--references", required=True, help="reference spectra CSV: channel,<component>,...")
     parser.add_argument("--out", required=True, help="output folder (created; a rerun resumes where it stopped)")
@@ -32,6 +34,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--plan", default=None, help="study plan TOML: show its assumed effect size beside the observed")
     parser.add_argument("--no-maps", action="store_true", help="write only the tables, not the maps of each acquisition")
     parser.add_argument("--json", action="store_true", help="print a machine-readable summary")
+    add_output_options(parser)
 
 
 def run(args: argparse.Namespace) -> int:
