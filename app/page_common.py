@@ -30,6 +30,7 @@ __all__ = [
     "session_folder",
     "safe_name",
     "save_upload",
+    "upload_limit_mb",
     "guard",
     "captured_warnings",
     "show_notes",
@@ -91,14 +92,40 @@ def safe_name(name: str, default: str = "upload") -> str:
     return base or default
 
 
+def upload_limit_mb() -> float:
+    """Largest upload the page accepts, in MB (``probeplan app --max-upload-mb``, Streamlit's ``server.maxUploadSize``)."""
+    try:
+        return float(st.get_option("server.maxUploadSize"))
+    except Exception:  # noqa: BLE001 - outside a Streamlit server: Streamlit's own default
+        return 200.0
+
+
 def save_upload(data: bytes, name: str, *, sub: str) -> Path:
     """Write uploaded bytes into ``<session folder>/<sub>/<safe name>`` and return the path.
 
-    ``sub`` is one of the page's own fixed words, never user text.
+    ``sub`` is one of the page's own fixed words, never user text.  The file always lands
+    inside the session's folder (the name is reduced to a safe basename first); an upload
+    larger than the page's limit is refused with one line.
+
+    Raises
+    ------
+    InputError
+        The upload is larger than :func:`upload_limit_mb`.
     """
-    folder = session_folder() / sub
+    from probeplan.errors import input_error
+
+    safe = safe_name(name)
+    limit = upload_limit_mb()
+    if len(data) > limit * 1e6:
+        raise input_error(safe, f"{len(data) / 1e6:.1f} MB is more than the page accepts ({limit:g} MB)",
+                          "unmix large stacks with the command line (probeplan unmix), or start the page with a "
+                          "larger --max-upload-mb")
+    root = session_folder().resolve()
+    folder = root / sub
     folder.mkdir(parents=True, exist_ok=True)
-    path = folder / safe_name(name)
+    path = (folder / safe).resolve()
+    if path.parent != folder.resolve() or root not in path.parents:  # pragma: no cover - safe_name prevents it
+        raise input_error(safe, "would be saved outside this session's folder", "rename the file")
     path.write_bytes(data)
     return path
 
@@ -109,9 +136,13 @@ def guard(what: str) -> Iterator[None]:
     try:
         yield
     except InputError as exc:
-        st.error(f"{what}: {exc}")
-    except (TypeError, ValueError, OSError) as exc:
-        st.error(f"{what}: {type(exc).__name__}: {exc}")
+        st.error(f"{what}: {_one_line(str(exc))}")
+    except Exception as exc:  # noqa: BLE001 - the page shows one line, never an exception box
+        st.error(f"{what}: could not be done ({type(exc).__name__}: {_one_line(str(exc))[:300]})")
+
+
+def _one_line(text: str) -> str:
+    return " ".join(text.split())
 
 
 @contextlib.contextmanager

@@ -301,6 +301,46 @@ def test_separate_bad_uploads_show_errors(tmp_path):
     assert any("extends past the image" in e for e in _errors(at)), _errors(at)
 
 
+
+def test_separate_under_abuse_one_line_each_nothing_outside_the_session(tmp_path, monkeypatch):
+    """An oversized upload, a unicode / ``../`` name, a library failure of an unexpected kind: one line each,
+    no exception box, and every file the page wrote is inside the session's folder."""
+    import streamlit
+
+    from probeplan.io.stacks import write_stack
+
+    _, csv, _, _ = _test_stack(tmp_path)
+    big = write_stack(tmp_path / "big.tif", np.ones((3, 400, 400)), channel_names=["ch700", "ch780", "ch880"])
+    at = _view(_app(), "separate")
+    at.file_uploader(key="up_stack").set_value(("../../стек ☃ (1).tif", big.read_bytes(), "image/tiff"))
+    at.file_uploader(key="up_refs").set_value(("..\\..\\refs.csv", csv, "text/csv"))
+    previous = streamlit.get_option("server.maxUploadSize")
+    streamlit.config.set_option("server.maxUploadSize", 1)  # 1 MB: the 1.9 MB stack is larger
+    try:
+        at.button(key="btn_unmix").click().run()
+    finally:
+        streamlit.config.set_option("server.maxUploadSize", previous)
+    _clean(at)
+    errors = _errors(at)
+    assert len(errors) == 1 and "more than the page accepts" in errors[0] and "\n" not in errors[0], errors
+    assert not at.exception
+
+    import probeplan.unmixing.pipeline as pipeline
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("incompatible keyframe\nsecond line")
+
+    monkeypatch.setattr(pipeline, "unmix_file", broken)
+    at.button(key="btn_unmix").click().run()
+    _clean(at)
+    errors = _errors(at)
+    assert len(errors) == 1 and "RuntimeError" in errors[0] and "\n" not in errors[0], errors
+    assert not at.exception
+    folder = at.session_state["_session_folder"].path
+    saved = sorted(p.name for p in (folder / "uploads").iterdir())
+    assert saved == ["_1_.tif", "refs.csv"], saved
+    assert all(folder in p.resolve().parents for p in folder.rglob("*"))
+
 # --------------------------------------------------------------------------- plan view
 
 

@@ -81,7 +81,7 @@ def test_list(capsys):
         (["dots", "size", "CdSe", "--peak", "900"], "outside the CdSe sizing curve"),
         (["dots", "size", "InP", "--peak", "600"], "no published sizing curve"),
         (["dots", "conc", "CdSe", "--peak", "550", "--absorbance", "-1"], "absorbance"),
-        (["dots", "dose", "--dose-nmol-per-kg", "100", "--mass-g", "0", "--stock-uM", "2"], "body_mass_g"),
+        (["dots", "dose", "--dose-nmol-per-kg", "100", "--mass-g", "0", "--stock-uM", "2"], "--mass-g: got 0, allowed above 0 up to 5000 g"),
     ],
 )
 def test_bad_input_exit_2(capsys, argv, message):

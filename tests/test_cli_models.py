@@ -40,7 +40,7 @@ def test_depth_writes_plot_and_csv(tmp_path, capsys):
         (["--probe", "CdTe:950", "--filter", "700/30"], "outside the CdTe emission range"),
         (["--probe", "CdTe:700", "--filter", "seven hundred"], "cannot read"),
         (["--probe", "CdTe:700", "--filter", "700/30", "--tissue", "skn"], "did you mean 'skin'"),
-        (["--probe", "CdTe:700", "--filter", "700/30", "--depth-max-mm", "-1"], "positive maximum depth"),
+        (["--probe", "CdTe:700", "--filter", "700/30", "--depth-max-mm", "-1"], "--depth-max-mm: got -1, allowed above 0 up to 100 mm"),
     ],
 )
 def test_depth_bad_input_exit_2(capsys, args, match):

@@ -432,3 +432,41 @@ def test_huge_option_values_are_refused_with_the_range_within_a_memory_limit(tmp
         option = label.split(" ")[-1].split("=")[0]
         assert option in line or "invalid" in line, (label, line)
     assert not (tmp_path / "out.ome.tif").exists()
+
+
+def test_every_rule_has_a_finite_range_and_huge_values_are_refused_within_a_memory_limit(tmp_path):
+    from probeplan.study.rules import default_rules
+
+    rules = list(default_rules())
+    assert len(rules) >= 20
+    assert all(np.isfinite(r.valid_range[1]) for r in rules), [r.id for r in rules if not np.isfinite(r.valid_range[1])]
+    cases, labels = [], []
+    for rule in rules:
+        for huge in _HUGE:
+            path = tmp_path / f"{rule.id}.{huge[:4]}.toml"
+            path.write_text(f'[{rule.id}]\nvalue = {huge}\nunit = "{rule.unit}"\n')
+            cases.append(["check", str(DEMO / "plan.toml"), "--rules", str(path)])
+            labels.append(f"{rule.id}={huge}")
+    codes, err = _sweep(cases, tmp_path)
+    assert codes == [2] * len(cases), [lab for lab, c in zip(labels, codes, strict=True) if c != 2]
+    lines = err.strip().splitlines()
+    assert len(lines) == len(cases), err[-3000:]
+    for label, line in zip(labels, lines, strict=True):
+        assert re.search(rf"\.toml:2: {re.escape(label.split('=')[0])}\.value: .*outside", line), (label, line)
+
+
+def test_every_page_control_for_a_number_has_a_range():
+    """Every st.number_input and st.slider of the page states min_value and max_value (read from the source)."""
+    import ast
+
+    app = Path(__file__).resolve().parents[1] / "app"
+    missing, seen = [], 0
+    for path in sorted(app.rglob("*.py")):
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if isinstance(node, ast.Call) and getattr(node.func, "attr", "") in ("number_input", "slider"):
+                seen += 1
+                keywords = {k.arg for k in node.keywords}
+                if not {"min_value", "max_value"} <= keywords:
+                    missing.append(f"{path.name}:{node.lineno}")
+    assert seen >= 20
+    assert not missing, f"page controls without a range: {missing}"

@@ -362,3 +362,46 @@ def test_third_party_noise_never_reaches_the_terminal(capsys, monkeypatch):
         logging.getLogger("distributed").removeHandler(handler)
     assert code == 2
     assert err == "probeplan check: error: plan.toml:3: animals.size: got 0; give a size\n", err
+
+
+# --------------------------------------------------------------------------- the study command
+
+def _tiny_study(folder: Path) -> list[str]:
+    """Two animals (one per group), one time point, two probes in three channels (our own invented data)."""
+    from probeplan.io.stacks import write_stack
+
+    m = np.array([[0.6, 0.1], [0.3, 0.3], [0.1, 0.6]])
+    channels = ["ch650", "ch700", "ch750"]
+    (folder / "refs.csv").write_text("channel,dotA,dotB\n" + "".join(
+        f"{c},{m[i, 0]},{m[i, 1]}\n" for i, c in enumerate(channels)))
+    rng = np.random.default_rng(1)
+    rows = ["animal,group,time_h,file"]
+    for name, group in (("m1", "ctrl"), ("m2", "treated")):
+        ab = np.full((2, 24, 24), 200.0)
+        ab[0, 4:12, 4:12] = 800.0
+        write_stack(folder / f"{name}.tif", rng.poisson(np.einsum("ck,kyx->cyx", m, ab)).astype(np.uint16),
+                    channel_names=channels, dtype=np.uint16)
+        rows.append(f"{name},{group},1,{name}.tif")
+    (folder / "study.csv").write_text("\n".join(rows) + "\n")
+    return ["study", str(folder / "study.csv"), "--references", str(folder / "refs.csv"),
+            "--roi", "tumour:4,4,12,12", "--roi", "background:14,0,24,24", "--json"]
+
+
+def test_study_rerun_resumes_in_its_own_folder_and_refuses_a_foreign_file(tmp_path, capsys):
+    argv = _tiny_study(tmp_path)
+    out = tmp_path / "out"
+    code, stdout, err = _run([*argv, "--out", out], capsys)
+    assert code == 0, err
+    code, stdout, err = _run([*argv, "--out", out], capsys)  # a rerun resumes: its own files may be replaced
+    assert code == 0, err
+    assert sorted(json.loads(stdout)["resumed"]) == ["m1_1h", "m2_1h"] or len(json.loads(stdout)["resumed"]) == 2
+    entries = json.loads((out / "study_manifest.json").read_text())["entries"]
+    assert len(entries) == 2 and all(e["status"] == "done" for e in entries.values())
+
+    other = tmp_path / "other"
+    other.mkdir()
+    (other / "groups.csv").write_text("someone else's table\n")
+    code, _, err = _run([*argv, "--out", other], capsys)
+    _one_line_refusal(code, err, "groups.csv")
+    assert (other / "groups.csv").read_text() == "someone else's table\n"
+    assert _listing(other) == ["groups.csv"]

@@ -34,11 +34,13 @@ class OptionRange:
     open_low: bool = False
 
     def describe(self) -> str:
+        """``"1 to 64"``, ``"above 0 up to 3600 s"``, ``"above 0 counts"``."""
         unit = f" {self.unit}" if self.unit else ""
-        left = f"> {self.low:g}" if self.open_low else f">= {self.low:g}"
         if math.isinf(self.high):
-            return f"{left}{unit}"
-        return f"{'(' if self.open_low else ''}{self.low:g} to {self.high:g}{unit}"
+            return f"{'above' if self.open_low else 'at least'} {self.low:g}{unit}"
+        if self.open_low:
+            return f"above {self.low:g} up to {self.high:g}{unit}"
+        return f"{self.low:g} to {self.high:g}{unit}"
 
     def contains(self, value: float) -> bool:
         v = float(value)

@@ -32,7 +32,7 @@ import numpy as np
 import pandas as pd
 
 from probeplan.errors import input_error
-from probeplan.io.atomic import current_policy, make_output_folder, output_batch, readable_path
+from probeplan.io.atomic import check_outputs, current_policy, make_output_folder, output_batch, readable_path
 from probeplan.study.table import Acquisition, read_study_table
 
 __all__ = [
@@ -561,6 +561,7 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
                 policy.allow([out / n for n in ("measurements.csv", "groups.csv", "kinetics.csv", "report.html")])
                 policy.allow(p for e in manifest["entries"].values() if isinstance(e, dict)
                              for p in (e.get("outputs") or {}))
+        check_outputs([out / n for n in ("measurements.csv", "groups.csv", "kinetics.csv", "report.html")])
     digest = _settings_digest(settings, refs, unit_text)
     tables = []
     skipped = []

@@ -268,7 +268,8 @@ def unmix_block(Y, params: _Params, dark=None, flat=None):
         var = _noise_variance(s, flat, params.gain, params.read_noise, params.floor)
         w = 1.0 / var
         A = np.einsum("ck,cn,cj->nkj", M, w, M)
-        rhs = np.einsum("ck,cn->nk", M, w * y)
+        with np.errstate(invalid="ignore", over="ignore"):  # invalid pixels (NaN, +-inf) are masked just below
+            rhs = np.einsum("ck,cn->nk", M, w * y)
         nan = ~np.isfinite(y).all(axis=0)  # NaN or infinite in any channel: invalid
         A[nan] = np.eye(K)
         rhs[nan] = 0.0
