@@ -93,6 +93,12 @@ OPTION_RANGES: dict[str, OptionRange] = {
     "volume_ul": _r(0, 1e5, "uL", True),
     "mass_g": _r(0, 5000, "g", True),
     "stock_uM": _r(0, 1e6, "uM", True),
+    # phantoms
+    "wavelength_nm": _r(200, 3000, "nm"),
+    "mu_a": _r(0, 1000, "cm^-1"),
+    "mu_s_prime": _r(0, 1000, "cm^-1", True),
+    "diameter_um": _r(0, 100, "um", True),
+    "batch_ml": _r(0, 1e5, "mL", True),
     # unmixing
     "channel_axis": _r(-8, 7),
     "saturation": _r(0, math.inf, "counts", True),

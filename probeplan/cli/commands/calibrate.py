@@ -8,6 +8,8 @@ HELP = "fit abundance against concentration from a phantom (weighted, with inter
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
+    from probeplan.cli.common import add_output_options
+
     parser.add_argument("phantom", help="PHANTOM.csv: file, component, concentration_uM, roi (\"x0,y0,x1,y1\"), blanks at 0")
     parser.add_argument("--references", required=True, help="reference spectra CSV: channel,<component>,...")
     parser.add_argument("--out", required=True, help="output folder (calibration.csv, calibration_points.csv, calibration.png)")
@@ -20,6 +22,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--gain", type=float, default=1.0, help="camera gain, e-/count (default 1)")
     parser.add_argument("--read-noise", type=float, default=0.0, help="camera read noise, e- rms (default 0)")
     parser.add_argument("--json", action="store_true", help="print the calibration as JSON")
+    add_output_options(parser)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -28,7 +31,8 @@ def run(args: argparse.Namespace) -> int:
     from probeplan import RESEARCH_USE_CAUTION
     from probeplan.cli.common import model_notes, print_json, print_table
     from probeplan.errors import input_error
-    from probeplan.io.atomic import refuse_input_paths, write_bytes_atomic, write_text_atomic
+    from probeplan.io.atomic import (check_outputs, make_output_folder, refuse_input_paths, write_bytes_atomic,
+                                     write_text_atomic)
     from probeplan.report.document import figure_png_bytes
     from probeplan.study.calibration import calibrate_phantom, plot_calibration
     from probeplan.unmixing.references import read_references_csv
@@ -47,7 +51,9 @@ def run(args: argparse.Namespace) -> int:
                                 dark=args.dark, gain_e_per_count=args.gain, read_noise_e=args.read_noise)
     targets = [out / "calibration.csv", out / "calibration_points.csv", out / "calibration.png"]
     refuse_input_paths(targets, [args.phantom, args.references, *cal.points["file"]], option="--out")
-    out.mkdir(parents=True, exist_ok=True)
+    if out.is_dir():
+        check_outputs(targets)
+    make_output_folder(out)
     write_text_atomic(targets[0], cal.table.to_csv(index=False))
     write_text_atomic(targets[1], cal.points.drop(columns=["line"]).to_csv(index=False))
     write_bytes_atomic(targets[2], figure_png_bytes(plot_calibration(cal)))

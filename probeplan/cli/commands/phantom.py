@@ -8,6 +8,8 @@ HELP = "a phantom recipe (scatterer + absorber in water) for a target mu_a, mu_s
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
+    from probeplan.cli.common import add_output_options
+
     target = parser.add_argument_group("target (a plan, or explicit values)")
     target.add_argument("--plan", help="study plan TOML: match its tissue at the excitation and each probe's emission, "
                                        "and predict the phantom's SBR against depth")
@@ -25,6 +27,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--batch-ml", type=float, default=100.0, help="batch volume in mL (default 100)")
     parser.add_argument("--out", help="folder for recipe.csv, preparation.csv and (with --plan) sbr_curve.csv, sbr_curve.png")
     parser.add_argument("--json", action="store_true", help="print the recipe as JSON")
+    add_output_options(parser)
 
 
 def _absorber(spec: str):
@@ -50,7 +53,8 @@ def run(args: argparse.Namespace) -> int:
     from probeplan import RESEARCH_USE_CAUTION
     from probeplan.cli.common import model_notes, print_json, print_table
     from probeplan.errors import input_error
-    from probeplan.io.atomic import refuse_input_paths, write_bytes_atomic, write_csv_atomic
+    from probeplan.io.atomic import (check_outputs, make_output_folder, refuse_input_paths, write_bytes_atomic,
+                                     write_csv_atomic)
     from probeplan.study.phantom import PHANTOM_CAUTION
 
     from probeplan.errors import positive_number
@@ -94,7 +98,9 @@ def run(args: argparse.Namespace) -> int:
         inputs = [p for p in (args.plan, args.absorber) if p and Path(p).is_file()]
         targets = [out / "recipe.csv", out / "preparation.csv"] + ([out / "sbr_curve.csv", out / "sbr_curve.png"] if curve else [])
         refuse_input_paths(targets, inputs, option="--out")
-        out.mkdir(parents=True, exist_ok=True)
+        if out.is_dir():
+            check_outputs(targets)
+        make_output_folder(out)
         written.append(write_csv_atomic(targets[0], recipe.table))
         written.append(write_csv_atomic(targets[1], sheet))
         if curve:
