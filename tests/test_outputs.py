@@ -152,10 +152,15 @@ def _writing_commands(folder: Path) -> dict[str, list]:
         "unmix": ["unmix", STACK, "--references", REFS, "--out", folder / "a.ome.tif"],
         "plan": ["plan", DEMO / "plan.toml", "--out", folder / "report"],
         "depth --csv": _depth(folder / "d.csv"),
+        "channels --plot": ["channels", "--probe", "CdTe:700", "--probe", "CdTeSe:780", "--extinction", "5e5",
+                            "--extinction", "5e5", "--filter", "700/30", "--filter", "780/40", "--plot",
+                            folder / "c.png"],
+        "phantom --out": ["phantom", "--wavelength-nm", "700", "--mu-a", "0.3", "--mu-s-prime", "10", "--out",
+                          folder / "recipe"],
     }
 
 
-@pytest.mark.parametrize("command", ["unmix", "plan", "depth --csv"])
+@pytest.mark.parametrize("command", ["unmix", "plan", "depth --csv", "channels --plot", "phantom --out"])
 @pytest.mark.parametrize("code", [errno.EACCES, errno.EROFS, errno.ENOSPC], ids=["read-only", "read-only-fs", "full"])
 def test_write_failures_are_one_line_and_leave_nothing(tmp_path, capsys, monkeypatch, command, code):
     folder = tmp_path / "out"
