@@ -93,6 +93,7 @@ OPTION_RANGES: dict[str, OptionRange] = {
     "volume_ul": _r(0, 1e5, "uL", True),
     "mass_g": _r(0, 5000, "g", True),
     "stock_uM": _r(0, 1e6, "uM", True),
+    "shell_nm": _r(0, 100, "nm"),
     # phantoms
     "wavelength_nm": _r(200, 3000, "nm"),
     "mu_a": _r(0, 1000, "cm^-1"),
