@@ -69,3 +69,46 @@ def test_sample_types(tmp_path, cyx, dtype):
     data, info = read_stack(p)
     assert data.dtype == np.dtype(dtype)
     np.testing.assert_array_equal(data, (cyx // 20).astype(dtype))
+
+
+def test_unmix_api_matches_channels_by_name(tmp_path):
+    """The same stack with its channels in another order gives the same abundances (matched by name)."""
+    import pandas as pd
+
+    from probeplan.io.stacks import write_stack
+    from probeplan.unmixing.pipeline import unmix
+
+    M = np.array([[0.6, 0.1], [0.3, 0.3], [0.1, 0.6]])
+    refs = pd.DataFrame({"channel": ["a", "b", "c"], "dotA": M[:, 0], "dotB": M[:, 1]})
+    ab = np.stack([np.full((4, 5), 100.0), np.full((4, 5), 30.0)])
+    stack = np.einsum("ck,kyx->cyx", M, ab)
+    order = [2, 0, 1]
+    expected = unmix(stack, refs, channel_names=["a", "b", "c"])
+    np.testing.assert_allclose(expected[:, 0, 0] / expected[:, 0, 0].sum(), [100 / 130, 30 / 130], rtol=1e-9)
+    np.testing.assert_allclose(unmix(stack[order], refs, channel_names=["c", "a", "b"]), expected, rtol=1e-9)
+    p = tmp_path / "reordered.tif"
+    write_stack(p, stack[order], channel_names=["c", "a", "b"])
+    np.testing.assert_allclose(unmix(str(p), refs), expected, rtol=1e-5)
+    with pytest.raises(InputError, match="no row for channel"):
+        unmix(stack, refs, channel_names=["a", "b", "x"])
+
+
+def test_unmix_folder_names_differing_after_the_first_dot(tmp_path, capsys):
+    from pathlib import Path
+
+    from probeplan.cli.main import main
+
+    demo = Path(__file__).resolve().parents[1] / "demo_tissue"
+    folder = tmp_path / "stacks"
+    folder.mkdir()
+    for name in ("mouse1.day1.tif", "mouse1.day3.tif"):
+        (folder / name).write_bytes((demo / "stack.tif").read_bytes())
+    out = tmp_path / "out"
+    assert main(["unmix", str(folder), "--references", str(demo / "references.csv"), "--out", str(out)]) == 0
+    assert (out / "mouse1.day1.ome.tif").is_file() and (out / "mouse1.day3.ome.tif").is_file()
+    _, info = read_stack(out / "mouse1.day1_stderr.tif")
+    assert all(n.endswith("standard error") for n in info.channel_names)
+    import json
+
+    qc = json.loads((out / "mouse1.day1_qc.json").read_text())
+    assert qc["abundance_unit"] == "counts (summed over all channels)"

@@ -34,6 +34,7 @@ import pandas as pd
 from probeplan.errors import input_error
 from probeplan.io.atomic import check_outputs, current_policy, make_output_folder, output_batch, readable_path
 from probeplan.study.table import Acquisition, read_study_table
+from probeplan.unmixing.references import abundance_unit
 
 __all__ = [
     "MEASUREMENT_COLUMNS",
@@ -114,25 +115,6 @@ class StudyResult:
     notes: list[str] = field(default_factory=list)
     outputs: dict[str, Path] = field(default_factory=dict)
     skipped: list[str] = field(default_factory=list)
-
-
-def abundance_unit(references, unit: str | None = None) -> str:
-    """What one unit of abundance means, from the references' normalisation (or the unit given).
-
-    Examples
-    --------
-    >>> from probeplan.unmixing.references import references_from_matrix
-    >>> abundance_unit(references_from_matrix([[1.0], [3.0]], ["dotA"], normalise="sum"))
-    'counts (summed over all channels)'
-    """
-    if unit:
-        return unit
-    how = getattr(references, "normalisation", None)
-    if how == "sum":
-        return "counts (summed over all channels)"
-    if how == "max":
-        return "counts (in the component's brightest channel)"
-    return "reference units (the abundance that gives the reference spectrum as written)"
 
 
 # --------------------------------------------------------------------------- one acquisition
@@ -453,22 +435,12 @@ def load_references(references, *, unit: str | None = None):
     With ``unit`` the references are used as written (abundance in that unit, e.g. ``"uM"``
     when they are counts per µM); without it each column is scaled to sum 1.
     """
-    from probeplan.unmixing.references import ReferenceSpectra, read_references_csv, references_from_matrix
+    from probeplan.unmixing.references import ReferenceSpectra, as_references
 
-    if isinstance(references, ReferenceSpectra):
-        return references
-    normalise = None if unit else "sum"
-    if isinstance(references, pd.DataFrame):
-        if "channel" not in references.columns:
-            raise input_error("references", "the DataFrame has no 'channel' column",
-                              "give a column 'channel' naming each row's channel, then one column per component")
-        comps = [c for c in references.columns if c != "channel"]
-        return references_from_matrix(references[comps].to_numpy(dtype=np.float64), comps,
-                                      references["channel"].astype(str).tolist(), normalise=normalise,
-                                      source="references DataFrame")
-    if isinstance(references, (str, os.PathLike)):
-        return read_references_csv(references, normalise=normalise)
-    raise TypeError(f"references: expected a CSV path, a DataFrame or ReferenceSpectra, got {type(references).__name__}")
+    refs = as_references(references, normalise=None if unit else "sum")
+    if not isinstance(refs, ReferenceSpectra):
+        raise TypeError(f"references: expected a CSV path, a DataFrame or ReferenceSpectra, got {type(refs).__name__}")
+    return refs
 
 
 def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.PathLike | None = None,

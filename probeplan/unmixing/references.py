@@ -36,6 +36,8 @@ __all__ = [
     "references_from_matrix",
     "references_from_controls",
     "DEFAULT_TOP_FRACTION",
+    "abundance_unit",
+    "as_references",
 ]
 
 NORMALISATIONS = ("sum", "max", None)
@@ -339,3 +341,55 @@ def references_from_controls(
         cols.append(spectrum)
     return references_from_matrix(np.stack(cols, axis=1), list(controls), channel_names, normalise=normalise,
                                   source="controls")
+
+
+def abundance_unit(references, unit: str | None = None) -> str:
+    """What one unit of abundance means, from the references' normalisation (or the unit given).
+
+    Examples
+    --------
+    >>> abundance_unit(references_from_matrix([[1.0], [3.0]], ["dotA"], normalise="sum"))
+    'counts (summed over all channels)'
+    """
+    if unit:
+        return unit
+    how = getattr(references, "normalisation", None)
+    if how == "sum":
+        return "counts (summed over all channels)"
+    if how == "max":
+        return "counts (in the component's brightest channel)"
+    return "reference units (the abundance that gives the reference spectrum as written)"
+
+
+def as_references(references, *, normalise: str | None = "sum", where: str = "references") -> ReferenceSpectra:
+    """Reference spectra from a CSV path, a DataFrame with a ``channel`` column, or :class:`ReferenceSpectra`.
+
+    Paths and DataFrames are scaled by ``normalise``; a :class:`ReferenceSpectra` is returned as it is.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> r = as_references(pd.DataFrame({"channel": ["a", "b"], "dotA": [1.0, 3.0]}))
+    >>> r.channel_names, r.matrix[:, 0].tolist()
+    (('a', 'b'), [0.25, 0.75])
+    """
+    if isinstance(references, ReferenceSpectra):
+        return references
+    if isinstance(references, (str, os.PathLike)):
+        return read_references_csv(references, normalise=normalise)
+    try:
+        import pandas as pd
+    except ImportError:  # pragma: no cover - a dependency of the package
+        pd = None
+    if pd is not None and isinstance(references, pd.DataFrame):
+        if "channel" not in references.columns:
+            raise input_error(where, "the DataFrame has no 'channel' column",
+                              "give a column 'channel' naming each row's channel, then one column per component")
+        comps = [str(c) for c in references.columns if c != "channel"]
+        try:
+            values = references[comps].to_numpy(dtype=np.float64)
+        except (TypeError, ValueError):
+            raise input_error(where, "a component column holds text", "give numbers >= 0 in every component column") from None
+        return references_from_matrix(values, comps, references["channel"].astype(str).tolist(), normalise=normalise,
+                                      source=where)
+    return references

@@ -50,6 +50,14 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--json", action="store_true", help="print a machine-readable summary")
 
 
+def _stem(name: str) -> str:
+    """The file name without its image extension only: ``mouse1.day3.ome.tif`` -> ``mouse1.day3``."""
+    for ext in (".ome.tiff", ".ome.tif", ".tiff", ".tif"):
+        if name.lower().endswith(ext):
+            return name[: -len(ext)]
+    return name
+
+
 def _sha256(path) -> str:
     import hashlib
 
@@ -181,12 +189,12 @@ def run(args: argparse.Namespace) -> int:
             raise input_error("--out", f"{str(out)!r} is a file but STACK is a folder", "give an output folder")
         if out.resolve() == stack.resolve():
             raise input_error("--out", f"{str(out)!r} is the input folder", "give a separate output folder")
-        targets = [(s, out / (s.name.split(".")[0] + ".ome.tif")) for s in stacks]
+        targets = [(s, out / (_stem(s.name) + ".ome.tif")) for s in stacks]
         by_target: dict = {}
         for s, t in targets:
             if t in by_target:
                 raise input_error(str(stack), f"{by_target[t].name!r} and {s.name!r} would both be written to {t.name!r}",
-                                  "rename one of them (names must differ before the first '.')")
+                                  "rename one of them (names must differ once '.ome.tif'/'.tif' is removed)")
             by_target[t] = s
         # The outermost folder this command creates, removed again if no stack is finished.
         for parent in (out, *out.absolute().parents):
