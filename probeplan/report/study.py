@@ -25,8 +25,8 @@ ANIMAL_CAUTION = (
     "time points, doses and humane end points. Statistics here are exploratory aids; the study's pre-registered "
     "analysis plan and a statistician decide what is reported."
 )
-#: Most panels in one figure (ROI x component); the rest are in the tables.
-MAX_PANELS = 12
+#: Most panels in one figure (ROI x component, in table order); the rest are in the tables.
+MAX_PANELS = 6
 
 
 def _panels(measurements, background):
