@@ -112,3 +112,26 @@ def test_unmix_folder_names_differing_after_the_first_dot(tmp_path, capsys):
 
     qc = json.loads((out / "mouse1.day1_qc.json").read_text())
     assert qc["abundance_unit"] == "counts (summed over all channels)"
+
+
+def test_unmix_with_references_from_controls_on_the_command_line(tmp_path, capsys):
+    """Spectra measured from the demo's controls agree with the channel model that made them (demo references)."""
+    from pathlib import Path
+
+    from probeplan.cli.main import main
+    from probeplan.unmixing.references import read_references_csv
+
+    demo = Path(__file__).resolve().parents[1] / "demo_tissue"
+    out = tmp_path / "a.ome.tif"
+    argv = ["unmix", str(demo / "stack.tif"), "--out", str(out), "--unlabelled", str(demo / "unlabelled.tif")]
+    for k, name in enumerate(("probe A (700)", "probe B (780)", "probe C (880)")):
+        argv += ["--control", f"{name}={demo / f'control_{k + 1}.tif'}"]
+    assert main(argv) == 0
+    measured = read_references_csv(tmp_path / "a_references.csv")
+    model = read_references_csv(demo / "references.csv")
+    for k in range(3):
+        j = int(np.argmax(model.matrix[:, k]))
+        assert measured.matrix[j, k] == pytest.approx(model.matrix[j, k], rel=0.05)
+    assert main(["unmix", str(demo / "stack.tif"), "--out", str(tmp_path / "b.ome.tif"),
+                 "--control", f"x={demo / 'control_1.tif'}"]) == 2
+    assert "--unlabelled" in capsys.readouterr().err

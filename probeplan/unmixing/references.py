@@ -38,6 +38,8 @@ __all__ = [
     "DEFAULT_TOP_FRACTION",
     "abundance_unit",
     "as_references",
+    "references_from_control_files",
+    "parse_control_specs",
 ]
 
 NORMALISATIONS = ("sum", "max", None)
@@ -393,3 +395,66 @@ def as_references(references, *, normalise: str | None = "sum", where: str = "re
         return references_from_matrix(values, comps, references["channel"].astype(str).tolist(), normalise=normalise,
                                       source=where)
     return references
+
+
+def parse_control_specs(specs: Sequence[str], *, option: str = "--control") -> dict[str, Path]:
+    """``["NAME=STACK.tif", ...]`` -> ``{NAME: Path}`` (names unique, files existing).
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> p = pathlib.Path(tempfile.mkdtemp()) / "a.tif"; _ = p.write_bytes(b"")
+    >>> list(parse_control_specs([f"dot A={p}"]))
+    ['dot A']
+    """
+    out: dict[str, Path] = {}
+    for spec in specs:
+        name, sep, file = spec.partition("=")
+        name, file = name.strip(), file.strip()
+        if not sep or not name or not file:
+            raise input_error(option, f"{spec!r} is not NAME=STACK", f"give e.g. {option} 'probe A=control_1.tif'")
+        if name in out:
+            raise input_error(option, f"component {name!r} given twice", "give one control stack per component")
+        if not Path(file).is_file():
+            raise input_error(file, "control stack not found", f"check the path given to {option}")
+        out[name] = Path(file)
+    return out
+
+
+def references_from_control_files(controls: Mapping[str, str | os.PathLike], unlabelled: str | os.PathLike, *,
+                                  normalise: str | None = "sum", unlabelled_name: str | None = None,
+                                  top_fraction: float = DEFAULT_TOP_FRACTION) -> ReferenceSpectra:
+    """Reference spectra from single-probe control stack files and an unlabelled control file.
+
+    Each stack is read with its channel names (OME-TIFF, ImageJ); the controls' channels are
+    matched to the unlabelled control's by name when they have names.  See
+    :func:`references_from_controls` for the rule.  With ``unlabelled_name`` the unlabelled
+    control's own mean spectrum (its autofluorescence plus camera offset, the constant part
+    of every pixel) is added as one more component of that name.
+    """
+    from probeplan.io.stacks import read_stack
+
+    def load(path):
+        data, info = read_stack(path)
+        return np.moveaxis(data, info.channel_axis, 0).astype(np.float64), info.channel_names
+
+    bg, names = load(unlabelled)
+    stacks = {}
+    for comp, path in controls.items():
+        d, n = load(path)
+        if names is not None and n is not None and tuple(n) != tuple(names):
+            if sorted(n) != sorted(names):
+                raise input_error(str(path), f"channels {list(n)} differ from the unlabelled control's {list(names)}",
+                                  "acquire every control with the same channels")
+            d = d[[list(n).index(c) for c in names]]
+        stacks[comp] = d
+    refs = references_from_controls(stacks, bg, channel_names=names, normalise=normalise, top_fraction=top_fraction)
+    refs = ReferenceSpectra(refs.matrix, refs.component_names, refs.channel_names,
+                            "controls: " + ", ".join(f"{k}={Path(v).name}" for k, v in controls.items()),
+                            refs.normalisation)
+    if unlabelled_name:
+        column = np.nanmean(bg.reshape(bg.shape[0], -1), axis=1)
+        column = normalise_columns(column[:, None], normalise)[:, 0]
+        refs = ReferenceSpectra(np.hstack([refs.matrix, column[:, None]]), (*refs.component_names, unlabelled_name),
+                                refs.channel_names, refs.source, refs.normalisation)
+    return refs

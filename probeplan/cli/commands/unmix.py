@@ -21,6 +21,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     refs.add_argument("--references", help="reference spectra CSV: channel,<component>,...")
     refs.add_argument("--references-from-plan", metavar="PLAN",
                       help="predict the reference spectra from a study plan's probes and channels at its target depth")
+    refs.add_argument("--control", action="append", metavar="NAME=STACK",
+                      help="measure component NAME's spectrum from a single-probe control stack (repeatable; "
+                           "needs --unlabelled)")
+    parser.add_argument("--unlabelled", metavar="STACK",
+                        help="unlabelled control stack (no probe), subtracted from each --control")
+    parser.add_argument("--unlabelled-as", metavar="NAME", default=None,
+                        help="also unmix the unlabelled control's spectrum as component NAME (e.g. autofluorescence)")
     parser.add_argument("--out", required=True, help="abundance OME-TIFF to write (a folder when STACK is a folder)")
     parser.add_argument("--method", choices=("nnls", "ls", "wls"), default="nnls",
                         help="nnls: exact non-negative LS (default); ls: unconstrained; wls: Poisson-weighted LS")
@@ -166,8 +173,18 @@ def run(args: argparse.Namespace) -> int:
 
         refs = plan_references(load_plan(args.references_from_plan))
         args.references = args.references_from_plan
+    elif args.control:
+        from probeplan.unmixing.references import parse_control_specs, references_from_control_files
+
+        if not args.unlabelled:
+            raise input_error("--control", "needs --unlabelled", "give the unlabelled control stack with --unlabelled")
+        controls = parse_control_specs(args.control)
+        refs = references_from_control_files(controls, args.unlabelled, unlabelled_name=args.unlabelled_as)
+        args.references = args.unlabelled
     else:
         refs = read_references_csv(args.references)
+    if args.unlabelled and not args.control:
+        raise input_error("--unlabelled", "is used only with --control", "add --control NAME=STACK or drop --unlabelled")
     calibration = None
     if args.calibration:
         from probeplan.study.calibration import read_calibration_csv
@@ -237,6 +254,12 @@ def run(args: argparse.Namespace) -> int:
     calibration_flags: dict = {}
     if created is not None:
         out.mkdir(parents=True, exist_ok=True)
+    if args.control:
+        from probeplan.unmixing.references import write_references_csv
+
+        derived = folder / (("references_from_controls.csv") if stack.is_dir() else
+                            (out.name.split(".ome.")[0].split(".tif")[0] + "_references.csv"))
+        write_references_csv(derived, refs)
     previous = signal.signal(signal.SIGTERM, _terminate)
     try:
         for s, target in targets:
