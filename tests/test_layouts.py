@@ -135,3 +135,36 @@ def test_unmix_with_references_from_controls_on_the_command_line(tmp_path, capsy
     assert main(["unmix", str(demo / "stack.tif"), "--out", str(tmp_path / "b.ome.tif"),
                  "--control", f"x={demo / 'control_1.tif'}"]) == 2
     assert "--unlabelled" in capsys.readouterr().err
+
+
+def test_ome_zarr_read_write_and_unmix(tmp_path, capsys):
+    """OME-Zarr (NGFF 0.4) written and read back with names and pixel size; unmix reads and writes it."""
+    from pathlib import Path
+
+    import zarr
+
+    from probeplan.cli.main import main
+    from probeplan.io.ngff import inspect_ome_zarr
+    from probeplan.io.stacks import write_stack
+
+    demo = Path(__file__).resolve().parents[1] / "demo_tissue"
+    data, info = read_stack(demo / "stack.tif")
+    p = tmp_path / "stack.ome.zarr"
+    write_stack(p, data, channel_names=info.channel_names, pixel_size_um=(6.5, 6.5), dtype=data.dtype)
+    attrs = dict(zarr.open_group(str(p), mode="r").attrs)
+    assert attrs["multiscales"][0]["version"] == "0.4"
+    assert [a["name"] for a in attrs["multiscales"][0]["axes"]] == ["c", "y", "x"]
+    back, binfo = read_stack(p)
+    np.testing.assert_array_equal(back, data)
+    assert binfo.channel_names == info.channel_names and binfo.pixel_size_um == (6.5, 6.5)
+    out = tmp_path / "res" / "a.ome.zarr"
+    out.parent.mkdir()
+    assert main(["unmix", str(p), "--references", str(demo / "references.csv"), "--out", str(out)]) == 0
+    ab, ainfo = read_stack(out)
+    ref = tmp_path / "ref.ome.tif"
+    assert main(["unmix", str(demo / "stack.tif"), "--references", str(demo / "references.csv"), "--out", str(ref)]) == 0
+    np.testing.assert_allclose(ab, read_stack(ref)[0], rtol=1e-6)
+    assert ainfo.pixel_size_um == (6.5, 6.5) and (tmp_path / "res" / "a_stderr.ome.zarr").is_dir()
+    assert not list((tmp_path / "res").glob(".*.part"))
+    stderr_info, _ = inspect_ome_zarr(tmp_path / "res" / "a_stderr.ome.zarr")
+    assert all(n.endswith("standard error") for n in stderr_info.channel_names)

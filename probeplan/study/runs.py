@@ -416,10 +416,16 @@ def read_table_csv(path: str | os.PathLike) -> pd.DataFrame:
 
 # --------------------------------------------------------------------------- the study
 def _sha256(path) -> str:
+    """Checksum of a file, or of every file in a folder (an OME-Zarr image) with its relative name."""
     h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 22), b""):
-            h.update(block)
+    p = Path(path)
+    files = sorted(f for f in p.rglob("*") if f.is_file()) if p.is_dir() else [p]
+    for f in files:
+        if p.is_dir():
+            h.update(str(f.relative_to(p)).encode())
+        with open(f, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 22), b""):
+                h.update(block)
     return h.hexdigest()
 
 
@@ -487,7 +493,7 @@ def _done(entry, acq, digest) -> bool:
     outs = entry.get("outputs")
     if not isinstance(outs, dict):
         return False
-    return all(isinstance(h, str) and Path(p).is_file() and _sha256(p) == h for p, h in outs.items())
+    return all(isinstance(h, str) and Path(p).exists() and _sha256(p) == h for p, h in outs.items())
 
 
 def _check_acquisition(acq: Acquisition, refs, settings: StudySettings):

@@ -596,12 +596,15 @@ def output_paths(out_path, *, roi: bool = False) -> dict:
 
     out = Path(out_path)
     name = out.name
-    for ext in (".ome.tiff", ".ome.tif", ".tiff", ".tif"):
+    zarr_out = name.lower().endswith(".zarr")
+    for ext in (".ome.tiff", ".ome.tif", ".tiff", ".tif", ".ome.zarr", ".zarr"):
         if name.lower().endswith(ext):
             name = name[: -len(ext)]
             break
     paths = {"abundance": out}
     for kind, suffix in _OUTPUT_SUFFIXES.items():
+        if zarr_out and suffix.endswith(".tif"):
+            suffix = suffix[: -len(".tif")] + ".ome.zarr"
         if kind != "roi" or roi:
             paths[kind] = out.with_name(name + suffix)
     return paths
@@ -759,6 +762,8 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     qc = QcAccumulator(M, names, method, cond)
     roi_acc = RoiAccumulator(roi_list, names, labels) if roi_list else None
     writers = []
+    if str(paths["abundance"]).lower().endswith(".zarr"):
+        from probeplan.io.ngff import ZarrStackWriter as StackWriter  # noqa: N813 - same interface
     try:
         writers.append(StackWriter(paths["abundance"], (K, *spatial), axes=axes, channel_names=names,
                                    pixel_size_um=info.pixel_size_um))

@@ -16,7 +16,8 @@ _STACK_SUFFIXES = (".tif", ".tiff")
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     from probeplan.cli.common import add_output_options
 
-    parser.add_argument("stack", help="TIFF/OME-TIFF stack (C,Y,X), (C,Z,Y,X), (T,C,Y,X), or a folder of stacks")
+    parser.add_argument("stack", help="TIFF/OME-TIFF stack (C,Y,X), (C,Z,Y,X), (T,C,Y,X) or Y,X,C with --channel-axis 2, "
+                                      "an OME-Zarr image, or a folder of TIFF stacks")
     refs = parser.add_mutually_exclusive_group(required=True)
     refs.add_argument("--references", help="reference spectra CSV: channel,<component>,...")
     refs.add_argument("--references-from-plan", metavar="PLAN",
@@ -28,7 +29,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="unlabelled control stack (no probe), subtracted from each --control")
     parser.add_argument("--unlabelled-as", metavar="NAME", default=None,
                         help="also unmix the unlabelled control's spectrum as component NAME (e.g. autofluorescence)")
-    parser.add_argument("--out", required=True, help="abundance OME-TIFF to write (a folder when STACK is a folder)")
+    parser.add_argument("--out", required=True, help="abundance OME-TIFF to write, or OME-Zarr when it ends .ome.zarr "
+                                                     "(a folder when STACK is a folder)")
     parser.add_argument("--method", choices=("nnls", "ls", "wls"), default="nnls",
                         help="nnls: exact non-negative LS (default); ls: unconstrained; wls: Poisson-weighted LS")
     parser.add_argument("--channel-axis", type=int, default=None,
@@ -66,12 +68,19 @@ def _stem(name: str) -> str:
 
 
 def _sha256(path) -> str:
+    """Checksum of a file, or of every file in a folder (an OME-Zarr image) with its relative name."""
     import hashlib
+    from pathlib import Path
 
     h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 22), b""):
-            h.update(block)
+    p = Path(path)
+    files = sorted(f for f in p.rglob("*") if f.is_file()) if p.is_dir() else [p]
+    for f in files:
+        if p.is_dir():
+            h.update(str(f.relative_to(p)).encode())
+        with open(f, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 22), b""):
+                h.update(block)
     return h.hexdigest()
 
 
@@ -134,7 +143,7 @@ def _is_done(entry, stack, settings) -> bool:
     if entry.get("settings_sha256") != settings or entry.get("input_sha256") != _sha256(stack):
         return False
     for p, digest in entry["outputs"].items():
-        if not isinstance(digest, str) or not Path(p).is_file() or _sha256(p) != digest:
+        if not isinstance(digest, str) or not Path(p).exists() or _sha256(p) != digest:
             return False
     return True
 
@@ -198,7 +207,9 @@ def run(args: argparse.Namespace) -> int:
     label_files = [r for r in args.roi if r.lower().endswith(_STACK_SUFFIXES)]
     if len(label_files) > 1:
         raise input_error("--roi", f"{len(label_files)} label images given", "give at most one label TIFF")
-    if stack.is_dir():
+    from probeplan.io.ngff import is_ome_zarr
+
+    if stack.is_dir() and not is_ome_zarr(stack):
         stacks = sorted(p for p in stack.iterdir() if p.is_file() and p.suffix.lower() in _STACK_SUFFIXES)
         if not stacks:
             raise input_error(str(stack), "holds no .tif/.tiff stack", "give a folder of TIFF stacks or one stack file")
