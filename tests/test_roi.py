@@ -121,3 +121,18 @@ def test_otsu_roi_finds_a_bright_disc():
     # every disc pixel found; Otsu's threshold leans towards the larger class, so a rare background pixel
     # 3 sigma up may join (at most 0.1 % of the image)
     assert (lab.astype(bool) >= disc).all() and (lab.astype(bool) != disc).sum() <= 4
+
+
+def test_unmix_file_takes_ellipse_and_polygon_rois(tmp_path):
+    from pathlib import Path
+
+    from probeplan.unmixing.pipeline import unmix_file
+    from probeplan.unmixing.references import read_references_csv
+
+    demo = Path(__file__).resolve().parents[1] / "demo_tissue"
+    res = unmix_file(demo / "stack.tif", read_references_csv(demo / "references.csv"), tmp_path / "a.ome.tif",
+                     rois=["t:ellipse:38.4,43.5,8,8", "p:polygon:2,100,20,100,20,126,2,126", "background:2,100,20,126"])
+    rows = {(r["roi"], r["component"]): r for r in res.roi_rows}
+    assert rows[("t", "probe A (700)")]["n_pixels"] == pytest.approx(np.pi * 64, rel=0.1)
+    # the polygon traces the background rectangle: identical statistics
+    assert rows[("p", "probe A (700)")]["mean"] == rows[("background", "probe A (700)")]["mean"]

@@ -703,7 +703,7 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     from probeplan.io.atomic import check_outputs, refuse_input_paths, write_json_atomic
     from probeplan.unmixing.overlay import downsample_mean, overlay_factor, write_overlay_png
     from probeplan.unmixing.references import abundance_unit
-    from probeplan.unmixing.roi import Roi, RoiAccumulator, parse_rectangle, rois_from_labels, write_roi_csv
+    from probeplan.unmixing.roi import Roi, RoiAccumulator, parse_roi, rois_from_labels, write_roi_csv
 
     if method not in METHODS:
         raise input_error("method", f"{method!r} is not known", f"choose one of {', '.join(METHODS)}")
@@ -740,7 +740,7 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
                               "give a label image of the stack's Y x X size")
         roi_list += rois_from_labels(labels)
     for spec in rois or ():
-        roi_list.append(spec if isinstance(spec, Roi) else parse_rectangle(spec, shape=(ny, nx)))
+        roi_list.append(spec if isinstance(spec, Roi) else parse_roi(spec, shape=(ny, nx)))
     paths = output_paths(out_path, roi=bool(roi_list))
     inputs = [info.path, *(r.info.path for r in aux.values()), *extra_inputs]
     if labels_path is not None:

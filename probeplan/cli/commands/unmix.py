@@ -43,7 +43,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--gain", type=float, default=1.0, help="camera gain, e-/count (default 1)")
     parser.add_argument("--read-noise", type=float, default=0.0, help="camera read noise, e- rms (default 0)")
     parser.add_argument("--roi", action="append", default=[],
-                        help="ROI 'name:x0,y0,x1,y1' (pixels, end excluded) or a label TIFF; repeatable")
+                        help="ROI 'name:x0,y0,x1,y1' (pixels, end excluded), 'name:ellipse:cx,cy,rx,ry', "
+                             "'name:polygon:x1,y1,x2,y2,...' or a label TIFF; repeatable")
     parser.add_argument("--roi-background", default="background", help="name of the background ROI (default background)")
     parser.add_argument("--memory-mb", type=float, default=None, help="working-memory bound in MiB (default 256)")
     parser.add_argument("--scheduler", default=None, help="address of a running dask.distributed scheduler")
