@@ -50,7 +50,7 @@ def time_course_figure(measurements, *, quantity="tbr", background="background",
         ax = axes[i // cols][i % cols]
         sub = measurements[(measurements["roi"] == roi) & (measurements["component"] == comp)]
         for gi, g in enumerate(groups):
-            for j, (animal, a) in enumerate(sub[sub["group"].astype(str) == g].groupby("animal")):
+            for j, (_, a) in enumerate(sub[sub["group"].astype(str) == g].groupby("animal")):
                 a = a.sort_values("time_h")
                 ax.plot(a["time_h"], a[quantity], "o-", color=colour(gi), alpha=0.7, ms=4,
                         label=g if j == 0 else None)

@@ -7,9 +7,9 @@ excluded; x is the column, y the row), ellipses ``"name:ellipse:cx,cy,rx,ry"``, 
 coordinates with the origin at the image's top-left corner: pixel ``(x, y)`` belongs to the
 ROI when its centre ``(x + 0.5, y + 0.5)`` lies inside (so a polygon tracing a rectangle's
 corners selects exactly that rectangle).  ROIs are saved to and read from an ROI file of our
-own (:func:`write_roi_file`, :func:`read_roi_file`; JSON, described there).  For stacks with leading axes (Z or T), an ROI pools the pixels of all
-planes.  The target-to-background ratio (TBR) of ROI ``r`` for probe ``k`` is
-``mean_r,k / mean_background,k`` where the background is the ROI named by ``background``
+own (:func:`write_roi_file`, :func:`read_roi_file`; JSON, described there).  For stacks with
+leading axes (Z or T), an ROI pools the pixels of all planes.  The target-to-background ratio
+(TBR) of ROI ``r`` for probe ``k`` is ``mean_r,k / mean_background,k`` where the background is the ROI named by ``background``
 (default ``"background"``; common practice, no source).  NaN pixels (NaN or saturated
 input) are left out and counted.
 """
@@ -97,7 +97,8 @@ def _shaped(spec: str, shape) -> Roi:
         values = [float(v) for v in rest.split(",")]
     except ValueError:
         raise input_error("--roi", f"{spec!r}: coordinates are not numbers",
-                          f"give e.g. 'node:{kind}:" + ("40,30,8,6'" if kind == "ellipse" else "10,10,40,12,25,40'"))
+                          f"give e.g. 'node:{kind}:" + ("40,30,8,6'" if kind == "ellipse" else "10,10,40,12,25,40'")
+                          ) from None
     if not all(np.isfinite(values)):
         raise input_error("--roi", f"{spec!r} has a non-finite coordinate", "give finite pixel coordinates")
     if kind == "ellipse":
