@@ -9,8 +9,8 @@ ROI when its centre ``(x + 0.5, y + 0.5)`` lies inside (so a polygon tracing a r
 corners selects exactly that rectangle).  ROIs are saved to and read from an ROI file of our
 own (:func:`write_roi_file`, :func:`read_roi_file`; JSON, described there).  For stacks with
 leading axes (Z or T), an ROI pools the pixels of all planes.  The target-to-background ratio
-(TBR) of ROI ``r`` for probe ``k`` is ``mean_r,k / mean_background,k`` where the background is the ROI named by ``background``
-(default ``"background"``; common practice, no source).  NaN pixels (NaN or saturated
+(TBR) of ROI ``r`` for probe ``k`` is ``mean_r,k / mean_background,k`` where the background is
+the ROI named by ``background`` (default ``"background"``; common practice, no source).  NaN pixels (NaN or saturated
 input) are left out and counted.
 """
 
