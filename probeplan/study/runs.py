@@ -53,6 +53,9 @@ __all__ = [
 #: Columns of ``measurements.csv`` (the first eight are the stable interface).
 MEASUREMENT_COLUMNS = ("animal", "group", "time_h", "roi", "component", "mean", "se", "tbr", "tbr_se", "sd",
                        "n_pixels", "n_excluded", "unit", "acquisition", "channel_match")
+#: Files a study writes at the top of its output folder (a rerun into the same folder may replace them).
+_OWN_FILES = ("measurements.csv", "groups.csv", "kinetics.csv", "report.html", "rois.json",
+              "references_from_controls.csv")
 #: Manifest of finished acquisitions in the output folder (checksums), used to resume.
 MANIFEST_NAME = "study_manifest.json"
 MEASUREMENTS_NOTES = (
@@ -631,10 +634,10 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
             # a rerun into the study's own folder resumes it: what the earlier run wrote may be replaced
             policy = current_policy()
             if policy is not None:
-                policy.allow([out / n for n in ("measurements.csv", "groups.csv", "kinetics.csv", "report.html")])
+                policy.allow([out / n for n in _OWN_FILES])
                 policy.allow(p for e in manifest["entries"].values() if isinstance(e, dict)
                              for p in (e.get("outputs") or {}))
-        check_outputs([out / n for n in ("measurements.csv", "groups.csv", "kinetics.csv", "report.html")])
+        check_outputs([out / n for n in _OWN_FILES])
     digest = _settings_digest(settings, refs, unit_text)
     tables = []
     skipped = []
