@@ -65,13 +65,22 @@ def _overlay(abundances: np.ndarray):
     return np.clip(rgb, 0.0, 1.0)
 
 
-def _unmix(stack_path: Path, refs_path: Path, dark_path: Path | None, method: str, gain: float, read_noise: float,
+def _references(refs_source):
+    """Reference spectra from a CSV path, or from control stacks: ``("controls", {name: path}, unlabelled, as_name)``."""
+    from probeplan.unmixing.references import read_references_csv, references_from_control_files
+
+    if isinstance(refs_source, tuple):
+        _, controls, unlabelled, as_name = refs_source
+        return references_from_control_files(controls, unlabelled, unlabelled_name=as_name or None)
+    return read_references_csv(refs_source)
+
+
+def _unmix(stack_path: Path, refs_path, dark_path: Path | None, method: str, gain: float, read_noise: float,
            offset: bool, rois_text: str, background: str) -> dict:
     """Unmix with :func:`probeplan.unmixing.pipeline.unmix_file` into the session folder (progress bar per block), read back."""
     import tifffile
 
     from probeplan.io import stacks as pio
-    from probeplan.unmixing.references import read_references_csv
     from probeplan.unmixing.pipeline import unmix_file
 
     notes: list[str] = []
@@ -79,7 +88,7 @@ def _unmix(stack_path: Path, refs_path: Path, dark_path: Path | None, method: st
     folder.mkdir(parents=True, exist_ok=True)
     stem = safe_name(stack_path.stem, "stack")
     with captured_warnings(notes):
-        refs = read_references_csv(refs_path)
+        refs = _references(refs_path)
         with pio.open_stack(stack_path) as reader:
             n_rows = reader.info.n_rows
         bar = st.progress(0.0, text="unmixing…")
@@ -144,7 +153,21 @@ def separate_view() -> None:
     c = st.columns(2)
     up_stack = c[0].file_uploader("image stack (TIFF / OME-TIFF)", type=["tif", "tiff"], key="up_stack",
                                   disabled=use_demo)
-    up_refs = c[1].file_uploader("reference spectra (CSV)", type=["csv", "txt"], key="up_refs", disabled=use_demo)
+    ss.setdefault("w_sep_refs_from", "a CSV file")
+    ss.setdefault("w_sep_unlabelled_as", "")
+    c[1].radio("reference spectra from", ["a CSV file", "control stacks"], key="w_sep_refs_from", horizontal=True,
+               disabled=use_demo, help="Control stacks: one stack per probe holding only that probe (the file name, "
+               "without its extension, names the probe) and one unlabelled stack.")
+    from_controls = ss["w_sep_refs_from"] == "control stacks" and not use_demo
+    up_refs = up_controls = up_unlabelled = None
+    if from_controls:
+        up_controls = c[1].file_uploader("single-probe control stacks (one per probe)", type=["tif", "tiff"],
+                                         key="up_controls", accept_multiple_files=True)
+        up_unlabelled = c[1].file_uploader("unlabelled control stack", type=["tif", "tiff"], key="up_unlabelled")
+        c[1].text_input("also unmix the unlabelled control's spectrum as (optional, e.g. autofluorescence)",
+                        key="w_sep_unlabelled_as")
+    else:
+        up_refs = c[1].file_uploader("reference spectra (CSV)", type=["csv", "txt"], key="up_refs", disabled=use_demo)
     c = st.columns(4)
     c[0].selectbox("method", ["nnls", "ls", "wls"], key="w_sep_method",
                    format_func={"nnls": "non-negative least squares", "ls": "least squares",
@@ -164,13 +187,25 @@ def separate_view() -> None:
             if use_demo:
                 stack_path, refs_path, dark = demo
             else:
-                if up_stack is None or up_refs is None:
-                    from probeplan.errors import input_error
+                from probeplan.errors import input_error
 
+                if up_stack is None or (not from_controls and up_refs is None):
                     raise input_error("upload", "a stack and a reference spectra CSV are both needed",
                                       "upload both files, or tick 'use the demo'")
+                if from_controls and (not up_controls or up_unlabelled is None):
+                    raise input_error("upload", "control stacks need at least one single-probe stack and the "
+                                      "unlabelled stack", "upload both kinds, or use a reference spectra CSV")
                 stack_path = save_upload(up_stack.getvalue(), up_stack.name or "stack.tif", sub="uploads")
-                refs_path = save_upload(up_refs.getvalue(), up_refs.name or "references.csv", sub="uploads")
+                if from_controls:
+                    controls = {}
+                    for f in up_controls:
+                        saved = save_upload(f.getvalue(), f.name or "control.tif", sub="controls")
+                        controls[Path(f.name or saved.name).name.split(".")[0]] = saved
+                    unlabelled = save_upload(up_unlabelled.getvalue(), up_unlabelled.name or "unlabelled.tif",
+                                             sub="controls")
+                    refs_path = ("controls", controls, unlabelled, str(ss["w_sep_unlabelled_as"]).strip())
+                else:
+                    refs_path = save_upload(up_refs.getvalue(), up_refs.name or "references.csv", sub="uploads")
             ss["unmix_result"] = _unmix(stack_path, refs_path, dark, str(ss["w_sep_method"]), float(ss["w_sep_gain"]),
                                         float(ss["w_sep_read_noise"]), bool(ss["w_sep_offset"]), str(ss["w_sep_rois"]),
                                         str(ss["w_sep_background"]).strip())

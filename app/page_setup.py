@@ -9,6 +9,8 @@ set-up, not a recommendation).
 from __future__ import annotations
 
 import streamlit as st
+
+from probeplan.model.fluorescence import DEFAULT_CONCENTRATION_UM
 from page_common import fmt
 from page_model import Setup, camera_names, material_ranges, skin_mpe
 
@@ -56,7 +58,7 @@ DEFAULTS: dict = {
     "w_exposure_s": 0.05,
     "w_target_depth": 2.0,
     "w_target_size": 3.0,
-    "w_concentration": 0.01,
+    "w_concentration": DEFAULT_CONCENTRATION_UM,
     "w_uptake_ratio": 5.0,
     "w_af_on": True,
     "w_n_probes": 3,

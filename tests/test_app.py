@@ -341,6 +341,23 @@ def test_separate_under_abuse_one_line_each_nothing_outside_the_session(tmp_path
     assert saved == ["_1_.tif", "refs.csv"], saved
     assert all(folder in p.resolve().parents for p in folder.rglob("*"))
 
+def test_separate_with_references_from_control_stacks():
+    """The demo's single-probe and unlabelled controls give the references on the page."""
+    demo = Path(__file__).resolve().parents[1] / "demo_tissue"
+    at = _view(_app(), "separate")
+    at.radio(key="w_sep_refs_from").set_value("control stacks").run()
+    at.file_uploader(key="up_stack").set_value(("stack.tif", (demo / "stack.tif").read_bytes(), "image/tiff"))
+    at.file_uploader(key="up_controls").set_value([
+        (f"probe{k}.tif", (demo / f"control_{k}.tif").read_bytes(), "image/tiff") for k in (1, 2, 3)])
+    at.file_uploader(key="up_unlabelled").set_value(("unlabelled.tif", (demo / "unlabelled.tif").read_bytes(),
+                                                     "image/tiff"))
+    at.text_input(key="w_sep_unlabelled_as").set_value("autofluorescence")
+    at.button(key="btn_unmix").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    assert at.session_state["unmix_result"]["names"] == ["probe1", "probe2", "probe3", "autofluorescence"]
+
+
 # --------------------------------------------------------------------------- plan view
 
 

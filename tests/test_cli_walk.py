@@ -181,7 +181,7 @@ def test_unmix_folder_of_bad_stacks_leaves_no_output_folder(tmp_path, capsys):
 def test_unmix_folder_with_colliding_output_names_is_refused(tmp_path, capsys):
     folder = tmp_path / "stacks"
     folder.mkdir()
-    for name in ("a.tif", "a.v2.tif"):  # both would become a.ome.tif
+    for name in ("a.tif", "a.ome.tif"):  # both would become a.ome.tif
         (folder / name).write_bytes((DEMO / "stack.tif").read_bytes())
     out = tmp_path / "out"
     code, _, err = _run(["unmix", folder, "--references", DEMO / "references.csv", "--out", out], capsys)

@@ -85,3 +85,30 @@ def test_unmix_command_with_references_from_plan(tmp_path, capsys):
                  "--dark", str(folder / "dark.tif"), "--out", str(out)]) == 0
     abundance, _ = read_stack(out)
     assert abundance.shape == (3, 128, 128)
+
+
+def test_demo_study_tbr_and_half_life_against_the_known_truth(demo_result):
+    """The demo study was generated with known concentrations (our own synthetic truth)."""
+    from probeplan.demo import DEMO_STUDY_HALF_LIFE_H, DEMO_STUDY_TIMES_H, demo_study_truth
+    from probeplan.study.runs import read_table_csv
+
+    study = demo_result.out_dir / "study"
+    m = read_table_csv(study / "measurements.csv")
+    truth = demo_study_truth()
+    both = m.merge(truth, on=["animal", "group", "time_h", "roi", "component"], suffixes=("", "_true"))
+    assert len(m) == 6 * len(DEMO_STUDY_TIMES_H) * 4 * 4  # animals x times x ROIs x components (3 probes + autofl.)
+    assert len(both) == 6 * len(DEMO_STUDY_TIMES_H) * 4 * 3
+    tumour = both[(both["roi"] == "tumour") & (both["component"] == "probe A (700)")]
+    z = (tumour["tbr"] - tumour["tbr_true"]) / tumour["tbr_se"]
+    assert (z.abs() < 5).all() and np.allclose(tumour["tbr"], tumour["tbr_true"], rtol=0.05)
+    k = read_table_csv(study / "kinetics.csv")
+    kt = k[(k["roi"] == "tumour") & (k["component"] == "probe A (700)")]
+    assert (kt["model"] == "uptake-washout").all()
+    assert np.allclose(kt["half_life_h"], DEMO_STUDY_HALF_LIFE_H, rtol=0.05)
+    g = read_table_csv(study / "groups.csv")
+    assert set(g["group_a"]) | set(g["group_b"]) == {"control", "blocked"}
+    html = (study / "report.html").read_text(encoding="utf-8")
+    assert "For research use only" in html and html.count("data:image/png") >= 3
+    assert "Demo study" in demo_result.report.read_text(encoding="utf-8")
+    assert (demo_result.out_dir / "study_data" / "study.csv").is_file()
+    assert any(p.name.endswith(".channel1.tif") for p in (demo_result.out_dir / "study_data").iterdir())

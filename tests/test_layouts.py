@@ -69,3 +69,102 @@ def test_sample_types(tmp_path, cyx, dtype):
     data, info = read_stack(p)
     assert data.dtype == np.dtype(dtype)
     np.testing.assert_array_equal(data, (cyx // 20).astype(dtype))
+
+
+def test_unmix_api_matches_channels_by_name(tmp_path):
+    """The same stack with its channels in another order gives the same abundances (matched by name)."""
+    import pandas as pd
+
+    from probeplan.io.stacks import write_stack
+    from probeplan.unmixing.pipeline import unmix
+
+    M = np.array([[0.6, 0.1], [0.3, 0.3], [0.1, 0.6]])
+    refs = pd.DataFrame({"channel": ["a", "b", "c"], "dotA": M[:, 0], "dotB": M[:, 1]})
+    ab = np.stack([np.full((4, 5), 100.0), np.full((4, 5), 30.0)])
+    stack = np.einsum("ck,kyx->cyx", M, ab)
+    order = [2, 0, 1]
+    expected = unmix(stack, refs, channel_names=["a", "b", "c"])
+    np.testing.assert_allclose(expected[:, 0, 0] / expected[:, 0, 0].sum(), [100 / 130, 30 / 130], rtol=1e-9)
+    np.testing.assert_allclose(unmix(stack[order], refs, channel_names=["c", "a", "b"]), expected, rtol=1e-9)
+    p = tmp_path / "reordered.tif"
+    write_stack(p, stack[order], channel_names=["c", "a", "b"])
+    np.testing.assert_allclose(unmix(str(p), refs), expected, rtol=1e-5)
+    with pytest.raises(InputError, match="no row for channel"):
+        unmix(stack, refs, channel_names=["a", "b", "x"])
+
+
+def test_unmix_folder_names_differing_after_the_first_dot(tmp_path, capsys):
+    from pathlib import Path
+
+    from probeplan.cli.main import main
+
+    demo = Path(__file__).resolve().parents[1] / "demo_tissue"
+    folder = tmp_path / "stacks"
+    folder.mkdir()
+    for name in ("mouse1.day1.tif", "mouse1.day3.tif"):
+        (folder / name).write_bytes((demo / "stack.tif").read_bytes())
+    out = tmp_path / "out"
+    assert main(["unmix", str(folder), "--references", str(demo / "references.csv"), "--out", str(out)]) == 0
+    assert (out / "mouse1.day1.ome.tif").is_file() and (out / "mouse1.day3.ome.tif").is_file()
+    _, info = read_stack(out / "mouse1.day1_stderr.tif")
+    assert all(n.endswith("standard error") for n in info.channel_names)
+    import json
+
+    qc = json.loads((out / "mouse1.day1_qc.json").read_text())
+    assert qc["abundance_unit"] == "counts (summed over all channels)"
+
+
+def test_unmix_with_references_from_controls_on_the_command_line(tmp_path, capsys):
+    """Spectra measured from the demo's controls agree with the channel model that made them (demo references)."""
+    from pathlib import Path
+
+    from probeplan.cli.main import main
+    from probeplan.unmixing.references import read_references_csv
+
+    demo = Path(__file__).resolve().parents[1] / "demo_tissue"
+    out = tmp_path / "a.ome.tif"
+    argv = ["unmix", str(demo / "stack.tif"), "--out", str(out), "--unlabelled", str(demo / "unlabelled.tif")]
+    for k, name in enumerate(("probe A (700)", "probe B (780)", "probe C (880)")):
+        argv += ["--control", f"{name}={demo / f'control_{k + 1}.tif'}"]
+    assert main(argv) == 0
+    measured = read_references_csv(tmp_path / "a_references.csv")
+    model = read_references_csv(demo / "references.csv")
+    for k in range(3):
+        j = int(np.argmax(model.matrix[:, k]))
+        assert measured.matrix[j, k] == pytest.approx(model.matrix[j, k], rel=0.05)
+    assert main(["unmix", str(demo / "stack.tif"), "--out", str(tmp_path / "b.ome.tif"),
+                 "--control", f"x={demo / 'control_1.tif'}"]) == 2
+    assert "--unlabelled" in capsys.readouterr().err
+
+
+def test_ome_zarr_read_write_and_unmix(tmp_path, capsys):
+    """OME-Zarr (NGFF 0.4) written and read back with names and pixel size; unmix reads and writes it."""
+    from pathlib import Path
+
+    import zarr
+
+    from probeplan.cli.main import main
+    from probeplan.io.ngff import inspect_ome_zarr
+    from probeplan.io.stacks import write_stack
+
+    demo = Path(__file__).resolve().parents[1] / "demo_tissue"
+    data, info = read_stack(demo / "stack.tif")
+    p = tmp_path / "stack.ome.zarr"
+    write_stack(p, data, channel_names=info.channel_names, pixel_size_um=(6.5, 6.5), dtype=data.dtype)
+    attrs = dict(zarr.open_group(str(p), mode="r").attrs)
+    assert attrs["multiscales"][0]["version"] == "0.4"
+    assert [a["name"] for a in attrs["multiscales"][0]["axes"]] == ["c", "y", "x"]
+    back, binfo = read_stack(p)
+    np.testing.assert_array_equal(back, data)
+    assert binfo.channel_names == info.channel_names and binfo.pixel_size_um == (6.5, 6.5)
+    out = tmp_path / "res" / "a.ome.zarr"
+    out.parent.mkdir()
+    assert main(["unmix", str(p), "--references", str(demo / "references.csv"), "--out", str(out)]) == 0
+    ab, ainfo = read_stack(out)
+    ref = tmp_path / "ref.ome.tif"
+    assert main(["unmix", str(demo / "stack.tif"), "--references", str(demo / "references.csv"), "--out", str(ref)]) == 0
+    np.testing.assert_allclose(ab, read_stack(ref)[0], rtol=1e-6)
+    assert ainfo.pixel_size_um == (6.5, 6.5) and (tmp_path / "res" / "a_stderr.ome.zarr").is_dir()
+    assert not list((tmp_path / "res").glob(".*.part"))
+    stderr_info, _ = inspect_ome_zarr(tmp_path / "res" / "a_stderr.ome.zarr")
+    assert all(n.endswith("standard error") for n in stderr_info.channel_names)

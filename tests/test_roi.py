@@ -52,3 +52,87 @@ def test_label_rois():
     assert rows[0]["tbr"] == pytest.approx(2.5 / 12.5)
     with pytest.raises(InputError, match="integer"):
         rois_from_labels(np.zeros((2, 2)))
+
+
+# --------------------------------------------------------------------------- shapes, ROI files, automatic ROIs
+
+def test_polygon_tracing_a_rectangle_selects_the_rectangle():
+    from probeplan.unmixing.roi import parse_roi
+
+    rect = parse_roi("r:3,2,9,7").mask((12, 12))
+    poly = parse_roi("p:polygon:3,2,9,2,9,7,3,7").mask((12, 12))
+    np.testing.assert_array_equal(rect, poly)
+    assert rect.sum() == 6 * 5
+
+
+def test_ellipse_area_close_to_pi_a_b():
+    # area of an ellipse = pi * rx * ry (geometry); pixel counting converges to it for large radii
+    from probeplan.unmixing.roi import parse_roi
+
+    m = parse_roi("e:ellipse:100,80,40,25").mask((200, 200))
+    assert m.sum() == pytest.approx(np.pi * 40 * 25, rel=0.01)
+
+
+def test_roi_file_round_trip_with_named_labels(tmp_path):
+    import tifffile
+
+    from probeplan.unmixing.roi import Roi, parse_roi, read_roi_file, write_roi_file
+
+    labels = np.zeros((20, 30), np.uint16)
+    labels[2:6, 3:9] = 4
+    tifffile.imwrite(tmp_path / "labels.tif", labels)
+    rois = [parse_roi("a:1,1,5,5"), parse_roi("b:ellipse:10,10,3,2"), parse_roi("c:polygon:0,0,6,0,3,5"),
+            Roi("liver", label=4, labels_file="labels.tif")]
+    write_roi_file(tmp_path / "rois.json", rois)
+    back, lab = read_roi_file(tmp_path / "rois.json")
+    assert [r.name for r in back] == ["a", "b", "c", "liver"]
+    for r0, r1 in zip(rois, back, strict=True):
+        np.testing.assert_array_equal(r0.mask((20, 30), labels), r1.mask((20, 30), lab))
+    assert back[3].mask((20, 30), lab).sum() == 24
+
+
+def test_bad_roi_specs_and_files(tmp_path):
+    from probeplan.errors import InputError
+    from probeplan.unmixing.roi import parse_roi, read_roi_file
+
+    for spec in ("x:ellipse:1,2,3", "x:ellipse:1,2,0,3", "x:polygon:1,2,3,4", "x:polygon:a,b,c,d,e,f"):
+        with pytest.raises(InputError, match="--roi"):
+            parse_roi(spec)
+    with pytest.raises(InputError, match="covers no pixel"):
+        parse_roi("x:ellipse:500,500,3,3", shape=(20, 20))
+    (tmp_path / "r.json").write_text('{"format": "probeplan-rois", "rois": [{"name": "a", "shape": "star"}]}')
+    with pytest.raises(InputError, match="star"):
+        read_roi_file(tmp_path / "r.json")
+    (tmp_path / "r.json").write_text('{"rois": []}')
+    with pytest.raises(InputError, match="probeplan-rois"):
+        read_roi_file(tmp_path / "r.json")
+
+
+def test_otsu_roi_finds_a_bright_disc():
+    """Otsu's threshold on a two-level image with noise splits the two levels (Otsu 1979)."""
+    from probeplan.unmixing.roi import otsu_roi
+
+    rng = np.random.default_rng(4)
+    yy, xx = np.mgrid[:64, :64]
+    disc = (yy - 30) ** 2 + (xx - 20) ** 2 <= 8**2
+    img = np.where(disc, 100.0, 10.0) + rng.normal(0, 5, (64, 64))
+    roi, lab = otsu_roi(img, "target")
+    assert roi.name == "target"
+    # every disc pixel found; Otsu's threshold leans towards the larger class, so a rare background pixel
+    # 3 sigma up may join (at most 0.1 % of the image)
+    assert (lab.astype(bool) >= disc).all() and (lab.astype(bool) != disc).sum() <= 4
+
+
+def test_unmix_file_takes_ellipse_and_polygon_rois(tmp_path):
+    from pathlib import Path
+
+    from probeplan.unmixing.pipeline import unmix_file
+    from probeplan.unmixing.references import read_references_csv
+
+    demo = Path(__file__).resolve().parents[1] / "demo_tissue"
+    res = unmix_file(demo / "stack.tif", read_references_csv(demo / "references.csv"), tmp_path / "a.ome.tif",
+                     rois=["t:ellipse:38.4,43.5,8,8", "p:polygon:2,100,20,100,20,126,2,126", "background:2,100,20,126"])
+    rows = {(r["roi"], r["component"]): r for r in res.roi_rows}
+    assert rows[("t", "probe A (700)")]["n_pixels"] == pytest.approx(np.pi * 64, rel=0.1)
+    # the polygon traces the background rectangle: identical statistics
+    assert rows[("p", "probe A (700)")]["mean"] == rows[("background", "probe A (700)")]["mean"]

@@ -203,3 +203,22 @@ def test_dotted_names_do_not_collide(tmp_path):
     r = run_study(tmp_path / "s.csv", tmp_path / "refs.csv", out_dir=tmp_path / "out", rois=ROIS)
     assert sorted(r.measurements["acquisition"].unique()) == ["mouse1_24h", "mouse1_72h"]
     assert (tmp_path / "out" / "acquisitions" / "mouse1_72h_abundance.ome.tif").is_file()
+
+
+def test_shaped_rois_roi_file_reuse_and_automatic_roi(tmp_path):
+    csv, refs = make_study(tmp_path, animals=("ctrl", "treated"), per_channel=())
+    out = tmp_path / "out"
+    r1 = run_study(csv, refs, out_dir=out, rois=["tumour:polygon:4,4,12,4,12,12,4,12", "background:14,0,24,24"],
+                   auto_rois=["found=dotA"])
+    m = r1.measurements
+    assert set(m["roi"]) == {"tumour", "background", "found"}
+    # the polygon traces the tumour square: the same pixels as the rectangle
+    r0 = run_study(csv, refs, rois=ROIS)
+    cols = ["animal", "time_h", "roi", "component", "mean", "tbr"]
+    a = m[m["roi"] != "found"][cols].reset_index(drop=True)
+    pd.testing.assert_frame_equal(a, r0.measurements[cols].reset_index(drop=True))
+    found = m[(m["roi"] == "found") & (m["component"] == "dotA")]
+    assert (found["n_pixels"] >= 64).all()  # Otsu finds the tumour square (8 x 8 pixels)
+    assert (out / "rois.json").is_file() and (out / "acquisitions" / "m1_1h_auto_rois.json").is_file()
+    r2 = run_study(csv, refs, out_dir=tmp_path / "again", roi_file=out / "rois.json")
+    pd.testing.assert_frame_equal(r2.measurements[cols].reset_index(drop=True), a)

@@ -12,6 +12,7 @@ import argparse
 from typing import Any
 
 from probeplan.errors import input_error
+from probeplan.model.fluorescence import DEFAULT_CONCENTRATION_UM
 
 __all__ = ["add_model_options", "add_optics_options", "add_target_options", "probes_from_args", "parse_probe",
            "make_filter", "make_camera", "make_source", "make_lens", "tissue_from_args", "channels_from_args"]
@@ -50,8 +51,8 @@ def add_optics_options(group) -> None:
 def add_target_options(group) -> None:
     """Target inclusion, uptake and autofluorescence options (shared by depth, channels and design)."""
     group.add_argument("--size-mm", type=float, default=2.0, help="target inclusion diameter in mm (default 2)")
-    group.add_argument("--concentration-uM", type=float, default=0.01,
-                       help="probe concentration in the target, µM (default 0.01)")
+    group.add_argument("--concentration-uM", type=float, default=DEFAULT_CONCENTRATION_UM,
+                       help=f"probe concentration in the target, µM (default {DEFAULT_CONCENTRATION_UM:g})")
     group.add_argument("--uptake-ratio", type=float, default=5.0, help="target-to-background uptake ratio (default 5)")
     group.add_argument("--af-yield", type=float, default=None,
                        help="autofluorescence yield (cm^-1 at 650 nm excitation; an assumption; 0 switches it off)")

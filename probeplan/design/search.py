@@ -72,7 +72,7 @@ from probeplan.design.branch_bound import (
     exhaustive_search,
 )
 from probeplan.errors import input_error, positive_number
-from probeplan.model.fluorescence import Autofluorescence, background_rates, probe_rate_e_per_s
+from probeplan.model.fluorescence import DEFAULT_CONCENTRATION_UM, Autofluorescence, background_rates, probe_rate_e_per_s
 from probeplan.model.tissue import Tissue, tissue_preset
 
 __all__ = [
@@ -359,7 +359,7 @@ def design(
     irradiance_mw_per_cm2=None,
     illumination_s: float | None = None,
     target_size_mm: float = 2.0,
-    concentration_uM: float = 1.0,
+    concentration_uM: float = DEFAULT_CONCENTRATION_UM,
     uptake_ratio: float = 5.0,
     autofluorescence: Autofluorescence | None = None,
     top: int = DEFAULT_TOP,

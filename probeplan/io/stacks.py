@@ -375,7 +375,7 @@ class StackReader:
 
 
 def open_stack(path: str | os.PathLike, *, channel_axis: int | None = None, allow_plane: bool = False) -> StackReader:
-    """Open a TIFF/OME-TIFF stack for reading by rows.
+    """Open a TIFF/OME-TIFF stack, or an OME-Zarr image folder (:mod:`probeplan.io.ngff`), for reading by rows.
 
     Parameters
     ----------
@@ -405,6 +405,10 @@ def open_stack(path: str | os.PathLike, *, channel_axis: int | None = None, allo
     ...     r.info.n_channels, r.info.channel_axis_source, r.read_rows(1, 3).shape
     (3, 'channel-first convention', (3, 2, 5))
     """
+    from probeplan.io.ngff import ZarrStackReader, inspect_ome_zarr, is_ome_zarr
+
+    if is_ome_zarr(path):
+        return ZarrStackReader(*inspect_ome_zarr(path, channel_axis))
     return StackReader(_inspect(Path(path), channel_axis, allow_plane=allow_plane))
 
 
@@ -452,7 +456,7 @@ def write_stack(
     pixel_size_um: tuple[float, float] | None = None,
     dtype=np.float32,
 ) -> Path:
-    """Write a stack as OME-TIFF (float32 by default) atomically.
+    """Write a stack as OME-TIFF (float32 by default) atomically; a path ending ``.zarr`` writes OME-Zarr.
 
     Parameters
     ----------
@@ -471,6 +475,11 @@ def write_stack(
     if axes is None:
         axes = {3: "CYX", 4: "CZYX"}.get(data.ndim, "")
     axes = _check_axes(axes, data.ndim)
+    if str(path).lower().rstrip("/").endswith(".zarr"):
+        from probeplan.io.ngff import write_ome_zarr
+
+        return write_ome_zarr(path, data, axes=axes, channel_names=channel_names, pixel_size_um=pixel_size_um,
+                              dtype=dtype)
     import tifffile
 
     with atomic_path(path) as tmp:

@@ -40,6 +40,7 @@ import numpy as np
 
 from probeplan.errors import input_error
 from probeplan.model.fluorescence import (
+    DEFAULT_CONCENTRATION_UM,
     PROBE_ABSORPTION_WARN_FRACTION,
     Autofluorescence,
     background_rates,
@@ -303,7 +304,7 @@ def channel_report(
     irradiance_mw_per_cm2: float,
     depth_mm,
     target_size_mm: float = 2.0,
-    concentration_uM: float = 1.0,
+    concentration_uM: float = DEFAULT_CONCENTRATION_UM,
     uptake_ratio: float = 5.0,
     autofluorescence: Autofluorescence | None = None,
 ) -> ChannelReport:

@@ -71,6 +71,7 @@ from probeplan.errors import ProbeAbsorptionWarning, input_error, positive_numbe
 from probeplan.model.tissue import Tissue, tissue_preset
 
 __all__ = [
+    "DEFAULT_CONCENTRATION_UM",
     "Autofluorescence",
     "DepthProfile",
     "depth_profile",
@@ -85,6 +86,12 @@ __all__ = [
     "DEFAULT_SBR_THRESHOLD",
     "MM_PER_CM",
 ]
+
+#: Probe concentration in the target (µM) assumed when none is given: the one default of the library, the
+#: command line and the page.  10 nM is of the order reached in a tumour a day after an intravenous dose of
+#: about 1 nmol of dots (a few % of the injected dose per gram; typical, an assumption to replace with the
+#: study's own value).
+DEFAULT_CONCENTRATION_UM = 0.01
 
 #: Millimetres per centimetre.
 MM_PER_CM = 10.0
@@ -410,7 +417,7 @@ def probe_rate_e_per_s(
     lens,
     depth_mm,
     target_size_mm: float = 2.0,
-    concentration_uM: float = 1.0,
+    concentration_uM: float = DEFAULT_CONCENTRATION_UM,
     wavelength_nm: np.ndarray | None = None,
     background_uptake=(),
 ) -> np.ndarray:
@@ -603,7 +610,7 @@ def depth_profile(
     exposure_s: float,
     depth_mm,
     target_size_mm: float = 2.0,
-    concentration_uM: float = 1.0,
+    concentration_uM: float = DEFAULT_CONCENTRATION_UM,
     uptake_ratio: float = 5.0,
     autofluorescence: Autofluorescence | None = None,
     warn: bool = True,

@@ -25,8 +25,8 @@ ANIMAL_CAUTION = (
     "time points, doses and humane end points. Statistics here are exploratory aids; the study's pre-registered "
     "analysis plan and a statistician decide what is reported."
 )
-#: Most panels in one figure (ROI x component); the rest are in the tables.
-MAX_PANELS = 12
+#: Most panels in one figure (ROI x component, in table order); the rest are in the tables.
+MAX_PANELS = 6
 
 
 def _panels(measurements, background):
@@ -50,7 +50,7 @@ def time_course_figure(measurements, *, quantity="tbr", background="background",
         ax = axes[i // cols][i % cols]
         sub = measurements[(measurements["roi"] == roi) & (measurements["component"] == comp)]
         for gi, g in enumerate(groups):
-            for j, (animal, a) in enumerate(sub[sub["group"].astype(str) == g].groupby("animal")):
+            for j, (_, a) in enumerate(sub[sub["group"].astype(str) == g].groupby("animal")):
                 a = a.sort_values("time_h")
                 ax.plot(a["time_h"], a[quantity], "o-", color=colour(gi), alpha=0.7, ms=4,
                         label=g if j == 0 else None)

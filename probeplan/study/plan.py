@@ -37,6 +37,7 @@ from pathlib import Path
 from typing import Any
 
 from probeplan.errors import input_error
+from probeplan.model.fluorescence import DEFAULT_CONCENTRATION_UM
 from probeplan.catalog.library import did_you_mean
 from probeplan.io.tomlsource import format_path, line_of, load_toml, parse_toml_text
 
@@ -113,7 +114,7 @@ _TARGET = {
     "depth_mm": _num(True, minimum=0.0, maximum=100.0),
     "size_mm": _num(True, minimum=0.0, maximum=100.0, exclusive=True),
     "uptake_ratio": _num(True, minimum=1.0, maximum=1e6, help="target-to-background uptake ratio, >= 1"),
-    "concentration_uM": _num(default=0.5, minimum=0.0, maximum=1e6, exclusive=True,
+    "concentration_uM": _num(default=DEFAULT_CONCENTRATION_UM, minimum=0.0, maximum=1e6, exclusive=True,
                              help="expected probe concentration in target"),
     "tumour_diameter_mm": _num(minimum=0.0, maximum=100.0, exclusive=True, help="largest planned tumour diameter"),
 }

@@ -34,6 +34,7 @@ import pandas as pd
 from probeplan.errors import input_error
 from probeplan.io.atomic import check_outputs, current_policy, make_output_folder, output_batch, readable_path
 from probeplan.study.table import Acquisition, read_study_table
+from probeplan.unmixing.references import abundance_unit
 
 __all__ = [
     "MEASUREMENT_COLUMNS",
@@ -52,6 +53,9 @@ __all__ = [
 #: Columns of ``measurements.csv`` (the first eight are the stable interface).
 MEASUREMENT_COLUMNS = ("animal", "group", "time_h", "roi", "component", "mean", "se", "tbr", "tbr_se", "sd",
                        "n_pixels", "n_excluded", "unit", "acquisition", "channel_match")
+#: Files a study writes at the top of its output folder (a rerun into the same folder may replace them).
+_OWN_FILES = ("measurements.csv", "groups.csv", "kinetics.csv", "report.html", "rois.json",
+              "references_from_controls.csv")
 #: Manifest of finished acquisitions in the output folder (checksums), used to resume.
 MANIFEST_NAME = "study_manifest.json"
 MEASUREMENTS_NOTES = (
@@ -88,6 +92,11 @@ class StudySettings:
         Camera noise model of the standard-error maps.
     write_maps : bool
         Write the abundance, standard-error and residual maps of every acquisition.
+    roi_file : Path or None
+        An ROI file (:func:`probeplan.unmixing.roi.read_roi_file`), e.g. ``rois.json`` of an earlier run.
+    auto_rois : tuple of str
+        ``"NAME=COMPONENT"``: an ROI per acquisition from that component's abundance map by
+        Otsu's threshold (:func:`probeplan.unmixing.roi.otsu_roi`).
     """
 
     method: str = "nnls"
@@ -100,6 +109,8 @@ class StudySettings:
     gain_e_per_count: float = 1.0
     read_noise_e: float = 0.0
     write_maps: bool = True
+    roi_file: Path | None = None
+    auto_rois: tuple[str, ...] = ()
 
 
 @dataclass
@@ -114,25 +125,6 @@ class StudyResult:
     notes: list[str] = field(default_factory=list)
     outputs: dict[str, Path] = field(default_factory=dict)
     skipped: list[str] = field(default_factory=list)
-
-
-def abundance_unit(references, unit: str | None = None) -> str:
-    """What one unit of abundance means, from the references' normalisation (or the unit given).
-
-    Examples
-    --------
-    >>> from probeplan.unmixing.references import references_from_matrix
-    >>> abundance_unit(references_from_matrix([[1.0], [3.0]], ["dotA"], normalise="sum"))
-    'counts (summed over all channels)'
-    """
-    if unit:
-        return unit
-    how = getattr(references, "normalisation", None)
-    if how == "sum":
-        return "counts (summed over all channels)"
-    if how == "max":
-        return "counts (in the component's brightest channel)"
-    return "reference units (the abundance that gives the reference spectrum as written)"
 
 
 # --------------------------------------------------------------------------- one acquisition
@@ -208,10 +200,11 @@ def _correction(path, names, data_shape, where, what):
 
 
 def _rois(settings: StudySettings, shape_yx):
-    from probeplan.unmixing.roi import Roi, parse_rectangle, rois_from_labels
+    """The drawn ROIs (rectangles, ellipses, polygons, label images, an ROI file) with their label image."""
+    from probeplan.unmixing.roi import parse_roi, read_roi_file, rois_from_labels
 
     labels = None
-    out: list[Roi] = []
+    out = []
     if settings.labels_path is not None:
         import tifffile
 
@@ -224,25 +217,41 @@ def _rois(settings: StudySettings, shape_yx):
             raise input_error(str(settings.labels_path), f"shape {labels.shape}, images are {tuple(shape_yx)}",
                               "give a label image of the stacks' Y x X size")
         out += rois_from_labels(labels)
+    if settings.roi_file is not None:
+        file_rois, file_labels = read_roi_file(settings.roi_file)
+        if file_labels is not None:
+            if labels is not None:
+                raise input_error(str(settings.roi_file), "uses a label image and another was given with --roi",
+                                  "give one label image")
+            if file_labels.shape != tuple(shape_yx):
+                raise input_error(str(settings.roi_file), f"its label image is {file_labels.shape}, images are "
+                                  f"{tuple(shape_yx)}", "give an ROI file made for these images")
+            labels = file_labels
+        out += [r for r in file_rois if r.labels_file is None or not r.labels_file.endswith("_auto_roi.tif")]
     for spec in settings.rois:
-        out.append(parse_rectangle(spec, shape=tuple(shape_yx)))
-    if not out:
+        out.append(parse_roi(spec, shape=tuple(shape_yx)))
+    names = [r.name for r in out] + [a.split("=", 1)[0].strip() for a in settings.auto_rois]
+    if not names:
         raise input_error("--roi", "no region of interest given", "give --roi 'name:x0,y0,x1,y1' (and one named "
-                          f"{settings.roi_background!r} for the TBR) or a label TIFF")
-    names = [r.name for r in out]
+                          f"{settings.roi_background!r} for the TBR), a label TIFF, --rois FILE or --auto-roi")
     repeated = sorted({n for n in names if names.count(n) > 1})
     if repeated:
         raise input_error("--roi", f"ROI name(s) {repeated} given twice", "give each ROI its own name")
     return out, labels
 
 
-def _roi_mask(roi, labels, shape_yx):
-    if roi.rect is not None:
-        x0, y0, x1, y1 = roi.rect
-        m = np.zeros(shape_yx, bool)
-        m[y0:y1, x0:x1] = True
-        return m
-    return labels == roi.label
+def _auto_specs(settings: StudySettings, comps) -> list[tuple[str, str]]:
+    specs = []
+    for a in settings.auto_rois:
+        name, sep, comp = a.partition("=")
+        name, comp = name.strip(), comp.strip()
+        if not sep or not name or not comp:
+            raise input_error("--auto-roi", f"{a!r} is not NAME=COMPONENT", "give e.g. --auto-roi 'tumour=probe A'")
+        if comp not in comps:
+            raise input_error("--auto-roi", f"component {comp!r} is not in the references ({', '.join(comps)})",
+                              "name a component of the references")
+        specs.append((name, comp))
+    return specs
 
 
 def roi_least_squares(y, M):
@@ -280,10 +289,40 @@ def measure_acquisition(acq: Acquisition, references, settings: StudySettings = 
         raise input_error(str(settings.flat_path), "has values <= 0 or NaN", "give a flat field that is > 0 everywhere")
     shape_yx = data.shape[-2:]
     rois, labels = _rois(settings, shape_yx)
+    masks = [(roi, roi.mask(shape_yx, labels)) for roi in rois]
+    autos = _auto_specs(settings, comps)
     sat = default_saturation(data.dtype)
     unit = abundance_unit(refs, unit)
+    maps = None
     if out_dir is not None and settings.write_maps:
-        _write_maps(Path(out_dir), acq, data, refs, settings, dark, flat, comps, pixel_size, spatial_axes, unit)
+        maps = _write_maps(Path(out_dir), acq, data, refs, settings, dark, flat, comps, pixel_size, spatial_axes, unit)
+    if autos:
+        from probeplan.unmixing.roi import otsu_roi, write_roi_file
+
+        if maps is None:
+            maps = unmix_stack(data, refs, method=settings.method, dark=dark, flat=flat, errors=False).abundances
+        found = []
+        for name, comp in autos:
+            plane = maps[comps.index(comp)].reshape(-1, *shape_yx)
+            with np.errstate(all="ignore"):
+                plane = np.nanmean(plane, axis=0) if plane.shape[0] > 1 else plane[0]
+            roi, lab = otsu_roi(plane, name)
+            masks.append((roi, lab.astype(bool)))
+            found.append((roi, lab))
+        if out_dir is not None:
+            import tifffile
+
+            from probeplan.io.atomic import atomic_path
+            from probeplan.unmixing.roi import Roi
+
+            saved = []
+            for roi, lab in found:
+                fname = f"{acq.key}_{_safe_name(roi.name)}_auto_roi.tif"
+                with atomic_path(Path(out_dir) / fname) as tmp:
+                    tifffile.imwrite(tmp, lab)
+                saved.append(Roi(roi.name, label=1, labels_file=fname))
+            write_roi_file(Path(out_dir) / f"{acq.key}_auto_rois.json", saved,
+                           note=f"automatic ROIs of {acq.key}: Otsu's threshold on a component's abundance map")
     C = data.shape[0]
     raw = data.reshape(C, -1, *shape_yx).astype(np.float64)
     y = raw - dark.reshape(raw.shape) if dark is not None else raw
@@ -293,8 +332,8 @@ def measure_acquisition(acq: Acquisition, references, settings: StudySettings = 
     if sat is not None:
         bad |= (raw >= sat).any(axis=0)
     stats = {}
-    for roi in rois:
-        mask = np.broadcast_to(_roi_mask(roi, labels, shape_yx), bad.shape)
+    for roi, mask2d in masks:
+        mask = np.broadcast_to(mask2d, bad.shape)
         sel = mask & ~bad
         a = roi_least_squares(y[:, sel], M)
         n = a.shape[1]
@@ -303,7 +342,7 @@ def measure_acquisition(acq: Acquisition, references, settings: StudySettings = 
         stats[roi.name] = (mean, sd, n, int((mask & bad).sum()))
     bg = stats.get(settings.roi_background)
     rows = []
-    for roi in rois:
+    for roi, _ in masks:
         mean, sd, n, excluded = stats[roi.name]
         se = sd / np.sqrt(n) if n > 1 else np.full(len(comps), np.nan)
         for k, comp in enumerate(comps):
@@ -341,7 +380,21 @@ def _write_maps(out_dir, acq, data, refs, settings, dark, flat, comps, pixel_siz
                 pixel_size_um=pixel_size)
     write_stack(paths["residual"], r.residual_rms[None], axes=axes, channel_names=["residual rms (counts)"],
                 pixel_size_um=pixel_size)
-    return paths
+    return r.abundances
+
+
+def _auto_roi_paths(out_dir: Path, key: str, settings: StudySettings) -> list[Path]:
+    """Files written for the automatic ROIs of one acquisition (masks and their ROI file)."""
+    if not settings.auto_rois:
+        return []
+    names = [a.split("=", 1)[0].strip() for a in settings.auto_rois]
+    return [*(out_dir / f"{key}_{_safe_name(n)}_auto_roi.tif" for n in names), out_dir / f"{key}_auto_rois.json"]
+
+
+def _safe_name(text: str) -> str:
+    import re
+
+    return re.sub(r"[^A-Za-z0-9._-]+", "_", text).strip("._") or "roi"
 
 
 # --------------------------------------------------------------------------- tables with notes
@@ -366,11 +419,37 @@ def read_table_csv(path: str | os.PathLike) -> pd.DataFrame:
 
 # --------------------------------------------------------------------------- the study
 def _sha256(path) -> str:
+    """Checksum of a file, or of every file in a folder (an OME-Zarr image) with its relative name."""
     h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 22), b""):
-            h.update(block)
+    p = Path(path)
+    files = sorted(f for f in p.rglob("*") if f.is_file()) if p.is_dir() else [p]
+    for f in files:
+        if p.is_dir():
+            h.update(str(f.relative_to(p)).encode())
+        with open(f, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 22), b""):
+                h.update(block)
     return h.hexdigest()
+
+
+def _write_shared_rois(path: Path, settings: StudySettings, shape_yx) -> Path:
+    """The study's drawn ROIs as an ROI file, to reuse with ``--rois`` (automatic ROIs are per acquisition)."""
+    from dataclasses import replace
+
+    from probeplan.unmixing.roi import write_roi_file
+
+    rois, _ = _rois(replace(settings, auto_rois=()), shape_yx) if (settings.rois or settings.labels_path
+                                                                  or settings.roi_file) else ([], None)
+    label_file = None
+    if settings.labels_path is not None:
+        label_file = str(Path(settings.labels_path).resolve())
+    elif settings.roi_file is not None:
+        label_file = next((str((Path(settings.roi_file).parent / r.labels_file).resolve()) for r in rois
+                           if r.labels_file), None)
+    rois = [replace(r, labels_file=label_file) if r.label is not None else r for r in rois]
+    note = "the study's drawn ROIs" + (f"; automatic ROIs ({', '.join(settings.auto_rois)}) are in "
+                                       "acquisitions/<acquisition>_auto_rois.json" if settings.auto_rois else "")
+    return write_roi_file(path, rois, note=note)
 
 
 def _settings_digest(settings: StudySettings, refs, unit: str) -> str:
@@ -381,6 +460,7 @@ def _settings_digest(settings: StudySettings, refs, unit: str) -> str:
         "flat": _sha256(settings.flat_path) if settings.flat_path else None,
         "channel_axis": settings.channel_axis, "gain": settings.gain_e_per_count, "read_noise": settings.read_noise_e,
         "write_maps": settings.write_maps, "components": list(refs.component_names),
+        "roi_file": _sha256(settings.roi_file) if settings.roi_file else None, "auto_rois": list(settings.auto_rois),
         "channels": list(refs.channel_names or []), "matrix": np.asarray(refs.matrix).tolist(), "unit": unit,
     }
     return hashlib.sha256(json.dumps(d, sort_keys=True).encode()).hexdigest()
@@ -416,7 +496,7 @@ def _done(entry, acq, digest) -> bool:
     outs = entry.get("outputs")
     if not isinstance(outs, dict):
         return False
-    return all(isinstance(h, str) and Path(p).is_file() and _sha256(p) == h for p, h in outs.items())
+    return all(isinstance(h, str) and Path(p).exists() and _sha256(p) == h for p, h in outs.items())
 
 
 def _check_acquisition(acq: Acquisition, refs, settings: StudySettings):
@@ -445,6 +525,8 @@ def _check_acquisition(acq: Acquisition, refs, settings: StudySettings):
                           "give one reference row per channel (a plain 3-D TIFF is read channels-first; "
                           "pass --channel-axis 2 for channels last)")
     _rois(settings, shapes[0][-2:])
+    _auto_specs(settings, list(refs.component_names))
+    return shapes[0][-2:]
 
 
 def load_references(references, *, unit: str | None = None):
@@ -453,22 +535,12 @@ def load_references(references, *, unit: str | None = None):
     With ``unit`` the references are used as written (abundance in that unit, e.g. ``"uM"``
     when they are counts per µM); without it each column is scaled to sum 1.
     """
-    from probeplan.unmixing.references import ReferenceSpectra, read_references_csv, references_from_matrix
+    from probeplan.unmixing.references import ReferenceSpectra, as_references
 
-    if isinstance(references, ReferenceSpectra):
-        return references
-    normalise = None if unit else "sum"
-    if isinstance(references, pd.DataFrame):
-        if "channel" not in references.columns:
-            raise input_error("references", "the DataFrame has no 'channel' column",
-                              "give a column 'channel' naming each row's channel, then one column per component")
-        comps = [c for c in references.columns if c != "channel"]
-        return references_from_matrix(references[comps].to_numpy(dtype=np.float64), comps,
-                                      references["channel"].astype(str).tolist(), normalise=normalise,
-                                      source="references DataFrame")
-    if isinstance(references, (str, os.PathLike)):
-        return read_references_csv(references, normalise=normalise)
-    raise TypeError(f"references: expected a CSV path, a DataFrame or ReferenceSpectra, got {type(references).__name__}")
+    refs = as_references(references, normalise=None if unit else "sum")
+    if not isinstance(refs, ReferenceSpectra):
+        raise TypeError(f"references: expected a CSV path, a DataFrame or ReferenceSpectra, got {type(refs).__name__}")
+    return refs
 
 
 def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.PathLike | None = None,
@@ -509,11 +581,12 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
 
     if settings is None:
         opts = dict(options)
-        for k in ("labels_path", "dark_path", "flat_path"):
+        for k in ("labels_path", "dark_path", "flat_path", "roi_file"):
             if opts.get(k) is not None:
                 opts[k] = Path(opts[k])
-        if "rois" in opts:
-            opts["rois"] = tuple(opts["rois"])
+        for k in ("rois", "auto_rois"):
+            if k in opts:
+                opts[k] = tuple(opts[k])
         try:
             settings = StudySettings(**opts)
         except TypeError as exc:
@@ -524,14 +597,16 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
 
     if settings.method not in METHODS:
         raise input_error("method", f"{settings.method!r} is not known", f"choose one of {', '.join(METHODS)}")
-    for what, p in (("--dark", settings.dark_path), ("--flat", settings.flat_path), ("--roi", settings.labels_path)):
+    for what, p in (("--dark", settings.dark_path), ("--flat", settings.flat_path), ("--roi", settings.labels_path),
+                    ("--rois", settings.roi_file)):
         if p is not None and not Path(p).is_file():
             raise input_error(str(p), "file not found", f"give an existing TIFF to {what}")
     refs = load_references(references, unit=unit)
     unit_text = abundance_unit(refs, unit)
     acqs = read_study_table(study_csv)
+    shape_yx = None
     for acq in acqs:
-        _check_acquisition(acq, refs, settings)
+        shape_yx = _check_acquisition(acq, refs, settings)
     out = Path(out_dir) if out_dir is not None else None
     maps_dir = None
     manifest: dict = {"entries": {}}
@@ -542,7 +617,8 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
         if out.exists() and not out.is_dir():
             raise input_error("--out", f"{str(out)!r} is a file", "give a folder for the study's outputs")
         inputs = [Path(study_csv), *(f for a in acqs for f in a.files)]
-        inputs += [p for p in (settings.dark_path, settings.flat_path, settings.labels_path) if p is not None]
+        inputs += [p for p in (settings.dark_path, settings.flat_path, settings.labels_path, settings.roi_file)
+                   if p is not None]
         if isinstance(references, (str, os.PathLike)):
             inputs.append(Path(references))
         if any(Path(p).resolve().parent == out.resolve() / "acquisitions" for p in inputs) or any(
@@ -558,10 +634,10 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
             # a rerun into the study's own folder resumes it: what the earlier run wrote may be replaced
             policy = current_policy()
             if policy is not None:
-                policy.allow([out / n for n in ("measurements.csv", "groups.csv", "kinetics.csv", "report.html")])
+                policy.allow([out / n for n in _OWN_FILES])
                 policy.allow(p for e in manifest["entries"].values() if isinstance(e, dict)
                              for p in (e.get("outputs") or {}))
-        check_outputs([out / n for n in ("measurements.csv", "groups.csv", "kinetics.csv", "report.html")])
+        check_outputs([out / n for n in _OWN_FILES])
     digest = _settings_digest(settings, refs, unit_text)
     tables = []
     skipped = []
@@ -577,7 +653,8 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
             table = measure_acquisition(acq, refs, settings, out_dir=maps_dir, unit=unit)
             if maps_dir is not None:
                 mfile = write_table_csv(maps_dir / f"{acq.key}_measurements.csv", table, MEASUREMENTS_NOTES)
-                written = [mfile, *(map_paths(maps_dir, acq.key).values() if settings.write_maps else [])]
+                written = [mfile, *(map_paths(maps_dir, acq.key).values() if settings.write_maps else []),
+                           *_auto_roi_paths(maps_dir, acq.key, settings)]
                 _record(out / MANIFEST_NAME, acq.key, {"status": "writing", "outputs": dict.fromkeys(map(str, written))})
                 entry = {"status": "done", "settings_sha256": digest, "inputs": {str(f): _sha256(f) for f in acq.files},
                          "outputs": {str(p): _sha256(readable_path(p)) for p in written}}
@@ -597,5 +674,6 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
                                                   [*MEASUREMENTS_NOTES, notes[0]])
         outputs["groups"] = write_table_csv(out / "groups.csv", groups, [*GROUPS_NOTES, *group_notes])
         outputs["kinetics"] = write_table_csv(out / "kinetics.csv", kinetics, [*KINETICS_NOTES, *kinetic_notes])
+        outputs["rois"] = _write_shared_rois(out / "rois.json", settings, shape_yx)
     return StudyResult(measurements, groups, kinetics, acqs, unit_text, notes + group_notes + kinetic_notes, outputs,
                        skipped)

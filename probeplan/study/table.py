@@ -64,6 +64,12 @@ class Acquisition:
 _FIX_COLUMNS = "give the columns animal, group, time_h, file and optionally channel"
 
 
+def _is_zarr(path: Path) -> bool:
+    from probeplan.io.ngff import is_ome_zarr
+
+    return is_ome_zarr(path)
+
+
 def _safe(text: str) -> str:
     return re.sub(r"[^A-Za-z0-9._-]+", "_", text).strip("._") or "x"
 
@@ -141,7 +147,7 @@ def read_study_table(path: str | os.PathLike) -> list[Acquisition]:
             raise input_error(loc, f"time_h {row['time_h']!r} is not a finite number >= 0", "give the time in hours, >= 0")
         f = Path(row["file"])
         f = f if f.is_absolute() else base / f
-        if not f.is_file():
+        if not (f.is_file() or (f.is_dir() and _is_zarr(f))):
             raise input_error(loc, f"file {row['file']!r} not found (looked for {f})",
                               "correct the path (relative paths are relative to the study table's folder)")
         rows.append((lineno, row["animal"], row["group"], t, f, row.get("channel", "") or None))

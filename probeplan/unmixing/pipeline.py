@@ -377,11 +377,37 @@ def _check_noise_model(gain_e_per_count, read_noise_e, variance_floor_counts) ->
                           "give the read noise in e- rms (>= 0)")
 
 
-def _prepare(stack, references, method, channel_axis, offset, saturation, component_names=None):
+def _prepare(stack, references, method, channel_axis, offset, saturation, component_names=None, channel_names=None):
+    import os
+
+    from probeplan.unmixing.references import as_references
+
     if method not in METHODS:
         raise input_error("method", f"{method!r} is not known", f"choose one of {', '.join(METHODS)}")
     _check_saturation(saturation)
-    data = _channel_first(stack, channel_axis)
+    references = as_references(references)
+    explicit = channel_names is not None
+    if isinstance(stack, (str, os.PathLike)):
+        from probeplan.io.stacks import read_stack
+
+        arr, info = read_stack(stack, channel_axis=None if channel_axis == 0 else channel_axis)
+        data = np.moveaxis(arr, info.channel_axis, 0)
+        if channel_names is None:
+            channel_names = info.channel_names
+        where = str(stack)
+    else:
+        data = _channel_first(stack, channel_axis)
+        where = "stack"
+    if channel_names is not None:
+        channel_names = tuple(str(c) for c in channel_names)
+        if len(channel_names) != data.shape[0]:
+            raise input_error("channel_names", f"{len(channel_names)} names for {data.shape[0]} channels",
+                              "give one name per stack channel")
+        if hasattr(references, "for_channels"):
+            references = references.for_channels(channel_names, where=where)
+        elif explicit:
+            raise input_error("references", "a plain array cannot be matched to the stack's channel names",
+                              "give the references as a CSV path, a DataFrame with a 'channel' column or ReferenceSpectra")
     M, names = design_matrix(references, n_channels=data.shape[0], offset=offset, component_names=component_names)
     sat = default_saturation(data.dtype) if saturation is None else float(saturation)
     return data, M, names, sat
@@ -402,13 +428,17 @@ def _broadcast_correction(arr, data, name):
 
 
 def unmix(stack, references, *, method: str = "nnls", channel_axis: int = 0, dark=None, flat=None,
-          offset: bool = False, saturation: float | None = None, engine: str = "auto") -> np.ndarray:
+          offset: bool = False, saturation: float | None = None, engine: str = "auto",
+          channel_names=None) -> np.ndarray:
     """Abundances of each component in every pixel of a stack.
 
     Parameters
     ----------
-    stack : array_like, shape (C, ...) with the channel axis at ``channel_axis``
-    references : array_like (C, K) or ReferenceSpectra
+    stack : array_like, shape (C, ...) with the channel axis at ``channel_axis``, or a stack file path
+        A file is read with its channel names (OME-TIFF, ImageJ) and channel axis.
+    references : array_like (C, K), ReferenceSpectra, DataFrame with a ``channel`` column, or CSV path
+        Rows are matched to the stack's channels by name whenever both have names; a
+        channel the references do not name is refused with the fix.
     method : {"nnls", "ls", "wls"}
     channel_axis : int
     dark, flat : array_like, optional
@@ -419,6 +449,8 @@ def unmix(stack, references, *, method: str = "nnls", channel_axis: int = 0, dar
     saturation : float, optional
         Full-scale level; default the dtype maximum for integer stacks.
     engine : {"auto", "numba", "numpy"}
+    channel_names : sequence of str, optional
+        Names of an array stack's channels, to match the references by name.
 
     Returns
     -------
@@ -438,19 +470,21 @@ def unmix(stack, references, *, method: str = "nnls", channel_axis: int = 0, dar
     >>> np.round(unmix(stack, M)[:, 0, 0], 9).tolist()
     [2.0, 0.0]
     """
-    data, M, names, sat = _prepare(stack, references, method, channel_axis, offset, saturation)
+    data, M, names, sat = _prepare(stack, references, method, channel_axis, offset, saturation,
+                                   channel_names=channel_names)
     if dark is None and flat is None and method != "wls":
         solver = nnls_pixels if method == "nnls" else lstsq_pixels
         x, _ = solver(M, data.reshape(data.shape[0], -1), saturation=sat, engine=engine)
         return x.reshape(M.shape[1], *data.shape[1:])
     return unmix_stack(stack, references, method=method, channel_axis=channel_axis, dark=dark, flat=flat,
-                       offset=offset, saturation=saturation, engine=engine, errors=False).abundances
+                       offset=offset, saturation=saturation, engine=engine, errors=False,
+                       channel_names=channel_names).abundances
 
 
 def unmix_stack(stack, references, *, method: str = "nnls", channel_axis: int = 0, dark=None, flat=None,
                 offset: bool = False, saturation: float | None = None, gain_e_per_count: float = 1.0,
                 read_noise_e: float = 0.0, variance_floor_counts: float = 1.0, engine: str = "auto",
-                errors: bool = True) -> UnmixResult:
+                errors: bool = True, channel_names=None) -> UnmixResult:
     """Unmix a stack with standard errors, residual RMS and a QC summary.
 
     Parameters are those of :func:`unmix`, plus:
@@ -485,7 +519,8 @@ def unmix_stack(stack, references, *, method: str = "nnls", channel_axis: int = 
     >>> r.abundances.shape, r.standard_error.shape, r.qc["n_pixels"]
     ((2, 2, 2), (2, 2, 2), 4)
     """
-    data, M, names, sat = _prepare(stack, references, method, channel_axis, offset, saturation)
+    data, M, names, sat = _prepare(stack, references, method, channel_axis, offset, saturation,
+                                   channel_names=channel_names)
     _check_noise_model(gain_e_per_count, read_noise_e, variance_floor_counts)
     cond = _cond_quiet(M)
     C, K = M.shape
@@ -561,12 +596,15 @@ def output_paths(out_path, *, roi: bool = False) -> dict:
 
     out = Path(out_path)
     name = out.name
-    for ext in (".ome.tiff", ".ome.tif", ".tiff", ".tif"):
+    zarr_out = name.lower().endswith(".zarr")
+    for ext in (".ome.tiff", ".ome.tif", ".tiff", ".tif", ".ome.zarr", ".zarr"):
         if name.lower().endswith(ext):
             name = name[: -len(ext)]
             break
     paths = {"abundance": out}
     for kind, suffix in _OUTPUT_SUFFIXES.items():
+        if zarr_out and suffix.endswith(".tif"):
+            suffix = suffix[: -len(".tif")] + ".ome.zarr"
         if kind != "roi" or roi:
             paths[kind] = out.with_name(name + suffix)
     return paths
@@ -664,7 +702,8 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     from probeplan.io.stacks import StackWriter, open_stack
     from probeplan.io.atomic import check_outputs, refuse_input_paths, write_json_atomic
     from probeplan.unmixing.overlay import downsample_mean, overlay_factor, write_overlay_png
-    from probeplan.unmixing.roi import Roi, RoiAccumulator, parse_rectangle, rois_from_labels, write_roi_csv
+    from probeplan.unmixing.references import abundance_unit
+    from probeplan.unmixing.roi import Roi, RoiAccumulator, parse_roi, rois_from_labels, write_roi_csv
 
     if method not in METHODS:
         raise input_error("method", f"{method!r} is not known", f"choose one of {', '.join(METHODS)}")
@@ -701,7 +740,7 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
                               "give a label image of the stack's Y x X size")
         roi_list += rois_from_labels(labels)
     for spec in rois or ():
-        roi_list.append(spec if isinstance(spec, Roi) else parse_rectangle(spec, shape=(ny, nx)))
+        roi_list.append(spec if isinstance(spec, Roi) else parse_roi(spec, shape=(ny, nx)))
     paths = output_paths(out_path, roi=bool(roi_list))
     inputs = [info.path, *(r.info.path for r in aux.values()), *extra_inputs]
     if labels_path is not None:
@@ -723,13 +762,16 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     qc = QcAccumulator(M, names, method, cond)
     roi_acc = RoiAccumulator(roi_list, names, labels) if roi_list else None
     writers = []
+    if str(paths["abundance"]).lower().endswith(".zarr"):
+        from probeplan.io.ngff import ZarrStackWriter as StackWriter  # noqa: N813 - same interface
     try:
         writers.append(StackWriter(paths["abundance"], (K, *spatial), axes=axes, channel_names=names,
                                    pixel_size_um=info.pixel_size_um))
-        writers.append(StackWriter(paths["stderr"], (K, *spatial), axes=axes, channel_names=names,
+        writers.append(StackWriter(paths["stderr"], (K, *spatial), axes=axes,
+                                   channel_names=[f"{n} standard error" for n in names],
                                    pixel_size_um=info.pixel_size_um))
-        writers.append(StackWriter(paths["residual"], (1, *spatial), axes=axes, channel_names=["residual_rms"],
-                                   pixel_size_um=info.pixel_size_um))
+        writers.append(StackWriter(paths["residual"], (1, *spatial), axes=axes,
+                                   channel_names=["residual rms (counts)"], pixel_size_um=info.pixel_size_um))
 
         def handle(r0, result):
             x, se, resid, status = result
@@ -758,6 +800,10 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
         qc_summary.update(
             probeplan_version=__version__, caution=RESEARCH_USE_CAUTION, depth_caution=DEPTH_COMPARISON_CAUTION,
             stack=str(info.path),
+            abundance_unit=abundance_unit(references),
+            files={"abundance": f"abundance of each component, in {abundance_unit(references)}",
+                   "stderr": "standard error of each abundance (same unit), from the camera noise model",
+                   "residual": "root mean square over channels of the fit residual, counts"},
             stack_shape=list(info.shape), stack_axes=info.axes, channel_axis=info.channel_axis,
             channel_axis_source=info.channel_axis_source, channel_names=list(info.channel_names or []),
             pixel_size_um=list(info.pixel_size_um) if info.pixel_size_um else None,

@@ -36,6 +36,10 @@ __all__ = [
     "references_from_matrix",
     "references_from_controls",
     "DEFAULT_TOP_FRACTION",
+    "abundance_unit",
+    "as_references",
+    "references_from_control_files",
+    "parse_control_specs",
 ]
 
 NORMALISATIONS = ("sum", "max", None)
@@ -339,3 +343,118 @@ def references_from_controls(
         cols.append(spectrum)
     return references_from_matrix(np.stack(cols, axis=1), list(controls), channel_names, normalise=normalise,
                                   source="controls")
+
+
+def abundance_unit(references, unit: str | None = None) -> str:
+    """What one unit of abundance means, from the references' normalisation (or the unit given).
+
+    Examples
+    --------
+    >>> abundance_unit(references_from_matrix([[1.0], [3.0]], ["dotA"], normalise="sum"))
+    'counts (summed over all channels)'
+    """
+    if unit:
+        return unit
+    how = getattr(references, "normalisation", None)
+    if how == "sum":
+        return "counts (summed over all channels)"
+    if how == "max":
+        return "counts (in the component's brightest channel)"
+    return "reference units (the abundance that gives the reference spectrum as written)"
+
+
+def as_references(references, *, normalise: str | None = "sum", where: str = "references") -> ReferenceSpectra:
+    """Reference spectra from a CSV path, a DataFrame with a ``channel`` column, or :class:`ReferenceSpectra`.
+
+    Paths and DataFrames are scaled by ``normalise``; a :class:`ReferenceSpectra` is returned as it is.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> r = as_references(pd.DataFrame({"channel": ["a", "b"], "dotA": [1.0, 3.0]}))
+    >>> r.channel_names, r.matrix[:, 0].tolist()
+    (('a', 'b'), [0.25, 0.75])
+    """
+    if isinstance(references, ReferenceSpectra):
+        return references
+    if isinstance(references, (str, os.PathLike)):
+        return read_references_csv(references, normalise=normalise)
+    try:
+        import pandas as pd
+    except ImportError:  # pragma: no cover - a dependency of the package
+        pd = None
+    if pd is not None and isinstance(references, pd.DataFrame):
+        if "channel" not in references.columns:
+            raise input_error(where, "the DataFrame has no 'channel' column",
+                              "give a column 'channel' naming each row's channel, then one column per component")
+        comps = [str(c) for c in references.columns if c != "channel"]
+        try:
+            values = references[comps].to_numpy(dtype=np.float64)
+        except (TypeError, ValueError):
+            raise input_error(where, "a component column holds text", "give numbers >= 0 in every component column") from None
+        return references_from_matrix(values, comps, references["channel"].astype(str).tolist(), normalise=normalise,
+                                      source=where)
+    return references
+
+
+def parse_control_specs(specs: Sequence[str], *, option: str = "--control") -> dict[str, Path]:
+    """``["NAME=STACK.tif", ...]`` -> ``{NAME: Path}`` (names unique, files existing).
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> p = pathlib.Path(tempfile.mkdtemp()) / "a.tif"; _ = p.write_bytes(b"")
+    >>> list(parse_control_specs([f"dot A={p}"]))
+    ['dot A']
+    """
+    out: dict[str, Path] = {}
+    for spec in specs:
+        name, sep, file = spec.partition("=")
+        name, file = name.strip(), file.strip()
+        if not sep or not name or not file:
+            raise input_error(option, f"{spec!r} is not NAME=STACK", f"give e.g. {option} 'probe A=control_1.tif'")
+        if name in out:
+            raise input_error(option, f"component {name!r} given twice", "give one control stack per component")
+        if not Path(file).is_file():
+            raise input_error(file, "control stack not found", f"check the path given to {option}")
+        out[name] = Path(file)
+    return out
+
+
+def references_from_control_files(controls: Mapping[str, str | os.PathLike], unlabelled: str | os.PathLike, *,
+                                  normalise: str | None = "sum", unlabelled_name: str | None = None,
+                                  top_fraction: float = DEFAULT_TOP_FRACTION) -> ReferenceSpectra:
+    """Reference spectra from single-probe control stack files and an unlabelled control file.
+
+    Each stack is read with its channel names (OME-TIFF, ImageJ); the controls' channels are
+    matched to the unlabelled control's by name when they have names.  See
+    :func:`references_from_controls` for the rule.  With ``unlabelled_name`` the unlabelled
+    control's own mean spectrum (its autofluorescence plus camera offset, the constant part
+    of every pixel) is added as one more component of that name.
+    """
+    from probeplan.io.stacks import read_stack
+
+    def load(path):
+        data, info = read_stack(path)
+        return np.moveaxis(data, info.channel_axis, 0).astype(np.float64), info.channel_names
+
+    bg, names = load(unlabelled)
+    stacks = {}
+    for comp, path in controls.items():
+        d, n = load(path)
+        if names is not None and n is not None and tuple(n) != tuple(names):
+            if sorted(n) != sorted(names):
+                raise input_error(str(path), f"channels {list(n)} differ from the unlabelled control's {list(names)}",
+                                  "acquire every control with the same channels")
+            d = d[[list(n).index(c) for c in names]]
+        stacks[comp] = d
+    refs = references_from_controls(stacks, bg, channel_names=names, normalise=normalise, top_fraction=top_fraction)
+    refs = ReferenceSpectra(refs.matrix, refs.component_names, refs.channel_names,
+                            "controls: " + ", ".join(f"{k}={Path(v).name}" for k, v in controls.items()),
+                            refs.normalisation)
+    if unlabelled_name:
+        column = np.nanmean(bg.reshape(bg.shape[0], -1), axis=1)
+        column = normalise_columns(column[:, None], normalise)[:, 0]
+        refs = ReferenceSpectra(np.hstack([refs.matrix, column[:, None]]), (*refs.component_names, unlabelled_name),
+                                refs.channel_names, refs.source, refs.normalisation)
+    return refs

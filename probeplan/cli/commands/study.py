@@ -15,13 +15,26 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     from probeplan.cli.common import add_output_options
 
     parser.add_argument("study", help="study table CSV: animal,group,time_h,file[,channel] (paths relative to it)")
-    parser.add_argument("--references", required=True, help="reference spectra CSV: channel,<component>,...")
+    refs = parser.add_mutually_exclusive_group(required=True)
+    refs.add_argument("--references", help="reference spectra CSV: channel,<component>,...")
+    refs.add_argument("--control", action="append", metavar="NAME=STACK",
+                      help="measure component NAME's spectrum from a single-probe control stack (repeatable; "
+                           "needs --unlabelled)")
+    parser.add_argument("--unlabelled", metavar="STACK", help="unlabelled control stack, subtracted from each --control")
+    parser.add_argument("--unlabelled-as", metavar="NAME", default=None,
+                        help="also unmix the unlabelled control's spectrum as component NAME (e.g. autofluorescence)")
     parser.add_argument("--out", required=True, help="output folder (created; a rerun resumes where it stopped)")
     parser.add_argument("--method", choices=("nnls", "ls", "wls"), default="nnls",
                         help="unmixing of the maps written (ROI means are always unconstrained least squares)")
     parser.add_argument("--roi", action="append", default=[],
-                        help="ROI 'name:x0,y0,x1,y1' (pixels, end excluded) or a label TIFF; repeatable")
+                        help="ROI 'name:x0,y0,x1,y1' (pixels, end excluded), 'name:ellipse:cx,cy,rx,ry', "
+                             "'name:polygon:x1,y1,x2,y2,...' or a label TIFF; repeatable")
     parser.add_argument("--roi-background", default="background", help="name of the background ROI (default background)")
+    parser.add_argument("--rois", default=None, metavar="FILE",
+                        help="ROI file (JSON, e.g. DIR/rois.json of an earlier run) with rectangles, ellipses, polygons, "
+                             "named labels")
+    parser.add_argument("--auto-roi", action="append", default=[], metavar="NAME=COMPONENT",
+                        help="an ROI per acquisition: pixels of COMPONENT's map above Otsu's threshold; repeatable")
     parser.add_argument("--dark", help="dark-frame stack, subtracted (channels matched by name)")
     parser.add_argument("--flat", help="flat-field stack, divided (channels matched by name)")
     parser.add_argument("--channel-axis", type=int, default=None,
@@ -73,7 +86,19 @@ def run(args: argparse.Namespace) -> int:
         roi_background=args.roi_background, dark_path=Path(args.dark) if args.dark else None,
         flat_path=Path(args.flat) if args.flat else None, channel_axis=args.channel_axis,
         gain_e_per_count=args.gain, read_noise_e=args.read_noise, write_maps=not args.no_maps,
+        roi_file=Path(args.rois) if args.rois else None, auto_rois=tuple(args.auto_roi),
     )
+    references = args.references
+    if args.control:
+        from probeplan.unmixing.references import parse_control_specs, references_from_control_files
+
+        if not args.unlabelled:
+            raise input_error("--control", "needs --unlabelled", "give the unlabelled control stack with --unlabelled")
+        references = references_from_control_files(parse_control_specs(args.control), args.unlabelled,
+                                                   normalise=None if args.abundance_unit else "sum",
+                                                   unlabelled_name=args.unlabelled_as)
+    elif args.unlabelled:
+        raise input_error("--unlabelled", "is used only with --control", "add --control NAME=STACK or drop --unlabelled")
     n_acq = len(read_study_table(args.study))
     out = Path(args.out)
     created = None
@@ -89,8 +114,12 @@ def run(args: argparse.Namespace) -> int:
     bar = tqdm(total=n_acq, desc="study", unit="acquisition", disable=True if args.json else None, file=sys.stderr,
                leave=False)
     try:
-        result = run_study(args.study, args.references, out_dir=out, settings=settings, unit=args.abundance_unit,
+        result = run_study(args.study, references, out_dir=out, settings=settings, unit=args.abundance_unit,
                            planned_effect=planned, progress=lambda acq, status: bar.update(1))
+        if args.control:
+            from probeplan.unmixing.references import write_references_csv
+
+            result.outputs["references"] = write_references_csv(out / "references_from_controls.csv", references)
         from probeplan.report.study import study_report, write_study_report
 
         report_path = write_study_report(study_report(result, settings), out)

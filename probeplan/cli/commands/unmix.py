@@ -16,12 +16,21 @@ _STACK_SUFFIXES = (".tif", ".tiff")
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     from probeplan.cli.common import add_output_options
 
-    parser.add_argument("stack", help="TIFF/OME-TIFF stack (C,Y,X), (C,Z,Y,X), (T,C,Y,X), or a folder of stacks")
+    parser.add_argument("stack", help="TIFF/OME-TIFF stack (C,Y,X), (C,Z,Y,X), (T,C,Y,X) or Y,X,C with --channel-axis 2, "
+                                      "an OME-Zarr image, or a folder of TIFF stacks")
     refs = parser.add_mutually_exclusive_group(required=True)
     refs.add_argument("--references", help="reference spectra CSV: channel,<component>,...")
     refs.add_argument("--references-from-plan", metavar="PLAN",
                       help="predict the reference spectra from a study plan's probes and channels at its target depth")
-    parser.add_argument("--out", required=True, help="abundance OME-TIFF to write (a folder when STACK is a folder)")
+    refs.add_argument("--control", action="append", metavar="NAME=STACK",
+                      help="measure component NAME's spectrum from a single-probe control stack (repeatable; "
+                           "needs --unlabelled)")
+    parser.add_argument("--unlabelled", metavar="STACK",
+                        help="unlabelled control stack (no probe), subtracted from each --control")
+    parser.add_argument("--unlabelled-as", metavar="NAME", default=None,
+                        help="also unmix the unlabelled control's spectrum as component NAME (e.g. autofluorescence)")
+    parser.add_argument("--out", required=True, help="abundance OME-TIFF to write, or OME-Zarr when it ends .ome.zarr "
+                                                     "(a folder when STACK is a folder)")
     parser.add_argument("--method", choices=("nnls", "ls", "wls"), default="nnls",
                         help="nnls: exact non-negative LS (default); ls: unconstrained; wls: Poisson-weighted LS")
     parser.add_argument("--channel-axis", type=int, default=None,
@@ -34,7 +43,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--gain", type=float, default=1.0, help="camera gain, e-/count (default 1)")
     parser.add_argument("--read-noise", type=float, default=0.0, help="camera read noise, e- rms (default 0)")
     parser.add_argument("--roi", action="append", default=[],
-                        help="ROI 'name:x0,y0,x1,y1' (pixels, end excluded) or a label TIFF; repeatable")
+                        help="ROI 'name:x0,y0,x1,y1' (pixels, end excluded), 'name:ellipse:cx,cy,rx,ry', "
+                             "'name:polygon:x1,y1,x2,y2,...' or a label TIFF; repeatable")
     parser.add_argument("--roi-background", default="background", help="name of the background ROI (default background)")
     parser.add_argument("--memory-mb", type=float, default=None, help="working-memory bound in MiB (default 256)")
     parser.add_argument("--scheduler", default=None, help="address of a running dask.distributed scheduler")
@@ -50,13 +60,28 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--json", action="store_true", help="print a machine-readable summary")
 
 
+def _stem(name: str) -> str:
+    """The file name without its image extension only: ``mouse1.day3.ome.tif`` -> ``mouse1.day3``."""
+    for ext in (".ome.tiff", ".ome.tif", ".tiff", ".tif"):
+        if name.lower().endswith(ext):
+            return name[: -len(ext)]
+    return name
+
+
 def _sha256(path) -> str:
+    """Checksum of a file, or of every file in a folder (an OME-Zarr image) with its relative name."""
     import hashlib
+    from pathlib import Path
 
     h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 22), b""):
-            h.update(block)
+    p = Path(path)
+    files = sorted(f for f in p.rglob("*") if f.is_file()) if p.is_dir() else [p]
+    for f in files:
+        if p.is_dir():
+            h.update(str(f.relative_to(p)).encode())
+        with open(f, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 22), b""):
+                h.update(block)
     return h.hexdigest()
 
 
@@ -119,7 +144,7 @@ def _is_done(entry, stack, settings) -> bool:
     if entry.get("settings_sha256") != settings or entry.get("input_sha256") != _sha256(stack):
         return False
     for p, digest in entry["outputs"].items():
-        if not isinstance(digest, str) or not Path(p).is_file() or _sha256(p) != digest:
+        if not isinstance(digest, str) or not Path(p).exists() or _sha256(p) != digest:
             return False
     return True
 
@@ -158,8 +183,18 @@ def run(args: argparse.Namespace) -> int:
 
         refs = plan_references(load_plan(args.references_from_plan))
         args.references = args.references_from_plan
+    elif args.control:
+        from probeplan.unmixing.references import parse_control_specs, references_from_control_files
+
+        if not args.unlabelled:
+            raise input_error("--control", "needs --unlabelled", "give the unlabelled control stack with --unlabelled")
+        controls = parse_control_specs(args.control)
+        refs = references_from_control_files(controls, args.unlabelled, unlabelled_name=args.unlabelled_as)
+        args.references = args.unlabelled
     else:
         refs = read_references_csv(args.references)
+    if args.unlabelled and not args.control:
+        raise input_error("--unlabelled", "is used only with --control", "add --control NAME=STACK or drop --unlabelled")
     calibration = None
     if args.calibration:
         from probeplan.study.calibration import read_calibration_csv
@@ -173,7 +208,9 @@ def run(args: argparse.Namespace) -> int:
     label_files = [r for r in args.roi if r.lower().endswith(_STACK_SUFFIXES)]
     if len(label_files) > 1:
         raise input_error("--roi", f"{len(label_files)} label images given", "give at most one label TIFF")
-    if stack.is_dir():
+    from probeplan.io.ngff import is_ome_zarr
+
+    if stack.is_dir() and not is_ome_zarr(stack):
         stacks = sorted(p for p in stack.iterdir() if p.is_file() and p.suffix.lower() in _STACK_SUFFIXES)
         if not stacks:
             raise input_error(str(stack), "holds no .tif/.tiff stack", "give a folder of TIFF stacks or one stack file")
@@ -181,12 +218,12 @@ def run(args: argparse.Namespace) -> int:
             raise input_error("--out", f"{str(out)!r} is a file but STACK is a folder", "give an output folder")
         if out.resolve() == stack.resolve():
             raise input_error("--out", f"{str(out)!r} is the input folder", "give a separate output folder")
-        targets = [(s, out / (s.name.split(".")[0] + ".ome.tif")) for s in stacks]
+        targets = [(s, out / (_stem(s.name) + ".ome.tif")) for s in stacks]
         by_target: dict = {}
         for s, t in targets:
             if t in by_target:
                 raise input_error(str(stack), f"{by_target[t].name!r} and {s.name!r} would both be written to {t.name!r}",
-                                  "rename one of them (names must differ before the first '.')")
+                                  "rename one of them (names must differ once '.ome.tif'/'.tif' is removed)")
             by_target[t] = s
         # The outermost folder this command creates, removed again if no stack is finished.
         for parent in (out, *out.absolute().parents):
@@ -229,6 +266,12 @@ def run(args: argparse.Namespace) -> int:
     calibration_flags: dict = {}
     if created is not None:
         out.mkdir(parents=True, exist_ok=True)
+    if args.control:
+        from probeplan.unmixing.references import write_references_csv
+
+        derived = folder / (("references_from_controls.csv") if stack.is_dir() else
+                            (out.name.split(".ome.")[0].split(".tif")[0] + "_references.csv"))
+        write_references_csv(derived, refs)
     previous = signal.signal(signal.SIGTERM, _terminate)
     try:
         for s, target in targets:
