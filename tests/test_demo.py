@@ -85,3 +85,13 @@ def test_unmix_command_with_references_from_plan(tmp_path, capsys):
                  "--dark", str(folder / "dark.tif"), "--out", str(out)]) == 0
     abundance, _ = read_stack(out)
     assert abundance.shape == (3, 128, 128)
+
+
+def test_demo_report_puts_predicted_beside_measured(demo_result):
+    # the plan predicts SBR ~1.3 at 3 mm for probe A (raw channel) and the images measure TBR ~3.8 (unmixed
+    # abundances, predicted as the uptake ratio 4): the report names each quantity
+    rows = {(r["component"], r["quantity"]): r for r in demo_result.summary["closure"]}
+    assert rows[("probe A (700)", "sbr")]["predicted"] == pytest.approx(1.3, abs=0.05)
+    assert rows[("probe A (700)", "tbr")]["measured"] == pytest.approx(3.8, abs=0.15)
+    html = demo_result.report.read_text(encoding="utf-8")
+    assert "Predicted beside measured" in html and "they measure different things" in html
