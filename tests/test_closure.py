@@ -42,9 +42,10 @@ def test_closure_table_says_which_quantity_is_which(demo):
     assert "not the SBR" in a_tbr["meaning"] and "before unmixing" in a_sbr["meaning"]
     assert (c.table["ratio"] == c.table["measured"] / c.table["predicted"]).all()
     # the demo stack was simulated from the plan's channel model at 3 mm: the excess signal of the probes whose
-    # target holds the plan's concentration (A in the tumour, B in the node) is reproduced within 5 %
+    # target holds the plan's concentration (A in the tumour, B in the node) is reproduced within 10 % (the ROI's
+    # measured TBR, 3.8 and 4.2, differs from the planned 4, which the fits below take into account)
     for name in ("probe A (700)", "probe B (780)"):
-        assert _row(c.table, name, "signal")["ratio"] == pytest.approx(1.0, abs=0.05)
+        assert _row(c.table, name, "signal")["ratio"] == pytest.approx(1.0, abs=0.1)
 
 
 def test_known_depth_recovers_the_demo_generator(demo):
