@@ -7,7 +7,8 @@ laser safety officer, radiation/chemical safety office, or local regulations.
 from probeplan.errors import InputError, ModelValidityWarning, ProbeplanWarning
 
 __all__ = ["InputError", "ProbeplanWarning", "ModelValidityWarning", "__version__", "RESEARCH_USE_CAUTION", "run_study",
-           "sphere_reduced_scattering_per_cm", "phantom_recipe", "calibrate_phantom", "apply_calibration"]
+           "sphere_reduced_scattering_per_cm", "phantom_recipe", "calibrate_phantom", "apply_calibration",
+           "closure", "depth_from_spectrum"]
 
 __version__ = "0.1.0"
 
@@ -24,6 +25,8 @@ _LAZY = {
     "phantom_recipe": "probeplan.model.phantom",
     "calibrate_phantom": "probeplan.study.calibration",
     "apply_calibration": "probeplan.study.calibration",
+    "closure": "probeplan.study.closure",
+    "depth_from_spectrum": "probeplan.study.depth_spectrum",
 }
 
 

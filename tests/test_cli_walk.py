@@ -249,6 +249,9 @@ _NUMERIC = {
     "app": (["app"], ["--port", "--max-upload-mb"]),
     "calibrate": (["calibrate", str(DEMO / "phantom.csv"), "--references", str(DEMO / "references.csv"),
                    "--depth-mm", "0"], ["--depth-mm", "--gain", "--read-noise"]),
+    "depth-from-spectrum": (["depth-from-spectrum", str(DEMO / "control_1.tif"), "--plan", str(DEMO / "plan.toml"),
+                             "--probe", "probe A (700)", "--roi", "background:2,100,20,126"],
+                            ["--gain", "--read-noise", "--min-snr", "--confidence"]),
     "phantom": (["phantom", "--wavelength-nm", "700", "--mu-a", "0.3", "--mu-s-prime", "10", "--scatterer",
                  "polystyrene", "--diameter-um", "1"], ["--wavelength-nm", "--mu-a", "--mu-s-prime", "--batch-ml",
                                                         "--diameter-um"]),
@@ -282,7 +285,7 @@ def test_numeric_options_nan_negative_text(tmp_path, capsys, monkeypatch, label,
     base, _ = _NUMERIC[label]
     argv = _with_option(base, option, value)
     out = tmp_path / "out.ome.tif"
-    if label in ("unmix", "calibrate", "phantom"):
+    if label in ("unmix", "calibrate", "phantom", "depth-from-spectrum"):
         argv += ["--out", out]
     code, _, err = _run(argv, capsys)
     _assert_refused(code, err, option, option.lstrip("-").replace("-", "_"), "probeplan")
@@ -314,7 +317,7 @@ def test_real_process_usage_error(tmp_path):
 
 def test_every_command_is_walked():
     walked = {"depth", "channels", "design", "unmix", "plan", "check", "library", "demo", "app", "dots", "study",
-              "calibrate", "phantom"}
+              "calibrate", "phantom", "depth-from-spectrum"}
     assert set(COMMANDS) <= walked, f"new subcommands to add to the walk: {set(COMMANDS) - walked}"
 
 

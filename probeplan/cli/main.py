@@ -160,7 +160,8 @@ def _command_modules() -> list[tuple[str, object]]:
 
     names = [m.name for m in pkgutil.iter_modules(pkg.__path__) if not m.name.startswith("_")]
     names.sort(key=lambda n: (_ORDER.index(n) if n in _ORDER else len(_ORDER), n))
-    return [(n, importlib.import_module(f"probeplan.cli.commands.{n}")) for n in names]
+    # a module name's underscores become hyphens on the command line (depth_from_spectrum -> depth-from-spectrum)
+    return [(n.replace("_", "-"), importlib.import_module(f"probeplan.cli.commands.{n}")) for n in names]
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -5,7 +5,8 @@ sampling limits (``safety``), animals per group (``animals``), the evaluation of
 against the model and the rules (``evaluate``), the analysis of a whole study: the study
 table (``table``), the runner over every acquisition (``runs``), group comparisons
 (``stats``) and time-course fits (``kinetics``); the phantom calibration to µM
-(``calibration``) and a phantom for a plan (``phantom``).
+(``calibration``), a phantom for a plan (``phantom``), the plan's predictions beside the
+measurements (``closure``) and a target's depth from its channel ratios (``depth_spectrum``).
 It may import :mod:`probeplan.model`, :mod:`probeplan.catalog`, :mod:`probeplan.unmixing`,
 :mod:`probeplan.io` and the foundations; never the report or command line.
 """

@@ -60,6 +60,7 @@ __all__ = [
     "apply_calibration",
     "plot_calibration",
     "calibrate_outputs",
+    "calibrate_measurements",
 ]
 
 PHANTOM_COLUMNS = ("file", "component", "concentration_uM", "roi")
@@ -469,3 +470,38 @@ def calibrate_outputs(outputs: dict, calibration: Calibration, *, depth_mm: floa
         write_csv_atomic(paths["uM_roi"], rows, ["roi", "component", "n_pixels", "n_nan", "mean", "sd", "tbr", "unit",
                                                  "flag"])
     return {**paths, "names": cal_names, "n_flagged": counts}
+
+
+def calibrate_measurements(measurements: pd.DataFrame, calibration: Calibration, *,
+                           depth_mm: float | None = None) -> pd.DataFrame:
+    """A study's ROI measurements in µM: ``mean``, ``se`` (and ``sd``) converted, ``unit`` set, ``flag`` added.
+
+    Components without a calibration line are left out (they stay in ``measurements.csv`` in counts).
+    ``tbr`` is recomputed from the calibrated means (the intercept changes it).  See :func:`apply_calibration`.
+    """
+    names = [n for n in dict.fromkeys(measurements["component"]) if n in set(calibration.table["component"])]
+    if not names:
+        raise input_error("calibration", f"no line for any measured component {sorted(set(measurements['component']))}",
+                          "calibrate with a phantom of the same probes (names must match the references)")
+    out = measurements[measurements["component"].isin(names)].copy()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", ModelValidityWarning)
+        for name in names:
+            rows = out["component"] == name
+            res = apply_calibration(out.loc[rows, "mean"].to_numpy()[None], out.loc[rows, "se"].to_numpy()[None],
+                                    [name], calibration, depth_mm=depth_mm)
+            out.loc[rows, "mean"] = res["concentration_uM"][0]
+            out.loc[rows, "se"] = res["se_uM"][0]
+            if "sd" in out:
+                out.loc[rows, "sd"] = out.loc[rows, "sd"] / float(calibration.row(name)["slope_counts_per_uM"])
+            out.loc[rows, "flag"] = [FLAGS[int(f)] for f in res["flags"][0]]
+    for w in {str(w.message): w for w in caught}.values():
+        warnings.warn(w.message, w.category, stacklevel=2)
+    out["unit"] = "uM"
+    key = ["animal", "time_h", "component"]
+    if "background" in set(out["roi"]):
+        bg = out[out["roi"] == "background"].set_index(key)["mean"]
+        ref = out.set_index(key).index.map(bg.to_dict().get)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out["tbr"] = np.where(np.asarray(ref, dtype=float) > 0, out["mean"] / np.asarray(ref, dtype=float), np.nan)
+    return out.drop(columns=[c for c in ("tbr_se",) if c in out.columns])

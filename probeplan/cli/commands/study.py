@@ -44,7 +44,15 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--abundance-unit", default=None, metavar="UNIT",
                         help="use the references as written (e.g. counts per µM) and call the abundance unit UNIT "
                              "(e.g. uM); default: references scaled to sum 1, abundance in counts")
-    parser.add_argument("--plan", default=None, help="study plan TOML: show its assumed effect size beside the observed")
+    parser.add_argument("--plan", default=None,
+                        help="study plan TOML: its assumed effect size beside the observed, and the plan's predictions "
+                             "beside the measurements (closure.csv, closure_fits.csv, refined_plan.toml)")
+    parser.add_argument("--calibration", default=None, metavar="FILE",
+                        help="calibration.csv from 'probeplan calibrate': also write measurements_uM.csv (µM with "
+                             "standard errors and range flags)")
+    parser.add_argument("--depth-mm", type=float, default=None,
+                        help="the target's depth (mm): checked against the calibration phantom's depth (default: the "
+                             "plan's target depth) and used by the closure when given")
     parser.add_argument("--no-maps", action="store_true", help="write only the tables, not the maps of each acquisition")
     parser.add_argument("--json", action="store_true", help="print a machine-readable summary")
     add_output_options(parser)
@@ -77,10 +85,30 @@ def run(args: argparse.Namespace) -> int:
         from probeplan.study.plan import load_plan
 
         plan = load_plan(args.plan)
-        if not plan.statistics:
-            raise input_error(str(args.plan), "has no [statistics] section with effect_size and sd",
-                              "add one, or omit --plan")
-        planned = {"effect_size": plan.statistics["effect_size"], "sd": plan.statistics["sd"]}
+        if plan.statistics:
+            planned = {"effect_size": plan.statistics["effect_size"], "sd": plan.statistics["sd"]}
+    if args.depth_mm is not None and not (math.isfinite(args.depth_mm) and args.depth_mm >= 0):
+        raise input_error("--depth-mm", f"got {args.depth_mm}", "give the target's depth in mm (>= 0)")
+    calibration = None
+    if args.calibration:
+        from probeplan.study.calibration import read_calibration_csv
+
+        calibration = read_calibration_csv(args.calibration)
+    if args.plan or calibration is not None:
+        from probeplan.study.runs import load_references
+
+        comps = set(load_references(args.references, unit=args.abundance_unit).component_names)
+        if calibration is not None and not set(calibration.table["component"]) & comps:
+            raise input_error(args.calibration, f"calibrates {list(calibration.table['component'])}, none of the "
+                              f"references' components {sorted(comps)}", "use the calibration made with these probes")
+        if args.plan:
+            missing = [p["name"] for p in plan.probes if p["name"] not in comps]
+            if missing:
+                raise input_error(args.references, f"no column for the plan's probe(s) {missing}",
+                                  "name the reference columns as the plan names its probes")
+            if args.roi_background not in [r.split(":")[0].strip() for r in rects] and not labels:
+                raise input_error("--roi", f"no background ROI {args.roi_background!r}",
+                                  "the closure with --plan compares target and background ROIs: add one")
     settings = StudySettings(
         method=args.method, rois=tuple(rects), labels_path=Path(labels[0]) if labels else None,
         roi_background=args.roi_background, dark_path=Path(args.dark) if args.dark else None,
@@ -123,6 +151,7 @@ def run(args: argparse.Namespace) -> int:
         from probeplan.report.study import study_report, write_study_report
 
         report_path = write_study_report(study_report(result, settings), out)
+        extra = _closure_and_calibration(args, result, out, calibration)
     except BaseException:
         # nothing finished: leave no folder behind (finished acquisitions are kept for the rerun to reuse)
         if created is not None and not any(out.glob("acquisitions/*_measurements.csv")):
@@ -141,7 +170,8 @@ def run(args: argparse.Namespace) -> int:
         "time_points_h": sorted(float(t) for t in result.measurements["time_h"].unique()),
         "resumed": result.skipped, "unit": result.unit, "comparisons": len(g), "comparisons_tested": n_compared,
         "significant_holm_0.05": int((g["p_adjusted"] < 0.05).sum()) if len(g) else 0,
-        "outputs": {k: str(v) for k, v in {**result.outputs, "report": report_path}.items()}, "notes": result.notes,
+        "outputs": {k: str(v) for k, v in {**result.outputs, "report": report_path, **extra["outputs"]}.items()},
+        "notes": result.notes + extra["notes"],
     }
     if args.json:
         print_json(summary)
@@ -153,9 +183,43 @@ def run(args: argparse.Namespace) -> int:
         out_(f"abundance unit: {result.unit}\n")
         out_(f"{summary['comparisons']} group comparisons, {n_compared} tested, "
              f"{summary['significant_holm_0.05']} with Holm-adjusted p < 0.05\n")
-        for note in result.notes[1:]:
+        for note in result.notes[1:] + extra["notes"]:
             out_(f"note: {note}\n")
         for k, v in summary["outputs"].items():
             out_(f"{k}: {v}\n")
         out_(RESEARCH_USE_CAUTION + "\n")
     return 0
+
+
+def _closure_and_calibration(args, result, out, calibration) -> dict:
+    """measurements_uM.csv (with --calibration) and closure tables and the refined plan (with --plan)."""
+    from probeplan.cli.common import model_notes
+    from probeplan.io.atomic import write_text_atomic
+
+    outputs, notes = {}, []
+    plan = None
+    if args.plan:
+        from probeplan.study.plan import load_plan
+
+        plan = load_plan(args.plan)
+    depth = args.depth_mm if args.depth_mm is not None else (plan.target["depth_mm"] if plan is not None else None)
+    with model_notes() as messages:
+        if calibration is not None:
+            from probeplan.study.calibration import calibrate_measurements
+
+            table = calibrate_measurements(result.measurements, calibration, depth_mm=depth)
+            outputs["measurements_uM"] = out / "measurements_uM.csv"
+            write_text_atomic(outputs["measurements_uM"], table.to_csv(index=False))
+        if plan is not None:
+            from probeplan.study.closure import closure
+            from probeplan.study.runs import load_references
+
+            c = closure(result.measurements, plan, load_references(args.references, unit=args.abundance_unit),
+                        background_roi=args.roi_background, depth_mm=args.depth_mm, gain_e_per_count=args.gain)
+            for key, name, text in (("closure", "closure.csv", c.table.to_csv(index=False)),
+                                    ("closure_fits", "closure_fits.csv", c.fits.to_csv(index=False)),
+                                    ("refined_plan", "refined_plan.toml", c.refined_plan_toml)):
+                outputs[key] = out / name
+                write_text_atomic(outputs[key], text)
+            notes += c.notes
+    return {"outputs": outputs, "notes": list(dict.fromkeys(notes + messages))}

@@ -1,0 +1,131 @@
+"""Depth from the spectrum: recovery on synthetic images over 1-6 mm, refusal, sensitivity, the command."""
+
+import json
+import warnings
+
+import numpy as np
+import pytest
+import tifffile
+
+from probeplan.cli.main import main
+from probeplan.demo import demo_folder
+from probeplan.errors import AssumptionWarning, InputError
+from probeplan.study.depth_spectrum import (
+    DEFAULT_DEPTH_GRID_MM,
+    channel_depth_curves,
+    depth_from_spectrum,
+    depth_from_spectrum_plan,
+)
+from probeplan.study.evaluate import plan_model
+from probeplan.study.plan import load_plan, parse_plan_text
+
+# An invented NIR-II set-up: one PbS probe at 1350 nm read at 1250, 1350 and 1450 nm (the 1450 nm water band
+# reshapes the escaping spectrum with depth), 808 nm excitation, InGaAs camera.
+_PROBE = """[[probes]]
+name = "probe N (1350)"
+material = "PbS"
+emission_peak_nm = 1350
+stock_uM = 10.0
+dose_nmol_per_kg = 8
+route = "iv"
+injection_time_h = 0
+
+"""
+_CHANNELS = "".join(f'[[acquisition.channels]]\nname = "{c}"\nfilter = "{c}/50"\nexposure_s = 0.05\n\n'
+                    for c in ("1250", "1350", "1450"))
+
+
+def _nir2_plan():
+    text = (demo_folder() / "plan.toml").read_text()
+    head, rest = text[: text.index("[[probes]]")], text[text.index("[target]"): text.index("[[acquisition.channels]]")]
+    rest = rest.replace('camera = "si-deep-depletion"', 'camera = "ingaas"').replace("wavelength_nm = 640",
+                                                                                      "wavelength_nm = 808")
+    return parse_plan_text(head + _PROBE + rest + _CHANNELS, source="nir2.toml")
+
+
+@pytest.fixture(scope="module")
+def nir2():
+    plan = _nir2_plan()
+    m = plan_model(plan)
+    curves = channel_depth_curves(m.tissue, m.probes[0], m.channels, source=m.source,
+                                  irradiance_mw_per_cm2=m.irradiance_mw_per_cm2, camera=m.camera, lens=m.lens,
+                                  target_size_mm=plan.target["size_mm"])
+    return plan, curves, [c.name for c in m.channels]
+
+
+def _image(curves, depth_mm, rng, *, uM=0.01, background=200.0, shape=(20, 20)):
+    i = int(np.argmin(np.abs(DEFAULT_DEPTH_GRID_MM - depth_mm)))
+    mean = curves[i] * uM
+    counts = rng.poisson(mean[:, None, None] + background, size=(3, *shape)).astype(float) - background
+    se = np.sqrt(mean + background)[:, None, None] * np.ones((1, *shape))
+    return counts, se
+
+
+@pytest.mark.parametrize("depth_mm", [1.0, 2.0, 3.0, 4.0, 5.0, 6.0])
+def test_recovers_known_depth_on_synthetic_images(nir2, depth_mm):
+    # synthetic images from the forward model with Poisson noise: 400 pixels at a known depth
+    _, curves, names = nir2
+    counts, se = _image(curves, depth_mm, np.random.default_rng(int(depth_mm)))
+    est = depth_from_spectrum(counts, curves, channel_names=names, signal_se=se)
+    assert est.depth_mm.shape == (20, 20)
+    assert np.nanmedian(est.depth_mm) == pytest.approx(depth_mm, abs=0.1)
+    covered = np.mean((est.ci_low_mm <= depth_mm) & (est.ci_high_mm >= depth_mm))
+    assert 0.85 <= covered <= 1.0  # 95 % intervals (profile likelihood) cover the truth about 95 % of the time
+    assert est.channel_pair == ("1250", "1350")
+
+
+def test_sensitivity_predicts_the_shift_of_a_ratio_change(nir2):
+    _, curves, names = nir2
+    pair = curves[:, :2]  # the two channels of the reported ratio, 1250 and 1350 nm
+    i = int(np.argmin(np.abs(DEFAULT_DEPTH_GRID_MM - 3.0)))
+    clean = pair[i] * 0.01
+    base = depth_from_spectrum(clean, pair, channel_names=names[:2])
+    shifted = clean.copy()
+    shifted[0] *= 1.05  # the 1250/1350 ratio up by 5 %
+    moved = depth_from_spectrum(shifted, pair, channel_names=names[:2])
+    expected = 5 * float(base.sensitivity_mm_per_percent)
+    assert abs(float(moved.depth_mm) - float(base.depth_mm)) == pytest.approx(expected, rel=0.25)
+    assert float(base.depth_mm) == pytest.approx(3.0, abs=0.05)
+
+
+def test_refuses_channels_that_cannot_tell_depths_apart():
+    plan = load_plan(demo_folder() / "plan.toml")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", AssumptionWarning)
+        with pytest.raises(InputError, match="cannot tell depths apart"):
+            depth_from_spectrum_plan(np.ones(4), plan, "probe B (780)")
+    with pytest.raises(InputError, match="two or more channels"):
+        depth_from_spectrum(np.ones(1), np.ones((DEFAULT_DEPTH_GRID_MM.size, 1)), channel_names=["a"])
+
+
+def test_warns_when_the_emission_spectrum_is_typical(nir2):
+    plan, curves, names = nir2
+    with pytest.warns(AssumptionWarning, match="typical shape"):
+        est = depth_from_spectrum_plan(curves[55] * 0.01, plan, "probe N (1350)")
+    assert float(est.depth_mm) == pytest.approx(DEFAULT_DEPTH_GRID_MM[55], abs=0.05)
+
+
+def test_command_per_roi_and_map(tmp_path, capsys, nir2):
+    plan, curves, names = nir2
+    (tmp_path / "plan.toml").write_text(plan.text)
+    rng = np.random.default_rng(7)
+    stack = rng.poisson(200.0, size=(3, 40, 60)).astype(np.float32)
+    i = int(np.argmin(np.abs(DEFAULT_DEPTH_GRID_MM - 4.0)))
+    stack[:, 10:30, 10:30] += rng.poisson(curves[i][:, None, None] * 0.01, size=(3, 20, 20))
+    f = tmp_path / "stack.ome.tif"
+    tifffile.imwrite(f, stack, ome=True, photometric="minisblack", metadata={"axes": "CYX", "Channel": {"Name": names}})
+    out = tmp_path / "depth"
+    assert main(["depth-from-spectrum", str(f), "--plan", str(tmp_path / "plan.toml"), "--probe", "probe N (1350)",
+                 "--roi", "target:10,10,30,30", "--roi", "background:40,0,60,40", "--out", str(out), "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    row = next(r for r in report["rois"] if r["roi"] == "target")
+    assert row["depth_mm"] == pytest.approx(4.0, abs=0.15)
+    assert row["ci_low_mm"] <= 4.0 <= row["ci_high_mm"]
+    assert row["sensitivity_mm_per_percent"] > 0
+    assert any("typical shape" in n for n in report["notes"])
+    assert (out / "depth_map.ome.tif").is_file() and (out / "depth_rois.csv").is_file()
+    demo = demo_folder()
+    assert main(["depth-from-spectrum", str(demo / "control_2.tif"), "--plan", str(demo / "plan.toml"), "--probe",
+                 "probe B (780)", "--roi", "background:2,100,20,126", "--out", str(tmp_path / "d2")]) == 2
+    assert "cannot tell depths apart" in capsys.readouterr().err
+    assert not (tmp_path / "d2").exists()
