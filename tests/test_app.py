@@ -46,7 +46,8 @@ def _errors(at: AppTest) -> list[str]:
 
 
 def _view(at: AppTest, view: str) -> AppTest:
-    at.sidebar.radio(key="w_view").set_value(view).run()
+    """Switch to a view through the page's navigation (its script ``app/view_<view>.py``)."""
+    at.switch_page(f"view_{view}.py").run()
     _clean(at)
     return at
 
@@ -216,7 +217,7 @@ def test_design_bad_widths_is_an_error_line():
     assert any("filter widths" in e for e in _errors(at))
 
 
-# --------------------------------------------------------------------------- separate view
+# --------------------------------------------------------------------------- unmix view
 
 
 def _test_stack(tmp_path: Path) -> tuple[bytes, bytes, np.ndarray, np.ndarray]:
@@ -234,33 +235,67 @@ def _test_stack(tmp_path: Path) -> tuple[bytes, bytes, np.ndarray, np.ndarray]:
     return path.read_bytes(), csv.encode(), abundance, refs
 
 
-def test_separate_upload_unmix_and_roi(tmp_path):
+def _roi_file(*regions: dict, size=(48, 40), background="background") -> bytes:
+    import json
+
+    return json.dumps({"kind": "probeplan ROIs", "version": 1, "image_size": list(size), "background": background,
+                       "rois": list(regions)}).encode()
+
+
+def test_unmix_upload_unmix_and_roi(tmp_path):
     stack, csv, truth, _ = _test_stack(tmp_path)
-    at = _view(_app(), "separate")
+    at = _view(_app(), "unmix")
     assert any(RESEARCH_USE_CAUTION in w.value for w in at.warning)
     at.file_uploader(key="up_stack").set_value(("../../my stack (1).tif", stack, "image/tiff"))
     at.file_uploader(key="up_refs").set_value(("refs.csv", csv, "text/csv"))
-    at.text_area(key="w_sep_rois").set_value("dotA:5,5,15,15\nbackground:40,0,48,5")
-    at.text_input(key="w_sep_background").set_value("background")
     at.button(key="btn_unmix").click().run()
     _clean(at)
     assert _errors(at) == [], _errors(at)
     assert _image_count(at) >= 2
-    rows = _table(at)
+    # regions come back from a ROI file: the dotA square (pixel centres 5..14) and a background strip
+    rois = _roi_file({"name": "dotA", "shape": "rectangle", "x": [5, 14], "y": [5, 14]},
+                     {"name": "background", "shape": "rectangle", "x": [40, 47], "y": [0, 4]})
+    at.file_uploader(key="up_rois").set_value(("rois.json", rois, "application/json")).run()
+    _clean(at)
+    assert list(_table(at)["region"]) == ["dotA", "background"]
+    assert at.selectbox(key="w_roi_background").value == "background"
+    at.button(key="btn_roi_measure").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    rows = _table(at, -1)
     a_in_roi = rows[(rows["region"] == "dotA") & (rows["component"] == "dotA")].iloc[0]
     # noise-free mixture: the exact abundance comes back (1000 + 50 inside, 50 in the background region)
     assert float(a_in_roi["mean abundance (counts)"]) == pytest.approx(1050.0, rel=1e-3)
     assert float(a_in_roi["target-to-background ratio"]) == pytest.approx(21.0, rel=1e-3)
+    assert int(a_in_roi["pixels"]) == 100
     # the upload is in the session's private folder, under a sanitised basename
     folder = at.session_state["_session_folder"].path
     saved = sorted(p.name for p in (folder / "uploads").iterdir())
     assert saved == ["my_stack_1_.tif", "refs.csv"]
     labels = [b.label for b in at.get("download_button")]
     assert any("OME-TIFF" in lab for lab in labels) and any("CSV" in lab for lab in labels)
+    assert any("ROI file" in lab for lab in labels)
 
 
-def test_separate_with_the_demo_data():
-    at = _view(_app(), "separate")
+def test_unmix_automatic_target_region_is_offered_and_taken(tmp_path):
+    stack, csv, _, _ = _test_stack(tmp_path)
+    at = _view(_app(), "unmix")
+    at.file_uploader(key="up_stack").set_value(("stack.tif", stack, "image/tiff"))
+    at.file_uploader(key="up_refs").set_value(("refs.csv", csv, "text/csv"))
+    at.button(key="btn_unmix").click().run()
+    _clean(at)
+    assert any("Automatic target region for dotA" in i.value for i in at.info)
+    at.button(key="btn_roi_auto").click().run()
+    _clean(at)
+    table = _table(at, -1)
+    assert list(table["region"]) == ["dotA spot"]
+    # the test map's dotA square is x 5..14, y 5..14: the suggested region is that square
+    row = table.iloc[0]
+    assert (row["x from (pixel)"], row["x to"], row["y from"], row["y to"]) == ("5", "14", "5", "14")
+
+
+def test_unmix_with_the_demo_data():
+    at = _view(_app(), "unmix")
     box = at.checkbox(key="w_sep_demo")
     if box.disabled:
         pytest.skip("the demo data is not available in this checkout")
@@ -269,13 +304,15 @@ def test_separate_with_the_demo_data():
     _clean(at)
     assert _errors(at) == [], _errors(at)
     assert _image_count(at) >= 2
-    rows = _table(at)
+    at.button(key="btn_roi_measure").click().run()
+    _clean(at)
+    rows = _table(at, -1)
     assert {"tumour", "muscle"} <= set(rows["region"])
 
 
-def test_separate_bad_uploads_show_errors(tmp_path):
+def test_unmix_bad_uploads_show_errors(tmp_path):
     stack, csv, _, _ = _test_stack(tmp_path)
-    at = _view(_app(), "separate")
+    at = _view(_app(), "unmix")
     at.button(key="btn_unmix").click().run()
     _clean(at)
     assert any("upload" in e for e in _errors(at))
@@ -295,10 +332,17 @@ def test_separate_bad_uploads_show_errors(tmp_path):
     _clean(at)
     assert any("ch880" in e for e in _errors(at)), _errors(at)
     at.file_uploader(key="up_refs").set_value(("refs.csv", csv, "text/csv"))
-    at.text_area(key="w_sep_rois").set_value("tumour:0,0,500,500")
     at.button(key="btn_unmix").click().run()
     _clean(at)
-    assert any("extends past the image" in e for e in _errors(at)), _errors(at)
+    # a ROI file drawn on another image, and one whose region lies outside this image
+    other = _roi_file({"name": "t", "shape": "ellipse", "x": [1, 5], "y": [1, 5]}, size=(500, 500))
+    at.file_uploader(key="up_rois").set_value(("other.json", other, "application/json")).run()
+    _clean(at)
+    assert any("500 x 500" in e and "48 x 40" in e for e in _errors(at)), _errors(at)
+    outside = _roi_file({"name": "t", "shape": "rectangle", "x": [100, 120], "y": [1, 5]})
+    at.file_uploader(key="up_rois").set_value(("outside.json", outside, "application/json")).run()
+    _clean(at)
+    assert any("holds no pixel" in e for e in _errors(at)), _errors(at)
 
 
 
@@ -396,11 +440,11 @@ def test_plan_upload_replaces_the_text():
 
 @pytest.fixture()
 def page_common():
-    sys.path.insert(0, str(APP.parent))
+    sys.path.insert(0, str(ROOT))
     try:
-        yield importlib.import_module("page_common")
+        yield importlib.import_module("app.page_common")
     finally:
-        sys.path.remove(str(APP.parent))
+        sys.path.remove(str(ROOT))
 
 
 @pytest.mark.parametrize(("name", "expected"), [
@@ -478,3 +522,29 @@ def test_app_command_without_the_page(monkeypatch, tmp_path, capsys):
     err = capsys.readouterr().err
     assert "is missing" in err and "pip install -e" in err
 
+
+
+# --------------------------------------------------------------------------- navigation
+
+
+def _views_in_order() -> list[tuple[str, str, str]]:
+    import ast
+
+    tree = ast.parse(APP.read_text(encoding="utf-8"))
+    for node in tree.body:
+        if isinstance(node, ast.AnnAssign | ast.Assign):
+            target = node.target if isinstance(node, ast.AnnAssign) else node.targets[0]
+            if isinstance(target, ast.Name) and target.id == "VIEWS":
+                return list(ast.literal_eval(node.value))
+    raise AssertionError("app/main.py defines no VIEWS")
+
+
+def test_navigation_lists_the_views_in_the_order_of_the_work_each_with_the_caution():
+    views = _views_in_order()
+    assert [title.split(":")[0] for _, title, _ in views] == ["Depth", "Channels", "Unmix", "Study", "Plan"]
+    at = _app()
+    for script, title, _ in views:
+        at.switch_page(script).run()
+        _clean(at)
+        assert any(RESEARCH_USE_CAUTION in w.value for w in at.warning), script
+        assert at.header and at.header[0].value.split(":")[0] == title.split(":")[0], script

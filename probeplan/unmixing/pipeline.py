@@ -631,8 +631,9 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
         Needed only when the file does not say.
     dark_path, flat_path : path-like, optional
         Dark frame and flat field stacks of the same shape as the stack.
-    rois : sequence of str or Roi, optional
-        Rectangles ``"name:x0,y0,x1,y1"``.
+    rois : sequence of str, Roi or RoiShape, optional
+        Rectangles ``"name:x0,y0,x1,y1"``, ROI objects, or drawn shapes
+        (:class:`probeplan.unmixing.shapes.RoiShape`: rectangle, ellipse, polygon).
     labels_path : path-like, optional
         A label TIFF (Y, X); each non-zero label is an ROI.
     roi_background : str
@@ -665,6 +666,7 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     from probeplan.io.atomic import check_outputs, refuse_input_paths, write_json_atomic
     from probeplan.unmixing.overlay import downsample_mean, overlay_factor, write_overlay_png
     from probeplan.unmixing.roi import Roi, RoiAccumulator, parse_rectangle, rois_from_labels, write_roi_csv
+    from probeplan.unmixing.shapes import RoiShape, rectangle_from_spec, shapes_to_rois
 
     if method not in METHODS:
         raise input_error("method", f"{method!r} is not known", f"choose one of {', '.join(METHODS)}")
@@ -700,8 +702,16 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
             raise input_error(str(labels_path), f"shape {labels.shape}, image is {(ny, nx)}",
                               "give a label image of the stack's Y x X size")
         roi_list += rois_from_labels(labels)
+    drawn = []  # outlines for the overlay PNG
     for spec in rois or ():
-        roi_list.append(spec if isinstance(spec, Roi) else parse_rectangle(spec, shape=(ny, nx)))
+        if isinstance(spec, RoiShape):
+            drawn.append(spec)
+            roi_list += shapes_to_rois([spec], (ny, nx))
+            continue
+        roi = spec if isinstance(spec, Roi) else parse_rectangle(spec, shape=(ny, nx))
+        roi_list.append(roi)
+        if roi.rect is not None:
+            drawn.append(rectangle_from_spec(roi))
     paths = output_paths(out_path, roi=bool(roi_list))
     inputs = [info.path, *(r.info.path for r in aux.values()), *extra_inputs]
     if labels_path is not None:
@@ -770,7 +780,8 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
         for w in writers:
             w.commit()
         write_json_atomic(paths["qc"], qc_summary)
-        write_overlay_png(paths["overlay"], canvas, names, title=info.path.name, pixel_size_um=info.pixel_size_um)
+        write_overlay_png(paths["overlay"], canvas, names, title=info.path.name, pixel_size_um=info.pixel_size_um,
+                          rois=drawn, scale=factor)
         roi_rows = None
         if roi_acc is not None:
             roi_rows = roi_acc.rows(roi_background)

@@ -14,7 +14,7 @@ from __future__ import annotations
 import os
 import re
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -38,11 +38,15 @@ _RECT = re.compile(r"^\s*([^:]+?)\s*:\s*(-?\d+)\s*,\s*(-?\d+)\s*,\s*(-?\d+)\s*,\
 
 @dataclass(frozen=True)
 class Roi:
-    """A named region: a rectangle ``(x0, y0, x1, y1)`` or a label value of a label image."""
+    """A named region: a rectangle ``(x0, y0, x1, y1)``, a label value of a label image, or a pixel mask (Y, X).
+
+    A mask comes from a drawn shape (:mod:`probeplan.unmixing.shapes`): rectangle, ellipse or polygon.
+    """
 
     name: str
     rect: tuple[int, int, int, int] | None = None
     label: int | None = None
+    mask: np.ndarray | None = field(default=None, compare=False, repr=False)
 
 
 def parse_rectangle(spec: str, *, shape: tuple[int, int] | None = None) -> Roi:
@@ -103,6 +107,8 @@ class RoiAccumulator:
             if b > a:
                 m[a - r0 : b - r0, x0:x1] = True
             return m
+        if roi.mask is not None:
+            return np.asarray(roi.mask[r0:r1, :width], dtype=bool)
         return self.labels[r0:r1] == roi.label
 
     def add(self, abundances: np.ndarray, r0: int) -> None:
