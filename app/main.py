@@ -30,7 +30,7 @@ from probeplan import RESEARCH_USE_CAUTION, __version__  # noqa: E402
 VIEWS = (
     ("view_depth.py", "Depth: SBR and SNR against depth", "depth"),
     ("view_channels.py", "Channels: crosstalk and design", "channels"),
-    ("view_unmix.py", "Unmix: image stacks to abundance maps", "unmix"),
+    ("view_unmix.py", "Unmix: abundance maps and regions", "unmix"),
     ("view_study.py", "Study: animals and groups over time", "study"),
     ("view_plan.py", "Plan: rules and the protocol report", "plan"),
 )

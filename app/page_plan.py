@@ -65,7 +65,7 @@ def _report_files(ev) -> tuple[bytes, bytes, bytes]:
 def plan_view() -> None:
     """Edit or upload a plan and rules, check it, download the report."""
     ss = st.session_state
-    st.header("Plan: check a study plan against the institution's rules, write the report")
+    st.header("Plan: check the study plan, write the report")
     st.caption("The plan (TOML) describes animals, probes, doses, target, acquisition and statistics; the rules "
                "file (TOML) holds the institution's limits and overrides probeplan's defaults. Both start with the "
                "invented demo study; edit them here or upload your own.")

@@ -141,6 +141,8 @@ def _add_region(shape) -> None:
     regions.append(shape)
     st.session_state["unmix_regions"] = regions
     st.session_state.pop("unmix_roi_rows", None)
+    if shape.name == "background" and st.session_state.get("w_roi_background", "(none)") == "(none)":
+        st.session_state["w_roi_background"] = "background"
 
 
 def _image_size(result: dict) -> tuple[int, int]:
@@ -193,7 +195,7 @@ def _draw_chart(result: dict, component: int) -> tuple[dict | None, int]:
     fig.update_layout(dragmode="select", height=520, margin={"l": 10, "r": 10, "t": 30, "b": 10},
                       title={"text": f"{result['names'][component]}: drag a box, or pick the lasso in the toolbar",
                              "font": {"size": 13}})
-    event = st.plotly_chart(fig, key="roi_chart", on_select="rerun", selection_mode=("box", "lasso"),
+    event = st.plotly_chart(fig, key="roi_chart", on_select="rerun", selection_mode=("box", "lasso"), theme=None,
                             config={"displaylogo": False, "modeBarButtonsToRemove": ["toImage"]})
     selection = None
     if event is not None:
@@ -253,7 +255,8 @@ def _regions_section(result: dict) -> None:
 
             if not str(name).strip():
                 raise input_error("region name", "is empty", "type a name, e.g. tumour")
-            shape = shape_from_selection(selection or {}, str(name).strip(), shape=str(kind), scale=float(factor))
+            shape = shape_from_selection(selection or {}, str(name).strip(), shape=str(kind), scale=float(factor),
+                                         image_size=_image_size(result))
             shapes_to_rois([shape], result["abundances"].shape[-2:])  # refuses a region outside the image
             _add_region(shape)
             st.rerun()

@@ -548,3 +548,45 @@ def test_navigation_lists_the_views_in_the_order_of_the_work_each_with_the_cauti
         _clean(at)
         assert any(RESEARCH_USE_CAUTION in w.value for w in at.warning), script
         assert at.header and at.header[0].value.split(":")[0] == title.split(":")[0], script
+
+
+# --------------------------------------------------------------------------- study view
+
+
+def _measurements_csv() -> str:
+    """Two groups of three animals at three times (test data of our own)."""
+    lines = ["animal,group,time_h,roi,component,mean,se,tbr"]
+    for group, level in (("vehicle", 1.5), ("treated", 2.5)):
+        for a in range(3):
+            for t in (1.0, 24.0, 48.0):
+                tbr = level + 0.1 * a - 0.005 * t
+                lines.append(f"{group}-{a},{group},{t},tumour,dot A,{100 * tbr:.3f},2.0,{tbr:.4f}")
+    return "\n".join(lines) + "\n"
+
+
+def test_study_view_shows_animals_over_time_and_the_comparisons():
+    measurements_csv = _measurements_csv
+    at = _view(_app(), "study")
+    assert any("measurements.csv" in i.value for i in at.info)
+    at.file_uploader(key="up_study_measurements").set_value(("measurements.csv", measurements_csv().encode(),
+                                                            "text/csv"))
+    groups = ("time_h,roi,component,quantity,group_a,group_b,n_a,n_b,difference,ci_low,ci_high,p_welch,p_rank,"
+              "p_adjusted\n24,tumour,dot A,tbr,treated,vehicle,3,3,0.9,0.31,1.49,0.0046,0.1,0.0138\n"
+              "24,tumour,dot A,mean,treated,vehicle,3,3,90,31,149,0.0046,0.1,0.0138\n")
+    at.file_uploader(key="up_study_groups").set_value(("groups.csv", groups.encode(), "text/csv")).run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    assert any("6 animals" in m.value for m in at.markdown)
+    assert _image_count(at) >= 1
+    table = _table(at, -1)
+    assert len(table) == 1 and table.iloc[0]["p (Welch)"] == "0.0046"  # a small p value keeps its figures
+    at.radio(key="w_study_quantity").set_value("mean").run()
+    _clean(at)
+    assert _table(at, -1).iloc[0]["difference (a − b)"] == "90"
+
+
+def test_study_view_bad_table_is_one_error_line():
+    at = _view(_app(), "study")
+    at.file_uploader(key="up_study_measurements").set_value(("m.csv", b"animal,group\n1,a\n", "text/csv")).run()
+    _clean(at)
+    assert any("m.csv: has no column 'time_h'" in e for e in _errors(at)), _errors(at)

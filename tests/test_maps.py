@@ -218,3 +218,9 @@ def test_filter_labels_sit_above_the_emission_curves():
     assert all(t.get_position()[1] > 1.0 for t in labels)  # above every peak (peaks are 1)
     boxes = [t.get_window_extent(renderer) for t in labels]
     assert not any(boxes[i].overlaps(boxes[j]) for i in range(3) for j in range(i + 1, 3))
+
+
+def test_a_drag_past_the_image_edge_stops_at_the_edge():
+    box = {"box": [{"x": [120.0, 140.0], "y": [-5.0, 10.0]}], "lasso": []}
+    shape = shape_from_selection(box, "corner", image_size=(128, 96))
+    assert shape.x == (120.0, 127.5) and shape.y == (-0.5, 10.0)

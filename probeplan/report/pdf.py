@@ -115,7 +115,7 @@ def _table_flowables(table, styles, width: float) -> list:
         for j, c in enumerate(use):
             cells = sorted(len(t[j]) for t in texts) or [0]
             longest_word = max((len(w) for w in column_label(c).split()), default=4)
-            weights.append(min(45.0, max(6.0, longest_word * 1.4, cells[(len(cells) * 3) // 4])))
+            weights.append(min(45.0, max(8.0, longest_word * 1.5, cells[(len(cells) * 3) // 4])))
         total_w = sum(weights)
         fails = []
         for r, row in enumerate(table.rows, start=1):

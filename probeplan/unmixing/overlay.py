@@ -285,7 +285,8 @@ def composite_figure(abundances, names: Sequence[str], *, limits: Sequence[float
 
 def write_overlay_png(path: str | os.PathLike, abundances, component_names: Sequence[str], *,
                       title: str | None = None, pixel_size_um: tuple[float, float] | None = None,
-                      percentile: float = DEFAULT_PERCENTILE, unit: str = "counts", rois=None, scale: float = 1.0):
+                      percentile: float = DEFAULT_PERCENTILE, unit: str | Sequence[str] = "counts", rois=None,
+                      scale: float = 1.0):
     """Write the composite beside the small multiples as one PNG (atomic); returns the path.
 
     ``scale`` is the downsampling factor of ``abundances`` relative to the image (for the

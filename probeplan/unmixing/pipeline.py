@@ -611,7 +611,8 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
                gain_e_per_count: float = 1.0, read_noise_e: float = 0.0, variance_floor_counts: float = 1.0,
                rois: Sequence | None = None, labels_path=None, roi_background: str = "background",
                memory_limit_mb: float = DEFAULT_MEMORY_MB, scheduler: str | None = None, engine: str = "auto",
-               extra_inputs: Sequence = (), progress=None) -> FileResult:
+               extra_inputs: Sequence = (), progress=None,
+               abundance_unit: str | Sequence[str] = "counts") -> FileResult:
     """Unmix a TIFF/OME-TIFF stack file by blocks of rows and write all outputs atomically.
 
     Writes the abundance OME-TIFF (float32, component names, pixel size carried over) and,
@@ -638,6 +639,10 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
         A label TIFF (Y, X); each non-zero label is an ROI.
     roi_background : str
         Name of the background ROI for the target-to-background ratio.
+    abundance_unit : str or sequence of str
+        The abundances' unit (one, or one per component) for the overlay's colour bars:
+        ``"counts"`` for references normalised to unit sum, ``"µM"`` for references in
+        counts per µM (a calibration).
     memory_limit_mb : float
         Working-memory bound for the blocks.
     scheduler : str, optional
@@ -781,7 +786,7 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
             w.commit()
         write_json_atomic(paths["qc"], qc_summary)
         write_overlay_png(paths["overlay"], canvas, names, title=info.path.name, pixel_size_um=info.pixel_size_um,
-                          rois=drawn, scale=factor)
+                          rois=drawn, scale=factor, unit=abundance_unit)
         roi_rows = None
         if roi_acc is not None:
             roi_rows = roi_acc.rows(roi_background)

@@ -223,30 +223,38 @@ def read_roi_file(path: str | os.PathLike, *, image_size: tuple[int, int] | None
     return parse_roi_text(text, source=str(p), image_size=image_size)
 
 
-def shape_from_selection(selection: dict, name: str, *, shape: str = "rectangle", scale: float = 1.0) -> RoiShape:
+def shape_from_selection(selection: dict, name: str, *, shape: str = "rectangle", scale: float = 1.0,
+                         image_size: tuple[int, int] | None = None) -> RoiShape:
     """A region from an interactive chart's selection (a box or a lasso), in image pixels.
 
     ``selection`` holds ``"box"`` and ``"lasso"`` lists whose entries carry ``"x"`` and
     ``"y"`` lists (two box corners, or the lasso's vertices), as Streamlit's plotly chart
     selection gives them; the last drawn entry is used.  A box becomes a rectangle or an
     ellipse (``shape``); a lasso becomes a polygon.  ``scale`` multiplies the chart's
-    coordinates (a chart of a downsampled map).
+    coordinates (a chart of a downsampled map).  With ``image_size`` (width, height) the
+    points are clipped to the image (a drag that runs past its edge stops at the edge).
 
     Examples
     --------
     >>> shape_from_selection({"box": [{"x": [2.2, 9.8], "y": [7, 3]}], "lasso": []}, "t", shape="ellipse")
     RoiShape(name='t', shape='ellipse', x=(2.2, 9.8), y=(3.0, 7.0))
     """
+    def clip(values, n_px):
+        vals = [float(v) * scale for v in values]
+        if n_px is None:
+            return tuple(vals)
+        return tuple(min(max(v, -0.5), n_px - 0.5) for v in vals)
+
+    nx, ny = image_size if image_size is not None else (None, None)
     lasso = [s for s in (selection or {}).get("lasso") or [] if s.get("x")]
     box = [s for s in (selection or {}).get("box") or [] if s.get("x")]
     if lasso:
         last = lasso[-1]
-        return RoiShape(name, "polygon", tuple(float(v) * scale for v in last["x"]),
-                        tuple(float(v) * scale for v in last["y"]))
+        return RoiShape(name, "polygon", clip(last["x"], nx), clip(last["y"], ny))
     if box:
         last = box[-1]
-        xs = sorted(float(v) * scale for v in last["x"])
-        ys = sorted(float(v) * scale for v in last["y"])
+        xs = sorted(clip(last["x"], nx))
+        ys = sorted(clip(last["y"], ny))
         if shape not in ("rectangle", "ellipse"):
             raise input_error("selection", f"a box cannot make a {shape}", "draw a polygon with the lasso")
         return RoiShape(name, shape, (xs[0], xs[-1]), (ys[0], ys[-1]))
