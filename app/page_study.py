@@ -2,7 +2,7 @@
 
 The view reads the study's result tables (``measurements.csv``, and when present
 ``groups.csv`` and ``kinetics.csv``) with :mod:`probeplan.study.results` and draws them
-with :func:`probeplan.report.figures.time_course_figure`; the statistics themselves are
+with :func:`probeplan.report.study.group_time_course_figure`; the statistics themselves are
 the study run's, not the page's.
 """
 
@@ -29,9 +29,9 @@ def _table(kind: str, data: bytes, name: str):
 @st.cache_data(show_spinner=False, max_entries=32)
 def _time_course_png(data: bytes, name: str, roi: str, component: str, quantity: str) -> bytes:
     from probeplan.report.document import figure_png_bytes
-    from probeplan.report.figures import time_course_figure
+    from probeplan.report.study import group_time_course_figure
 
-    return figure_png_bytes(time_course_figure(_table("measurements", data, name), roi=roi, component=component,
+    return figure_png_bytes(group_time_course_figure(_table("measurements", data, name), roi=roi, component=component,
                                                quantity=quantity), dpi=FIGURE_DPI)
 
 

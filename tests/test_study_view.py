@@ -43,10 +43,10 @@ def test_measurements_are_read_and_checked(tmp_path):
 def test_time_course_figure_shows_each_animal_and_the_group_mean_and_se():
     from scipy.stats import sem
 
-    from probeplan.report.figures import time_course_figure
+    from probeplan.report.study import group_time_course_figure
 
     df = read_measurements(measurements_csv().encode())
-    fig = time_course_figure(df, roi="tumour", component="dot A", quantity="tbr")
+    fig = group_time_course_figure(df, roi="tumour", component="dot A", quantity="tbr")
     ax = fig.axes[0]
     assert ax.get_yscale() == "linear" and ax.get_xlabel() == "time after injection (h)"
     animals = [ln for ln in ax.lines if ln.get_linewidth() < 1.0 and ln.get_marker() == "o"]

@@ -16,7 +16,7 @@ from collections.abc import Sequence
 import numpy as np
 
 __all__ = ["PALETTE", "colour", "depth_figure", "spectra_figure", "crosstalk_figure", "channels_figure", "maps_figure",
-           "escaped_spectra_figure", "composite_figure", "time_course_figure",
+           "escaped_spectra_figure", "composite_figure",
            "depth_and_spectra_figure", "new_figure"]
 
 #: Line colours on white, Okabe–Ito (blue, orange, bluish green, reddish purple, vermilion, sky blue, black);
@@ -219,38 +219,3 @@ def depth_and_spectra_figure(profiles: Sequence, sbr_threshold: float | None = 2
     _draw_spectra(np.atleast_1d(bottom.subplots(1, n)), profiles, (0.5, 2.0, 5.0, 8.0))
     return fig
 
-
-def time_course_figure(measurements, *, roi: str, component: str, quantity: str = "tbr", unit: str = "counts"):
-    """Per-animal points over time (thin lines join each animal's points) with each group's mean ± SE.
-
-    ``measurements`` is the study's measurements table (a DataFrame with animal, group,
-    time_h, roi, component and the ``quantity`` column: ``"mean"`` or ``"tbr"``).  Linear
-    axes; group colours from :data:`PALETTE`; the mean ± standard error of the animals at
-    each time is drawn slightly to the right of the points so that neither hides the other.
-    """
-    import pandas as pd
-
-    df = measurements[(measurements["roi"] == roi) & (measurements["component"] == component)]
-    df = df[pd.notna(df[quantity])]
-    fig, axes = new_figure(1, 1, width=8.0, height=4.2)
-    ax = axes[0][0]
-    times = np.sort(df["time_h"].unique())
-    span = float(times[-1] - times[0]) if len(times) > 1 else 1.0
-    for i, (group, g) in enumerate(df.groupby("group", sort=True)):
-        c = colour(i)
-        for _animal, a in g.groupby("animal"):
-            a = a.sort_values("time_h")
-            ax.plot(a["time_h"], a[quantity], color=c, lw=0.7, alpha=0.45, marker="o", ms=3.5)
-        stats = g.groupby("time_h")[quantity].agg(["mean", "std", "count"])
-        se = stats["std"] / np.sqrt(stats["count"])
-        ax.errorbar(stats.index + 0.012 * span, stats["mean"], yerr=se.fillna(0.0), color=c, lw=2.0, marker="s",
-                    ms=6, capsize=4, label=f"{group} (n = {g['animal'].nunique()}): mean ± SE")
-    label = {"tbr": "target-to-background ratio", "mean": f"mean abundance ({unit})"}.get(quantity, quantity)
-    ax.set_xlabel("time after injection (h)")
-    ax.set_ylabel(label)
-    ax.set_title(f"{component} in {roi}", fontsize=10)
-    if quantity == "tbr":
-        ax.axhline(1.0, color="0.5", lw=0.8, ls=":")
-    ax.grid(alpha=0.3)
-    ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
-    return fig

@@ -1,7 +1,8 @@
 """A study's result tables read back for display: measurements, group comparisons and kinetics.
 
-The files and their columns are the study interchange formats (``DIR/measurements.csv``,
-``DIR/groups.csv``, ``DIR/kinetics.csv``); each reader checks that the required columns
+The files and their columns are the study interchange formats that ``probeplan study`` writes
+(``DIR/measurements.csv``, ``DIR/groups.csv``, ``DIR/kinetics.csv``, with ``#`` note lines first);
+each reader checks that the required columns
 are there and numeric where they must be, and refuses the file otherwise (one
 :class:`~probeplan.errors.InputError` line naming the file, the column and the fix).
 Extra columns are kept.  Tables are pandas DataFrames.
@@ -15,14 +16,14 @@ import os
 
 from probeplan.errors import input_error
 
-__all__ = ["MEASUREMENT_COLUMNS", "GROUP_COLUMNS", "KINETICS_COLUMNS", "read_measurements", "read_groups",
-           "read_kinetics"]
+__all__ = ["REQUIRED_MEASUREMENT_COLUMNS", "REQUIRED_GROUP_COLUMNS", "REQUIRED_KINETICS_COLUMNS",
+           "read_measurements", "read_groups", "read_kinetics"]
 
-#: Required columns of each table (more may follow).
-MEASUREMENT_COLUMNS = ("animal", "group", "time_h", "roi", "component", "mean", "se", "tbr")
-GROUP_COLUMNS = ("time_h", "roi", "component", "quantity", "group_a", "group_b", "n_a", "n_b", "difference",
+#: Required columns of each table (more may follow; the study run writes more, see probeplan.study.runs).
+REQUIRED_MEASUREMENT_COLUMNS = ("animal", "group", "time_h", "roi", "component", "mean", "se", "tbr")
+REQUIRED_GROUP_COLUMNS = ("time_h", "roi", "component", "quantity", "group_a", "group_b", "n_a", "n_b", "difference",
                  "ci_low", "ci_high", "p_welch", "p_rank", "p_adjusted")
-KINETICS_COLUMNS = ("animal", "roi", "component", "model", "half_life_h", "t_peak_h")
+REQUIRED_KINETICS_COLUMNS = ("animal", "roi", "component", "model", "half_life_h", "t_peak_h")
 
 _NUMERIC = {
     "measurements": ("time_h", "mean", "se", "tbr"),
@@ -68,16 +69,16 @@ def _read(source, kind: str, required: tuple[str, ...], name: str | None):
 
 def read_measurements(source, *, name: str | None = None):
     """``measurements.csv``: one row per animal, time, ROI and component (path, bytes or file object)."""
-    return _read(source, "measurements", MEASUREMENT_COLUMNS, name)
+    return _read(source, "measurements", REQUIRED_MEASUREMENT_COLUMNS, name)
 
 
 def read_groups(source, *, name: str | None = None):
     """``groups.csv``: group comparisons per time, ROI, component and quantity."""
-    return _read(source, "groups", GROUP_COLUMNS, name)
+    return _read(source, "groups", REQUIRED_GROUP_COLUMNS, name)
 
 
 def read_kinetics(source, *, name: str | None = None):
     """``kinetics.csv``: kinetics fits per animal, ROI and component."""
-    return _read(source, "kinetics", KINETICS_COLUMNS, name)
+    return _read(source, "kinetics", REQUIRED_KINETICS_COLUMNS, name)
 
 
