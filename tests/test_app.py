@@ -567,6 +567,7 @@ def _measurements_csv() -> str:
 def test_study_view_shows_animals_over_time_and_the_comparisons():
     measurements_csv = _measurements_csv
     at = _view(_app(), "study")
+    at.radio(key="w_study_source").set_value("upload").run()
     assert any("measurements.csv" in i.value for i in at.info)
     at.file_uploader(key="up_study_measurements").set_value(("measurements.csv", measurements_csv().encode(),
                                                             "text/csv"))
@@ -587,6 +588,49 @@ def test_study_view_shows_animals_over_time_and_the_comparisons():
 
 def test_study_view_bad_table_is_one_error_line():
     at = _view(_app(), "study")
+    at.radio(key="w_study_source").set_value("upload").run()
     at.file_uploader(key="up_study_measurements").set_value(("m.csv", b"animal,group\n1,a\n", "text/csv")).run()
     _clean(at)
     assert any("m.csv: has no column 'time_h'" in e for e in _errors(at)), _errors(at)
+
+
+def test_study_view_runs_a_study_table_with_a_roi_file(tmp_path):
+    """A small study of our own: dot A is 3x its background in the tumour of group 'high', 1.5x in 'low'."""
+    import json
+
+    from probeplan.io.stacks import write_stack
+
+    refs = np.array([[0.6, 0.1], [0.3, 0.3], [0.1, 0.6]])
+    channels = ["ch650", "ch700", "ch750"]
+    (tmp_path / "refs.csv").write_text("channel,dotA,dotB\n" + "".join(
+        f"{c},{refs[i, 0]},{refs[i, 1]}\n" for i, c in enumerate(channels)))
+    rows = ["animal,group,time_h,file"]
+    for group, level in (("low", 1.5), ("high", 3.0)):
+        for a in range(2):
+            for t in (1.0, 24.0):
+                ab = np.full((2, 20, 20), 100.0)
+                ab[0, 2:8, 2:8] = 100.0 * level
+                name = f"{group}{a}_{t:g}.tif"
+                write_stack(tmp_path / name, np.einsum("ck,kyx->cyx", refs, ab), channel_names=channels)
+                rows.append(f"{group}{a},{group},{t:g},{name}")
+    (tmp_path / "study.csv").write_text("\n".join(rows) + "\n")
+    (tmp_path / "rois.json").write_text(json.dumps({"kind": "probeplan ROIs", "version": 1, "rois": [
+        {"name": "tumour", "shape": "rectangle", "x": [2, 7], "y": [2, 7]},
+        {"name": "background", "shape": "rectangle", "x": [12, 19], "y": [12, 19]}]}))
+    at = _view(_app(), "study")
+    at.text_input(key="w_study_csv").set_value(str(tmp_path / "study.csv"))
+    at.text_input(key="w_study_refs").set_value(str(tmp_path / "refs.csv"))
+    at.text_area(key="w_study_rois").set_value(str(tmp_path / "rois.json"))
+    at.button(key="btn_study_run").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    assert any("4 animals" in m.value for m in at.markdown)
+    assert at.selectbox(key="w_study_roi").value == "tumour"
+    assert _image_count(at) >= 1
+    groups = _table(at, 0)
+    # noise-free study: the difference in tumour TBR between the groups is 3.0 - 1.5 at both times
+    assert sorted(abs(float(v)) for v in groups["difference (a − b)"]) == pytest.approx([1.5, 1.5], rel=1e-6)
+    at.text_area(key="w_study_rois").set_value("tumour:0,0,90,90")
+    at.button(key="btn_study_run").click().run()
+    _clean(at)
+    assert any("tumour:0,0,90,90" in e or "extends past" in e for e in _errors(at)), _errors(at)

@@ -224,3 +224,18 @@ def test_a_drag_past_the_image_edge_stops_at_the_edge():
     box = {"box": [{"x": [120.0, 140.0], "y": [-5.0, 10.0]}], "lasso": []}
     shape = shape_from_selection(box, "corner", image_size=(128, 96))
     assert shape.x == (120.0, 127.5) and shape.y == (-0.5, 10.0)
+
+
+def test_a_drawn_rectangle_has_the_text_form_with_the_same_pixels():
+    from probeplan.unmixing.roi import parse_rectangle
+
+    from probeplan.unmixing.shapes import rectangle_spec
+
+    shape = RoiShape("t", "rectangle", (2.4, 9.6), (3.0, 7.0))
+    spec = rectangle_spec(shape)
+    x0, y0, x1, y1 = parse_rectangle(spec).rect
+    m = np.zeros((12, 12), bool)
+    m[y0:y1, x0:x1] = True
+    assert (m == shape.mask((12, 12))).all()
+    with pytest.raises(InputError, match="draw it as a rectangle"):
+        rectangle_spec(RoiShape("e", "ellipse", (1, 5), (1, 5)))

@@ -36,7 +36,7 @@ from probeplan.io.atomic import write_text_atomic
 from probeplan.unmixing.roi import Roi
 
 __all__ = ["SHAPES", "RoiShape", "parse_roi_text", "read_roi_file", "roi_file_text", "write_roi_file",
-           "shapes_to_rois", "rectangle_from_spec", "shape_from_selection", "suggest_target_roi"]
+           "shapes_to_rois", "rectangle_from_spec", "rectangle_spec", "shape_from_selection", "suggest_target_roi"]
 
 #: The shapes a region can have.
 SHAPES = ("rectangle", "ellipse", "polygon")
@@ -129,6 +129,23 @@ def rectangle_from_spec(roi: Roi) -> RoiShape:
         raise input_error(f"ROI {roi.name!r}", "is not a rectangle", "give 'name:x0,y0,x1,y1'")
     x0, y0, x1, y1 = roi.rect
     return RoiShape(roi.name, "rectangle", (x0, x1 - 1), (y0, y1 - 1))
+
+
+def rectangle_spec(shape: RoiShape) -> str:
+    """A drawn rectangle as the text form ``name:x0,y0,x1,y1`` (pixels whose centre is inside; x1, y1 excluded).
+
+    Only rectangles have a text form; other shapes are refused with the fix.
+
+    Examples
+    --------
+    >>> rectangle_spec(RoiShape("t", "rectangle", (2.4, 9.6), (3, 7)))
+    't:3,3,10,8'
+    """
+    if shape.shape != "rectangle":
+        raise input_error(f"ROI {shape.name!r}", f"a {shape.shape} has no 'name:x0,y0,x1,y1' form",
+                          "draw it as a rectangle for this use")
+    x0, y0, x1, y1 = shape.box
+    return f"{shape.name}:{math.ceil(x0)},{math.ceil(y0)},{math.floor(x1) + 1},{math.floor(y1) + 1}"
 
 
 def shapes_to_rois(shapes: Sequence[RoiShape], shape_yx: tuple[int, int]) -> list[Roi]:
