@@ -65,6 +65,7 @@ def _demo_shapes() -> list:
         return []
 
 
+@st.cache_data(show_spinner=False, max_entries=24)
 def maps_png(maps: np.ndarray, titles: list[str], unit: str, *, cmap: str = "magma", pixel_size_um=None,
              rois=None, limits=None) -> bytes:
     """PNG of :func:`probeplan.report.figures.maps_figure` (small multiples, colour bar each, scale bar, ROIs)."""
@@ -75,6 +76,7 @@ def maps_png(maps: np.ndarray, titles: list[str], unit: str, *, cmap: str = "mag
                                         limits=limits), dpi=FIGURE_DPI)
 
 
+@st.cache_data(show_spinner=False, max_entries=24)
 def composite_png(abundances: np.ndarray, names: list[str], limits, *, pixel_size_um=None, rois=None) -> bytes:
     """PNG of the colour-blind-safe composite (:func:`probeplan.report.figures.composite_figure`)."""
     from probeplan.report.document import figure_png_bytes
@@ -332,7 +334,7 @@ def _maps_section(result: dict) -> None:
     px = result.get("pixel_size_um")
     st.markdown("**Abundance maps**: one panel per component, each with its own colour scale"
                 + ("" if px else "; the file gives no pixel size, so the axes are in pixels"))
-    st.image(maps_png(result["abundances"], names, f"abundance ({_UNIT})", pixel_size_um=px, rois=regions),
+    st.image(maps_png(result["abundances"], names, f"abundance ({_UNIT})", pixel_size_um=px, rois=tuple(regions)),
              caption="Colour scale from 0 to each map's 99.5th percentile; dashed outlines: the regions below.",
              width="stretch")
     tabs = st.tabs(["composite", "standard error", "residual"])
@@ -345,7 +347,7 @@ def _maps_section(result: dict) -> None:
             pct = cols[k % len(cols)].slider(f"{n}: full brightness at (% of its 99.5th percentile)", 5, 400, 100,
                                              step=5, key=f"w_contrast_{k}")
             limits.append(hi * pct / 100.0)
-        st.image(composite_png(result["abundances"], names, limits, pixel_size_um=px, rois=regions),
+        st.image(composite_png(result["abundances"], names, tuple(limits), pixel_size_um=px, rois=tuple(regions)),
                  caption="Each component in its own colour (Okabe–Ito colours, distinct for colour-blind readers); "
                          "where components overlap the brighter one shows.", width="content")
     with tabs[1]:
