@@ -140,3 +140,48 @@ def plan_view() -> None:
         from probeplan.report.protocol import plain_assumptions
 
         show_notes(plain_assumptions(ev.assumptions), title="How the plan was read, and the assumptions")
+    _phantom_section(ev)
+
+
+def _phantom_section(ev) -> None:
+    """A phantom that mimics the plan's tissue, to test the plan before any animal is imaged."""
+    from probeplan.report.document import figure_png_bytes
+    from probeplan.report.figures import phantom_sbr_figure
+    from probeplan.study.phantom import PHANTOM_CAUTION, plan_phantom
+
+    ss = st.session_state
+    st.subheader("A phantom to test the plan first")
+    st.caption("A liquid phantom (Intralipid and India ink in water) with the plan tissue's absorption and "
+               "scattering at the excitation and emission wavelengths, its preparation, and the SBR against depth it "
+               "should give beside the tissue's.")
+    if st.button("Make the phantom recipe", key="btn_phantom"):
+        ss.pop("plan_phantom", None)
+        with guard("phantom"):
+            from app.page_common import captured_warnings
+
+            notes: list[str] = []
+            with captured_warnings(notes):
+                ph = plan_phantom(ev.plan)
+            png = figure_png_bytes(phantom_sbr_figure(ph.sbr_curve))
+            ss["plan_phantom"] = (ph, png, notes)
+    stored = ss.get("plan_phantom")
+    if stored is None:
+        return
+    ph, png, notes = stored
+    with guard("phantom results"):
+        st.warning(PHANTOM_CAUTION, icon="⚠️")
+        st.markdown("**Preparation**")
+        st.dataframe([{"step": r["step"], "ingredient": r["ingredient"], "volume (mL)": fmt(r["volume_ml"]),
+                       "mass (g)": fmt(r["mass_g"]), "how": r["how"]} for r in ph.preparation],
+                     hide_index=True, width="stretch")
+        st.markdown("**Optical properties: target and phantom**")
+        cols = list(ph.properties[0]) if ph.properties else []
+        from probeplan.report.document import column_label
+
+        st.dataframe([{column_label(c): (fmt(r[c]) if isinstance(r[c], float) else r[c]) for c in cols}
+                      for r in ph.properties], hide_index=True, width="stretch")
+        st.image(png, caption="SBR against the inclusion's depth: solid, the plan's tissue; dashed, the phantom.",
+                 width="stretch")
+        from probeplan.report.protocol import plain_assumptions
+
+        show_notes(plain_assumptions([*ph.notes, *notes]), title="Phantom notes")

@@ -171,9 +171,15 @@ def _draw_chart(result: dict, component: int) -> tuple[dict | None, int]:
     ny, nx = small.shape
     finite = small[np.isfinite(small)]
     top = float(np.percentile(finite, 99.5)) if finite.size else 1.0
-    fig = go.Figure(go.Heatmap(z=small, colorscale="Magma", zmin=min(0.0, float(finite.min()) if finite.size else 0.0),
-                               zmax=top if top > 0 else None, colorbar={"title": {"text": _UNIT}},
-                               hovertemplate="x %{x}, y %{y}: %{z:.4g}<extra></extra>"))
+    # The map as an image coloured by matplotlib's magma over 0..99.5th percentile, as in the report's figures
+    # (the colour bar is on the maps above); plotly draws it pixel for pixel.
+    from matplotlib import colormaps
+
+    lo = min(0.0, float(finite.min())) if finite.size else 0.0
+    hi = top if top > lo else lo + 1.0
+    norm = np.clip((np.nan_to_num(small, nan=lo) - lo) / (hi - lo), 0.0, 1.0)
+    rgb = (colormaps["magma"](norm)[..., :3] * 255).astype(np.uint8)
+    fig = go.Figure(go.Image(z=rgb, hoverinfo="skip"))
     # An invisible point on every (other) pixel: plotly's box and lasso select act on points, not on heatmaps.
     step = max(1, round(max(nx, ny) / 100))
     gy, gx = np.mgrid[0:ny:step, 0:nx:step]
@@ -194,7 +200,7 @@ def _draw_chart(result: dict, component: int) -> tuple[dict | None, int]:
     fig.update_yaxes(autorange="reversed", scaleanchor="x", constrain="domain", title="y (pixel)" if factor == 1
                      else f"y (pixel / {factor})")
     fig.update_xaxes(constrain="domain", title="x (pixel)" if factor == 1 else f"x (pixel / {factor})")
-    fig.update_layout(dragmode="select", height=520, margin={"l": 10, "r": 10, "t": 30, "b": 10},
+    fig.update_layout(dragmode="select", height=540, margin={"l": 60, "r": 10, "t": 40, "b": 50},
                       title={"text": f"{result['names'][component]}: drag a box, or pick the lasso in the toolbar",
                              "font": {"size": 13}})
     event = st.plotly_chart(fig, key="roi_chart", on_select="rerun", selection_mode=("box", "lasso"), theme=None,
@@ -358,6 +364,43 @@ def _maps_section(result: dict) -> None:
                           pixel_size_um=px), width="content")
 
 
+def _calibrate(result: dict, path: Path, depth_mm: float) -> dict:
+    """Concentrations (µM) of the calibrated components (probeplan.study.calibration), with the calibration's figure."""
+    from probeplan.report.document import figure_png_bytes
+    from probeplan.study.calibration import apply_calibration, plot_calibration, read_calibration_csv
+
+    cal = read_calibration_csv(path)
+    with captured_warnings(result["notes"]):
+        out = apply_calibration(result["abundances"], result["stderr"], result["names"], cal, depth_mm=depth_mm)
+    out["table"] = cal.table
+    out["figure"] = figure_png_bytes(plot_calibration(cal), dpi=FIGURE_DPI)
+    return out
+
+
+def _calibrated_section(result: dict) -> None:
+    cal = result.get("calibrated")
+    if not cal:
+        return
+    from probeplan.study.calibration import FLAGS
+
+    st.markdown("**Concentration maps (µM)** from the phantom calibration")
+    st.image(maps_png(cal["concentration_uM"], [f"{n}" for n in cal["names"]], "concentration (µM)",
+                      pixel_size_um=result.get("pixel_size_um"), rois=tuple(_regions())), width="stretch")
+    flags = cal["flags"]
+    rows = []
+    for k, n in enumerate(cal["names"]):
+        total = flags[k].size
+        share = {f"pixels {FLAGS[code].replace('_', ' ')}": f"{100 * float((flags[k] == code).sum()) / total:.1f} %"
+                 for code in sorted(FLAGS)}
+        rows.append({"component": n, **share})
+    st.dataframe(rows, hide_index=True, width="stretch")
+    with st.expander("The calibration lines"):
+        st.image(cal["figure"], width="stretch")
+        t = cal["table"]
+        st.dataframe([{c: (fmt(v) if isinstance(v, float) else v) for c, v in r.items()} for r in t.to_dict("records")],
+                     hide_index=True, width="stretch")
+
+
 def _downloads(result: dict) -> None:
     tif, err = Path(result["outputs"]["abundance"]), Path(result["outputs"]["stderr"])
     c = st.columns(3)
@@ -399,6 +442,12 @@ def unmix_view() -> None:
     c[2].number_input("camera read noise (e⁻ rms)", min_value=0.0, max_value=1e4, step=0.5, persist_state="session",
                       key="w_sep_read_noise")
     c[3].checkbox("fit a constant offset per channel", persist_state="session", key="w_sep_offset")
+    c = st.columns([2, 1])
+    up_cal = c[0].file_uploader("calibration (calibration.csv from 'probeplan calibrate', optional: maps in µM)",
+                                type=["csv"], key="up_calibration")
+    ss.setdefault("w_sep_depth", 0.0)
+    c[1].number_input("target depth (mm), for the calibration's depth check", min_value=0.0, max_value=50.0,
+                      step=0.5, persist_state="session", key="w_sep_depth")
     if st.button("Unmix", type="primary", key="btn_unmix"):
         ss.pop("unmix_result", None)
         ss.pop("unmix_roi_rows", None)
@@ -416,6 +465,10 @@ def unmix_view() -> None:
                 refs_path = save_upload(up_refs.getvalue(), up_refs.name or "references.csv", sub="uploads")
             result = _unmix(stack_path, refs_path, dark, str(ss["w_sep_method"]), float(ss["w_sep_gain"]),
                             float(ss["w_sep_read_noise"]), bool(ss["w_sep_offset"]))
+            if up_cal is not None:
+                result["calibrated"] = _calibrate(result, save_upload(up_cal.getvalue(), up_cal.name or
+                                                                      "calibration.csv", sub="uploads"),
+                                                  float(ss["w_sep_depth"]))
             ss["unmix_result"] = result
             ss["unmix_regions"] = _demo_shapes() if use_demo else []
             ss.pop("unmix_roi_error", None)
@@ -431,6 +484,7 @@ def unmix_view() -> None:
         c[2].metric("saturated or missing pixels", f"{qc['n_saturated'] + qc['n_invalid']:,}")
         c[3].metric("residual RMS (counts)", fmt(qc["residual_rms"]["rms"]))
         _maps_section(result)
+        _calibrated_section(result)
         _downloads(result)
     with guard("regions"):
         _regions_section(result)

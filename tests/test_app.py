@@ -634,3 +634,38 @@ def test_study_view_runs_a_study_table_with_a_roi_file(tmp_path):
     at.button(key="btn_study_run").click().run()
     _clean(at)
     assert any("tumour:0,0,90,90" in e or "extends past" in e for e in _errors(at)), _errors(at)
+
+
+def test_plan_view_offers_a_phantom_for_the_plan():
+    at = _view(_app(), "plan")
+    at.button(key="btn_check").click().run()
+    at.button(key="btn_phantom").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    assert any("phantom replaces no review" in w.value for w in at.warning)
+    prep = _table(at, -2)
+    assert list(prep["step"]) == [1, 2, 3] and "water" in prep.iloc[2]["ingredient"]
+    # the three volumes make up the 100 mL batch
+    assert sum(float(v) for v in prep["volume (mL)"]) == pytest.approx(100.0, rel=1e-3)
+
+
+def test_unmix_with_a_calibration_gives_maps_in_micromolar(tmp_path):
+    stack, csv, _, _ = _test_stack(tmp_path)
+    # a calibration line of our own for dotA: 100 counts per µM above 50 counts; range 0.1-20 µM, LOD 0.05 µM
+    cal = ("component,slope_counts_per_uM,intercept_counts,lod_uM,r2,range_low_uM,range_high_uM,phantom_depth_mm\n"
+           "dotA,100,50,0.05,0.999,0.1,20,0\n")
+    at = _view(_app(), "unmix")
+    at.file_uploader(key="up_stack").set_value(("stack.tif", stack, "image/tiff"))
+    at.file_uploader(key="up_refs").set_value(("refs.csv", csv, "text/csv"))
+    at.file_uploader(key="up_calibration").set_value(("calibration.csv", cal.encode(), "text/csv"))
+    at.button(key="btn_unmix").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    assert any("Concentration maps (µM)" in m.value for m in at.markdown)
+    flags = next(df.value for df in at.dataframe if "pixels in range" in df.value.columns)
+    # inside the 10 x 10 square (1000 + 50 counts) dotA is (1050 - 50) / 100 = 10 µM: in range; outside it is
+    # 0 µM: below the LOD.  100 of the 48 x 40 pixels.
+    row = flags.iloc[0]
+    assert row["component"] == "dotA"
+    assert row["pixels in range"] == f"{100 * 100 / (48 * 40):.1f} %"
+    assert row["pixels below lod"] == f"{100 * (48 * 40 - 100) / (48 * 40):.1f} %"

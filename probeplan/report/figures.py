@@ -16,7 +16,7 @@ from collections.abc import Sequence
 import numpy as np
 
 __all__ = ["PALETTE", "colour", "depth_figure", "spectra_figure", "crosstalk_figure", "channels_figure", "maps_figure",
-           "escaped_spectra_figure", "composite_figure",
+           "escaped_spectra_figure", "composite_figure", "phantom_sbr_figure",
            "depth_and_spectra_figure", "new_figure"]
 
 #: Line colours on white, Okabe–Ito (blue, orange, bluish green, reddish purple, vermilion, sky blue, black);
@@ -219,3 +219,30 @@ def depth_and_spectra_figure(profiles: Sequence, sbr_threshold: float | None = 2
     _draw_spectra(np.atleast_1d(bottom.subplots(1, n)), profiles, (0.5, 2.0, 5.0, 8.0))
     return fig
 
+
+
+def phantom_sbr_figure(rows: Sequence[dict], *, sbr_threshold: float | None = 2.0):
+    """SBR against depth in the phantom (dashed) and in the plan's tissue (solid), one colour per probe.
+
+    ``rows`` are :attr:`probeplan.study.phantom.PlanPhantom.sbr_curve` rows (probe, depth_mm,
+    sbr_phantom, sbr_tissue).  Linear axes: the comparison is read where the curves cross
+    the threshold.
+    """
+    fig, axes = new_figure(1, 1, width=8.0, height=3.8)
+    ax = axes[0][0]
+    probes = list(dict.fromkeys(r["probe"] for r in rows))
+    for i, name in enumerate(probes):
+        sub = [r for r in rows if r["probe"] == name]
+        d = [r["depth_mm"] for r in sub]
+        ax.plot(d, [r["sbr_tissue"] for r in sub], color=colour(i), lw=2, label=f"{name}: tissue")
+        ax.plot(d, [r["sbr_phantom"] for r in sub], color=colour(i), lw=1.5, ls="--", label=f"{name}: phantom")
+    if sbr_threshold is not None:
+        ax.axhline(sbr_threshold, color="0.3", lw=1, ls=":", label=f"SBR {sbr_threshold:g}")
+    top = max((max(r["sbr_tissue"], r["sbr_phantom"]) for r in rows), default=2.0)
+    cap = 5.0 * (sbr_threshold or 2.0)
+    ax.set_ylim(1.0, min(top, cap) * 1.05 if top > 1.0 else 2.0)
+    ax.set_xlabel("inclusion depth (mm)")
+    ax.set_ylabel("SBR = (S + B) / B")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
+    return fig
