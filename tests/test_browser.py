@@ -257,6 +257,7 @@ def test_page_in_chromium(tmp_path):
 
                 # the study view: a study's measurements over time
                 page.get_by_text("Study: animals and groups over time").first.click()
+                page.get_by_text("upload a study's result tables").click()
                 page.get_by_text("measurements (CSV)").wait_for(timeout=UI_TIMEOUT_MS)
                 _upload(page, 0, study_csv)
                 page.get_by_text("6 animals").wait_for(timeout=UI_TIMEOUT_MS)
