@@ -346,7 +346,7 @@ def test_unmix_bad_uploads_show_errors(tmp_path):
 
 
 
-def test_separate_under_abuse_one_line_each_nothing_outside_the_session(tmp_path, monkeypatch):
+def test_unmix_under_abuse_one_line_each_nothing_outside_the_session(tmp_path, monkeypatch):
     """An oversized upload, a unicode / ``../`` name, a library failure of an unexpected kind: one line each,
     no exception box, and every file the page wrote is inside the session's folder."""
     import streamlit
@@ -355,7 +355,7 @@ def test_separate_under_abuse_one_line_each_nothing_outside_the_session(tmp_path
 
     _, csv, _, _ = _test_stack(tmp_path)
     big = write_stack(tmp_path / "big.tif", np.ones((3, 400, 400)), channel_names=["ch700", "ch780", "ch880"])
-    at = _view(_app(), "separate")
+    at = _view(_app(), "unmix")
     at.file_uploader(key="up_stack").set_value(("../../стек ☃ (1).tif", big.read_bytes(), "image/tiff"))
     at.file_uploader(key="up_refs").set_value(("..\\..\\refs.csv", csv, "text/csv"))
     previous = streamlit.get_option("server.maxUploadSize")
