@@ -1,9 +1,11 @@
 """probeplan's page: plan and analyse multiplexed in vivo fluorescence imaging with nanocrystal probes.
 
-Start it with ``probeplan app``.  Four views: depth (SBR, SNR and blur against
-depth), channels (crosstalk, separability, design search), separate (unmixing of
-image stacks) and plan (rule checks and report).  The page only calls library
-functions; it holds no science of its own.  For research use only.
+Start it with ``probeplan app``.  Five views in Streamlit's own navigation, in the order
+of the work: depth (SBR, SNR and blur against depth), channels (crosstalk,
+separability, design search), unmix (image stacks to abundance maps, ROIs drawn on
+the map), study (animals and groups over time) and plan (rule checks and the
+protocol report).  The page only calls library functions; it holds no science of its
+own.  For research use only.
 """
 
 from __future__ import annotations
@@ -11,9 +13,10 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-_HERE = str(Path(__file__).resolve().parent)
-if _HERE not in sys.path:
-    sys.path.insert(0, _HERE)
+# The views import ``app.<module>``: put the folder holding this package first on the path.
+_ROOT = str(Path(__file__).resolve().parents[1])
+if _ROOT not in sys.path:
+    sys.path.insert(0, _ROOT)
 
 import matplotlib  # noqa: E402
 
@@ -23,67 +26,42 @@ import streamlit as st  # noqa: E402
 
 from probeplan import RESEARCH_USE_CAUTION, __version__  # noqa: E402
 
-VIEWS = {
-    "depth": "Depth: SBR and SNR against depth",
-    "channels": "Channels: crosstalk and design",
-    "separate": "Separate: unmix an image stack",
-    "plan": "Plan: check against the rules",
-}
+#: The views in navigation order: (script beside this file, title, URL path).
+VIEWS = (
+    ("view_depth.py", "Depth: SBR and SNR against depth", "depth"),
+    ("view_channels.py", "Channels: crosstalk and design", "channels"),
+    ("view_unmix.py", "Unmix: abundance maps and regions", "unmix"),
+    ("view_study.py", "Study: animals and groups over time", "study"),
+    ("view_plan.py", "Plan: rules and the protocol report", "plan"),
+)
 
+#: Views that share the imaging set-up (sidebar and probe table), drawn by this entry script.
+SHARED_SETUP_VIEWS = ("depth", "channels")
 
-def _keep_widget_values() -> None:
-    """Keep the values of widgets that are not drawn in this run (another view is shown)."""
-    for key in list(st.session_state.keys()):
-        if isinstance(key, str) and key.startswith("w_"):
-            st.session_state[key] = st.session_state[key]
+#: Said at the foot of every view.
+FOOT_CAUTION = (RESEARCH_USE_CAUTION + " Laser light can injure skin and eyes; cadmium- and lead-containing probes are "
+                "toxic: follow the institution's animal care committee, laser safety officer and chemical safety "
+                "office.")
 
 
 def main() -> None:
     st.set_page_config(page_title="probeplan", page_icon="🔬", layout="wide")
-    from page_setup import current_setup, init_state, probe_table, setup_sidebar
-
-    _keep_widget_values()
-    init_state()
-    st.session_state.setdefault("w_view", "depth")
-
-    st.sidebar.title("probeplan")
-    st.sidebar.caption(f"Multiplexed in vivo fluorescence imaging with nanocrystal probes · version {__version__}")
-    st.sidebar.radio("view", list(VIEWS), format_func=VIEWS.get, key="w_view")
+    here = Path(__file__).resolve().parent
+    pages = [st.Page(str(here / script), title=title, url_path=url, default=(i == 0))
+             for i, (script, title, url) in enumerate(VIEWS)]
+    page = st.navigation(pages, position="sidebar")
+    st.sidebar.caption(f"probeplan {__version__} · multiplexed in vivo fluorescence imaging with nanocrystal probes")
     st.warning(RESEARCH_USE_CAUTION, icon="⚠️")
+    view = next(url for _, title, url in VIEWS if title == page.title)  # the default page's url_path is ""
+    if view in SHARED_SETUP_VIEWS:
+        # Drawn here, not in the view scripts: Streamlit ties a widget to the script that draws it, and
+        # this one set-up must keep its values (persist_state="session") from the depth to the channels view.
+        from app.page_views import shared_setup
 
-    view = st.session_state["w_view"]
-    if view in ("depth", "channels"):
-        from page_views import channels_view, depth_view
-
-        extra = setup_sidebar()
-        if view == "depth":
-            st.header("Depth: how deep can each probe be seen?")
-            st.caption("Signal-to-background ratio (SBR), signal-to-noise ratio (SNR) per pixel and the blur of a "
-                       "target inclusion against its depth below the skin, for each probe in its own emission filter "
-                       "(diffusion model of the tissue). Tissue, excitation, camera and target are in the sidebar.")
-        else:
-            st.header("Channels: crosstalk and separability")
-            st.caption("How much of each probe reaches the other probes' channels at the target depth, and what "
-                       "separating them (unmixing) costs in noise; then a search for the best probe and filter set. "
-                       "One channel per emission filter; excitation, camera, lens and target are in the sidebar.")
-        with st.expander("Probes and emission filters (one filter, one channel per probe)", expanded=True):
-            probes, filters = probe_table()
-        setup = current_setup(extra, probes, filters)
-        if view == "depth":
-            depth_view(setup, extra["mpe"])
-        else:
-            channels_view(setup, extra["mpe"])
-    elif view == "separate":
-        from page_separate import separate_view
-
-        separate_view()
-    else:
-        from page_plan import plan_view
-
-        plan_view()
+        shared_setup(view)
+    page.run()
     st.divider()
-    st.caption(RESEARCH_USE_CAUTION + " Laser light can injure skin and eyes; cadmium- and lead-containing probes are "
-               "toxic: follow the institution's animal care committee, laser safety officer and chemical safety office.")
+    st.caption(FOOT_CAUTION)
 
 
 main()

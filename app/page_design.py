@@ -5,9 +5,9 @@ each of which can be applied to the set-up in one click.
 from __future__ import annotations
 
 import streamlit as st
-from page_common import captured_warnings, fmt, guard, show_notes
-from page_model import Setup, autofluorescence, build_tissue
-from page_setup import MAX_PROBES, apply_probe_set
+from app.page_common import captured_warnings, fmt, guard, show_notes
+from app.page_model import Setup, autofluorescence, build_tissue
+from app.page_setup import MAX_PROBES, apply_probe_set
 
 __all__ = ["design_section", "DESIGN_DEFAULTS"]
 
@@ -115,26 +115,30 @@ def design_section(setup: Setup) -> None:
             col.caption(text)
         for i in range(len(_SERIES_DEFAULTS)):
             c = st.columns(widths)
-            c[0].checkbox(f"use series {i + 1}", key=f"w_ds_on_{i}", label_visibility="collapsed")
-            c[1].selectbox(f"series {i + 1} material", materials, key=f"w_ds_mat_{i}", label_visibility="collapsed")
+            c[0].checkbox(f"use series {i + 1}", persist_state="session", key=f"w_ds_on_{i}", label_visibility="collapsed")
+            c[1].selectbox(f"series {i + 1} material", materials,
+                           persist_state="session", key=f"w_ds_mat_{i}", label_visibility="collapsed")
             c[2].number_input(f"series {i + 1} first peak (nm)", min_value=300.0, max_value=2500.0, step=10.0,
-                              key=f"w_ds_from_{i}", label_visibility="collapsed")
+                              persist_state="session", key=f"w_ds_from_{i}", label_visibility="collapsed")
             c[3].number_input(f"series {i + 1} last peak (nm)", min_value=300.0, max_value=2500.0, step=10.0,
-                              key=f"w_ds_to_{i}", label_visibility="collapsed")
+                              persist_state="session", key=f"w_ds_to_{i}", label_visibility="collapsed")
             c[4].number_input(f"series {i + 1} step (nm)", min_value=1.0, max_value=500.0, step=5.0,
-                              key=f"w_ds_step_{i}", label_visibility="collapsed")
+                              persist_state="session", key=f"w_ds_step_{i}", label_visibility="collapsed")
             c[5].number_input(f"series {i + 1} extinction (M⁻¹ cm⁻¹)", min_value=0.0, max_value=1e9, step=1e5,
-                              format="%.3e", key=f"w_ds_eps_{i}", label_visibility="collapsed")
+                              format="%.3e", persist_state="session", key=f"w_ds_eps_{i}", label_visibility="collapsed")
         st.markdown("**Candidate bandpass filters** (every centre × every width)")
         c = st.columns(4)
-        c[0].number_input("first centre (nm)", min_value=300.0, max_value=2500.0, step=10.0, key="w_ds_centre_from")
-        c[1].number_input("last centre (nm)", min_value=300.0, max_value=2500.0, step=10.0, key="w_ds_centre_to")
-        c[2].number_input("centre step (nm)", min_value=1.0, max_value=500.0, step=5.0, key="w_ds_centre_step")
-        c[3].text_input("widths, FWHM (nm, comma-separated)", key="w_ds_widths")
+        c[0].number_input("first centre (nm)", min_value=300.0, max_value=2500.0, step=10.0,
+                          persist_state="session", key="w_ds_centre_from")
+        c[1].number_input("last centre (nm)", min_value=300.0, max_value=2500.0, step=10.0,
+                          persist_state="session", key="w_ds_centre_to")
+        c[2].number_input("centre step (nm)", min_value=1.0, max_value=500.0, step=5.0,
+                          persist_state="session", key="w_ds_centre_step")
+        c[3].text_input("widths, FWHM (nm, comma-separated)", persist_state="session", key="w_ds_widths")
         c = st.columns(3)
-        c[0].number_input("probes to multiplex", min_value=1, max_value=MAX_PROBES, step=1, key="w_ds_k")
-        c[1].number_input("best sets to list", min_value=1, max_value=20, step=1, key="w_ds_top")
-        c[2].checkbox("irradiance at the skin MPE (instead of the set-up's)", key="w_ds_use_mpe")
+        c[0].number_input("probes to multiplex", min_value=1, max_value=MAX_PROBES, step=1, persist_state="session", key="w_ds_k")
+        c[1].number_input("best sets to list", min_value=1, max_value=20, step=1, persist_state="session", key="w_ds_top")
+        c[2].checkbox("irradiance at the skin MPE (instead of the set-up's)", persist_state="session", key="w_ds_use_mpe")
         submitted = st.form_submit_button("Search", type="primary")
     if submitted:
         with guard("design search"):

@@ -12,7 +12,7 @@ from typing import NamedTuple
 
 import numpy as np
 import streamlit as st
-from page_common import FIGURE_DPI, ProbeSpec, captured_warnings
+from app.page_common import FIGURE_DPI, ProbeSpec, captured_warnings
 
 __all__ = [
     "Setup",

@@ -8,7 +8,7 @@ import io
 import zipfile
 
 import streamlit as st
-from page_common import DEMO_DIR, fmt, guard, session_folder, show_notes
+from app.page_common import DEMO_DIR, fmt, guard, session_folder, show_notes
 
 __all__ = ["plan_view"]
 
@@ -45,24 +45,27 @@ def _reset_demo() -> None:
     st.session_state.pop("plan_evaluation", None)
 
 
-def _report_files(ev) -> tuple[bytes, bytes]:
-    """(report.html bytes, zip bytes of every report file), written in the session folder."""
-    from probeplan.report.document import plan_report, write_report
+def _report_files(ev) -> tuple[bytes, bytes, bytes]:
+    """(report.html, report.pdf, zip of every report file) as bytes, written in the session folder."""
+    from probeplan.report.document import plan_report, report_pdf_bytes, write_report
 
     out = session_folder() / "report"
-    written = write_report(plan_report(ev), out)
+    report = plan_report(ev)
+    pdf = report_pdf_bytes(report)
+    report.extra_files["report.pdf"] = pdf
+    written = write_report(report, out)
     html = written["html"].read_bytes()
     buf = io.BytesIO()
     with zipfile.ZipFile(buf, "w", zipfile.ZIP_DEFLATED) as zf:
         for path in written.values():
             zf.write(path, arcname=f"report/{path.name}")
-    return html, buf.getvalue()
+    return html, pdf, buf.getvalue()
 
 
 def plan_view() -> None:
     """Edit or upload a plan and rules, check it, download the report."""
     ss = st.session_state
-    st.header("Plan: check a study plan against the institution's rules")
+    st.header("Plan: check the study plan, write the report")
     st.caption("The plan (TOML) describes animals, probes, doses, target, acquisition and statistics; the rules "
                "file (TOML) holds the institution's limits and overrides probeplan's defaults. Both start with the "
                "invented demo study; edit them here or upload your own.")
@@ -76,8 +79,9 @@ def plan_view() -> None:
     if ss.get("plan_upload_error"):
         st.error(ss["plan_upload_error"])
     c = st.columns(2)
-    c[0].text_area("study plan (plan.toml)", key="w_plan_text", height=360)
-    c[1].text_area("institution rules (rules.toml; empty = probeplan's defaults)", key="w_rules_text", height=360)
+    c[0].text_area("study plan (plan.toml)", persist_state="session", key="w_plan_text", height=360)
+    c[1].text_area("institution rules (rules.toml; empty = probeplan's defaults)",
+                   persist_state="session", key="w_rules_text", height=360)
     b = st.columns([1, 1, 2])
     check = b[0].button("Check the plan", type="primary", key="btn_check")
     b[1].button("Back to the demo files", key="btn_plan_demo", on_click=_reset_demo)
@@ -92,12 +96,11 @@ def plan_view() -> None:
             rules_text = str(ss["w_rules_text"])
             rules = parse_rules_text(rules_text, filename="rules.toml") if rules_text.strip() else default_rules()
             ev = evaluate_plan(plan, rules)
-            html, zipped = _report_files(ev)
-            ss["plan_evaluation"] = (ev, html, zipped)
+            ss["plan_evaluation"] = (ev, *_report_files(ev))
     stored = ss.get("plan_evaluation")
     if stored is None:
         return
-    ev, html, zipped = stored
+    ev, html, pdf, zipped = stored
     with guard("plan results"):
         if ev.passed:
             st.success(f"Every rule passes ({len(ev.checks)} checks).")
@@ -125,8 +128,60 @@ def plan_view() -> None:
                 cols = t.columns or (list(t.rows[0]) if t.rows else [])
                 st.dataframe([{c_: (fmt(r.get(c_)) if isinstance(r.get(c_), float) else r.get(c_)) for c_ in cols}
                               for r in t.rows], hide_index=True, width="stretch")
-        c = st.columns(2)
-        c[0].download_button("Report (HTML)", html, file_name="report.html", mime="text/html", key="dl_report_html")
-        c[1].download_button("Report with tables (zip)", zipped, file_name="probeplan-report.zip",
+        st.subheader("The report for the protocol")
+        st.caption("A narrative first part (aim, design, animal numbers, doses, light, schedule, and marked places "
+                   "for what only the institution can write), then the results with figures, then the assumptions.")
+        c = st.columns(3)
+        c[0].download_button("Report (PDF)", pdf, file_name="report.pdf", mime="application/pdf", key="dl_report_pdf",
+                             type="primary")
+        c[1].download_button("Report (HTML)", html, file_name="report.html", mime="text/html", key="dl_report_html")
+        c[2].download_button("Report with tables (zip)", zipped, file_name="probeplan-report.zip",
                              mime="application/zip", key="dl_report_zip")
-        show_notes(ev.assumptions, title="How the plan was read, and model assumptions")
+        from probeplan.report.protocol import plain_assumptions
+
+        show_notes(plain_assumptions(ev.assumptions), title="How the plan was read, and the assumptions")
+    _phantom_section(ev)
+
+
+def _phantom_section(ev) -> None:
+    """A phantom that mimics the plan's tissue, to test the plan before any animal is imaged."""
+    from probeplan.report.document import figure_png_bytes
+    from probeplan.report.figures import phantom_sbr_figure
+    from probeplan.study.phantom import PHANTOM_CAUTION, plan_phantom
+
+    ss = st.session_state
+    st.subheader("A phantom to test the plan first")
+    st.caption("A liquid phantom (Intralipid and India ink in water) with the plan tissue's absorption and "
+               "scattering at the excitation and emission wavelengths, its preparation, and the SBR against depth it "
+               "should give beside the tissue's.")
+    if st.button("Make the phantom recipe", key="btn_phantom"):
+        ss.pop("plan_phantom", None)
+        with guard("phantom"):
+            from app.page_common import captured_warnings
+
+            notes: list[str] = []
+            with captured_warnings(notes):
+                ph = plan_phantom(ev.plan)
+            png = figure_png_bytes(phantom_sbr_figure(ph.sbr_curve))
+            ss["plan_phantom"] = (ph, png, notes)
+    stored = ss.get("plan_phantom")
+    if stored is None:
+        return
+    ph, png, notes = stored
+    with guard("phantom results"):
+        st.warning(PHANTOM_CAUTION, icon="⚠️")
+        st.markdown("**Preparation**")
+        st.dataframe([{"step": r["step"], "ingredient": r["ingredient"], "volume (mL)": fmt(r["volume_ml"]),
+                       "mass (g)": fmt(r["mass_g"]), "how": r["how"]} for r in ph.preparation],
+                     hide_index=True, width="stretch")
+        st.markdown("**Optical properties: target and phantom**")
+        cols = list(ph.properties[0]) if ph.properties else []
+        from probeplan.report.document import column_label
+
+        st.dataframe([{column_label(c): (fmt(r[c]) if isinstance(r[c], float) else r[c]) for c in cols}
+                      for r in ph.properties], hide_index=True, width="stretch")
+        st.image(png, caption="SBR against the inclusion's depth: solid, the plan's tissue; dashed, the phantom.",
+                 width="stretch")
+        from probeplan.report.protocol import plain_assumptions
+
+        show_notes(plain_assumptions([*ph.notes, *notes]), title="Phantom notes")

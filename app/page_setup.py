@@ -11,8 +11,8 @@ from __future__ import annotations
 import streamlit as st
 
 from probeplan.model.fluorescence import DEFAULT_CONCENTRATION_UM
-from page_common import fmt
-from page_model import Setup, camera_names, material_ranges, skin_mpe
+from app.page_common import fmt
+from app.page_model import Setup, camera_names, material_ranges, skin_mpe
 
 __all__ = ["DEFAULTS", "DEFAULT_PROBES", "MAX_PROBES", "init_state", "setup_sidebar", "probe_table",
            "apply_probe_set", "COMPOSITION_FIELDS", "current_setup"]
@@ -124,22 +124,25 @@ def setup_sidebar() -> dict:
     sb.caption("Shared by the depth and channels views.")
 
     sb.subheader("Tissue")
-    sb.radio("tissue optical properties", ["preset", "composition"], key="w_tissue_mode", horizontal=True,
+    sb.radio("tissue optical properties", ["preset", "composition"],
+             persist_state="session", key="w_tissue_mode", horizontal=True,
              format_func=lambda m: "preset" if m == "preset" else "adjust composition",
              help="A preset from the library, or the preset's composition adjusted with sliders.")
-    sb.selectbox("tissue preset", preset_names(), key="w_tissue", on_change=_on_preset_change)
+    sb.selectbox("tissue preset", preset_names(), persist_state="session", key="w_tissue", on_change=_on_preset_change)
     composition: tuple = ()
     if st.session_state["w_tissue_mode"] == "composition":
         for f, label, lo, hi, step in COMPOSITION_FIELDS:
-            sb.slider(label, min_value=lo, max_value=hi, step=step, key=f"w_comp_{f}")
+            sb.slider(label, min_value=lo, max_value=hi, step=step, persist_state="session", key=f"w_comp_{f}")
         composition = tuple((f, float(st.session_state[f"w_comp_{f}"])) for f, *_ in COMPOSITION_FIELDS)
 
     sb.subheader("Excitation (laser)")
-    sb.number_input("wavelength (nm)", min_value=400.0, max_value=2000.0, step=5.0, format="%.1f", key="w_excitation_nm")
+    sb.number_input("wavelength (nm)", min_value=400.0, max_value=2000.0, step=5.0, format="%.1f",
+                    persist_state="session", key="w_excitation_nm")
     sb.number_input("irradiance on the skin (mW/cm²)", min_value=0.001, max_value=10000.0, step=1.0,
-                    format="%.3f", key="w_irradiance")
+                    format="%.3f", persist_state="session", key="w_irradiance")
     sb.number_input("continuous illumination of one site (s)", min_value=0.001, max_value=30000.0, step=10.0,
-                    key="w_illumination_s", help="Sets the skin exposure limit (longer illumination, lower limit).")
+
+                    persist_state="session", key="w_illumination_s", help="Sets the skin exposure limit (longer illumination, lower limit).")
     mpe, mpe_notes = None, []
     try:
         mpe, mpe_notes = skin_mpe(float(st.session_state["w_excitation_nm"]), float(st.session_state["w_illumination_s"]))
@@ -157,26 +160,27 @@ def setup_sidebar() -> dict:
             sb.caption(n)
 
     sb.subheader("Camera and lens")
-    sb.selectbox("camera", camera_names(), key="w_camera")
-    sb.number_input("binning (pixels per side)", min_value=1, max_value=16, step=1, key="w_binning")
-    sb.number_input("lens f-number", min_value=0.5, max_value=64.0, step=0.1, key="w_f_number")
+    sb.selectbox("camera", camera_names(), persist_state="session", key="w_camera")
+    sb.number_input("binning (pixels per side)", min_value=1, max_value=16, step=1, persist_state="session", key="w_binning")
+    sb.number_input("lens f-number", min_value=0.5, max_value=64.0, step=0.1, persist_state="session", key="w_f_number")
     sb.number_input("magnification (image / object)", min_value=0.001, max_value=10.0, step=0.01, format="%.3f",
-                    key="w_magnification")
+                    persist_state="session", key="w_magnification")
     sb.number_input("exposure per channel (s)", min_value=0.0001, max_value=600.0, step=0.01, format="%.4f",
-                    key="w_exposure_s")
+                    persist_state="session", key="w_exposure_s")
 
     sb.subheader("Target")
-    sb.number_input("target depth (mm)", min_value=0.0, max_value=50.0, step=0.5, key="w_target_depth",
+    sb.number_input("target depth (mm)", min_value=0.0, max_value=50.0, step=0.5, persist_state="session", key="w_target_depth",
                     help="Centre of the target below the skin; marked on the plots, used by the channels view.")
-    sb.number_input("target diameter (mm)", min_value=0.05, max_value=50.0, step=0.5, key="w_target_size")
+    sb.number_input("target diameter (mm)", min_value=0.05, max_value=50.0, step=0.5,
+                    persist_state="session", key="w_target_size")
     sb.number_input("probe concentration in the target (µM)", min_value=1e-6, max_value=1000.0, step=0.05,
-                    format="%.3f", key="w_concentration")
+                    format="%.3f", persist_state="session", key="w_concentration")
     sb.number_input("target-to-background uptake ratio", min_value=1.0, max_value=1000.0, step=0.5,
-                    key="w_uptake_ratio", help="The surrounding tissue holds concentration / ratio.")
-    sb.checkbox("include tissue autofluorescence", key="w_af_on")
+                    persist_state="session", key="w_uptake_ratio", help="The surrounding tissue holds concentration / ratio.")
+    sb.checkbox("include tissue autofluorescence", persist_state="session", key="w_af_on")
     if st.session_state["w_af_on"]:
         sb.number_input("autofluorescence yield (cm⁻¹ at 650 nm excitation)", min_value=0.0, max_value=1.0,
-                        step=1e-4, format="%.2e", key="w_af_yield",
+                        step=1e-4, format="%.2e", persist_state="session", key="w_af_yield",
                         help="A stated assumption: set it from an unlabelled control animal when you have one.")
     return {"composition": composition, "mpe": mpe}
 
@@ -185,7 +189,7 @@ def probe_table() -> tuple[tuple, tuple]:
     """The probe rows (material, peak, QY, extinction, filter); returns (probes, filters) as plain values."""
     ranges = material_ranges()
     materials = list(ranges)
-    st.number_input("number of probes", min_value=1, max_value=MAX_PROBES, step=1, key="w_n_probes")
+    st.number_input("number of probes", min_value=1, max_value=MAX_PROBES, step=1, persist_state="session", key="w_n_probes")
     n = int(st.session_state["w_n_probes"])
     widths = [1.2, 1.0, 0.9, 1.4, 1.1]
     head = st.columns(widths)
@@ -198,15 +202,18 @@ def probe_table() -> tuple[tuple, tuple]:
         c = st.columns(widths)
         if st.session_state.get(f"w_mat_{i}") not in materials:
             st.session_state[f"w_mat_{i}"] = materials[0]
-        mat = c[0].selectbox(f"probe {i + 1} material", materials, key=f"w_mat_{i}", label_visibility="collapsed")
+        mat = c[0].selectbox(f"probe {i + 1} material", materials,
+                             persist_state="session", key=f"w_mat_{i}", label_visibility="collapsed")
         lo, hi = ranges[mat]
         c[1].number_input(f"probe {i + 1} emission peak (nm)", min_value=300.0, max_value=2500.0, step=5.0, format="%.1f",
-                          key=f"w_peak_{i}", label_visibility="collapsed", help=f"{mat} emits in {lo:.0f}–{hi:.0f} nm")
+
+                          persist_state="session", key=f"w_peak_{i}", label_visibility="collapsed", help=f"{mat} emits in {lo:.0f}–{hi:.0f} nm")
         c[2].number_input(f"probe {i + 1} quantum yield", min_value=0.0, max_value=1.0, step=0.05,
-                          key=f"w_qy_{i}", label_visibility="collapsed")
+                          persist_state="session", key=f"w_qy_{i}", label_visibility="collapsed")
         c[3].number_input(f"probe {i + 1} extinction at excitation (M⁻¹ cm⁻¹)", min_value=0.0, max_value=1e9,
-                          step=1e5, format="%.3e", key=f"w_eps_{i}", label_visibility="collapsed")
-        c[4].text_input(f"probe {i + 1} emission filter", key=f"w_filter_{i}", label_visibility="collapsed")
+                          step=1e5, format="%.3e", persist_state="session", key=f"w_eps_{i}", label_visibility="collapsed")
+        c[4].text_input(f"probe {i + 1} emission filter",
+                        persist_state="session", key=f"w_filter_{i}", label_visibility="collapsed")
         ss = st.session_state
         qy = float(ss[f"w_qy_{i}"]) or None
         eps = float(ss[f"w_eps_{i}"]) or None

@@ -5,10 +5,50 @@ from __future__ import annotations
 import math
 
 import streamlit as st
-from page_common import captured_warnings, fmt, guard, show_notes
-from page_model import Setup, build_probes, channel_results, channels_png, depth_png, depth_profiles
+from app.page_common import captured_warnings, fmt, guard, show_notes
+from app.page_model import Setup, build_probes, channel_results, channels_png, depth_png, depth_profiles
 
-__all__ = ["depth_view", "channels_view", "irradiance_check"]
+__all__ = ["depth_page", "channels_page", "depth_view", "channels_view", "irradiance_check"]
+
+
+#: Header and caption of each view that shares the imaging set-up.
+_HEADERS = {
+    "depth": ("Depth: how deep can each probe be seen?",
+              "Signal-to-background ratio (SBR), signal-to-noise ratio (SNR) per pixel and the blur of a "
+              "target inclusion against its depth below the skin, for each probe in its own emission filter "
+              "(diffusion model of the tissue). Tissue, excitation, camera and target are in the sidebar."),
+    "channels": ("Channels: crosstalk and separability",
+                 "How much of each probe reaches the other probes' channels at the target depth, and what "
+                 "separating them (unmixing) costs in noise; then a search for the best probe and filter set. "
+                 "One channel per emission filter; excitation, camera, lens and target are in the sidebar."),
+}
+
+
+def shared_setup(view: str) -> None:
+    """Header, sidebar set-up and probe table of the depth or channels view (drawn by the entry script).
+
+    The set-up is left in ``st.session_state["page_setup"]`` as ``(Setup, skin MPE or None)``.
+    """
+    from app.page_setup import current_setup, init_state, probe_table, setup_sidebar
+
+    title, caption = _HEADERS[view]
+    st.header(title)
+    st.caption(caption)
+    init_state()
+    extra = setup_sidebar()
+    with st.expander("Probes and emission filters (one filter, one channel per probe)", expanded=True):
+        probes, filters = probe_table()
+    st.session_state["page_setup"] = (current_setup(extra, probes, filters), extra["mpe"])
+
+
+def depth_page() -> None:
+    """The depth view, below the shared set-up."""
+    depth_view(*st.session_state["page_setup"])
+
+
+def channels_page() -> None:
+    """The channels view, below the shared set-up."""
+    channels_view(*st.session_state["page_setup"])
 
 
 def irradiance_check(setup: Setup, mpe: float | None) -> None:
@@ -51,16 +91,18 @@ def depth_view(setup: Setup, mpe: float | None) -> None:
     ss.setdefault("w_depth_step", 0.25)
     c = st.columns(3)
     c[0].slider("SBR threshold (a target is lost below it; common practice 2)", min_value=1.1, max_value=10.0,
-                step=0.1, key="w_sbr_threshold")
-    c[1].number_input("deepest depth plotted (mm)", min_value=0.5, max_value=50.0, step=1.0, key="w_depth_max")
-    c[2].number_input("depth step (mm)", min_value=0.01, max_value=5.0, step=0.05, key="w_depth_step")
+                step=0.1, persist_state="session", key="w_sbr_threshold")
+    c[1].number_input("deepest depth plotted (mm)", min_value=0.5, max_value=50.0, step=1.0,
+                      persist_state="session", key="w_depth_max")
+    c[2].number_input("depth step (mm)", min_value=0.01, max_value=5.0, step=0.05, persist_state="session",
+                      key="w_depth_step")
     ss.setdefault("w_skin_mm", 0.0)
     ss.setdefault("w_fat_mm", 0.0)
     c = st.columns(2)
     c[0].number_input("skin layer over the tissue (mm; 0: none)", min_value=0.0, max_value=5.0, step=0.1,
-                      key="w_skin_mm")
+                      persist_state="session", key="w_skin_mm")
     c[1].number_input("subcutaneous fat layer under the skin (mm; 0: none)", min_value=0.0, max_value=10.0,
-                      step=0.1, key="w_fat_mm")
+                      step=0.1, persist_state="session", key="w_fat_mm")
     layers = tuple((name, float(ss[key])) for name, key in (("skin", "w_skin_mm"), ("subcutaneous fat", "w_fat_mm"))
                    if float(ss[key]) > 0)
     threshold = float(ss["w_sbr_threshold"])
@@ -98,7 +140,7 @@ def depth_view(setup: Setup, mpe: float | None) -> None:
 
 def channels_view(setup: Setup, mpe: float | None) -> None:
     """Spectra with filter bands, crosstalk, separability; then the design search."""
-    from page_design import design_section
+    from app.page_design import design_section
 
     from probeplan.model.channels import SEPARABLE_CONDITION_LIMIT
 

@@ -26,7 +26,7 @@ from probeplan import RESEARCH_USE_CAUTION  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
 APP = ROOT / "app" / "main.py"
-TIMEOUT = 60
+TIMEOUT = 180  # seconds per script run: generous, for a busy machine (not a speed target; see tests/benchmarks)
 
 
 def _app() -> AppTest:
@@ -46,7 +46,8 @@ def _errors(at: AppTest) -> list[str]:
 
 
 def _view(at: AppTest, view: str) -> AppTest:
-    at.sidebar.radio(key="w_view").set_value(view).run()
+    """Switch to a view through the page's navigation (its script ``app/view_<view>.py``)."""
+    at.switch_page(f"view_{view}.py").run()
     _clean(at)
     return at
 
@@ -230,7 +231,7 @@ def test_design_bad_widths_is_an_error_line():
     assert any("filter widths" in e for e in _errors(at))
 
 
-# --------------------------------------------------------------------------- separate view
+# --------------------------------------------------------------------------- unmix view
 
 
 def _test_stack(tmp_path: Path) -> tuple[bytes, bytes, np.ndarray, np.ndarray]:
@@ -248,33 +249,67 @@ def _test_stack(tmp_path: Path) -> tuple[bytes, bytes, np.ndarray, np.ndarray]:
     return path.read_bytes(), csv.encode(), abundance, refs
 
 
-def test_separate_upload_unmix_and_roi(tmp_path):
+def _roi_file(*regions: dict, size=(48, 40), background="background") -> bytes:
+    import json
+
+    return json.dumps({"kind": "probeplan ROIs", "version": 1, "image_size": list(size), "background": background,
+                       "rois": list(regions)}).encode()
+
+
+def test_unmix_upload_unmix_and_roi(tmp_path):
     stack, csv, truth, _ = _test_stack(tmp_path)
-    at = _view(_app(), "separate")
+    at = _view(_app(), "unmix")
     assert any(RESEARCH_USE_CAUTION in w.value for w in at.warning)
     at.file_uploader(key="up_stack").set_value(("../../my stack (1).tif", stack, "image/tiff"))
     at.file_uploader(key="up_refs").set_value(("refs.csv", csv, "text/csv"))
-    at.text_area(key="w_sep_rois").set_value("dotA:5,5,15,15\nbackground:40,0,48,5")
-    at.text_input(key="w_sep_background").set_value("background")
     at.button(key="btn_unmix").click().run()
     _clean(at)
     assert _errors(at) == [], _errors(at)
     assert _image_count(at) >= 2
-    rows = _table(at)
+    # regions come back from a ROI file: the dotA square (pixel centres 5..14) and a background strip
+    rois = _roi_file({"name": "dotA", "shape": "rectangle", "x": [5, 14], "y": [5, 14]},
+                     {"name": "background", "shape": "rectangle", "x": [40, 47], "y": [0, 4]})
+    at.file_uploader(key="up_rois").set_value(("rois.json", rois, "application/json")).run()
+    _clean(at)
+    assert list(_table(at)["region"]) == ["dotA", "background"]
+    assert at.selectbox(key="w_roi_background").value == "background"
+    at.button(key="btn_roi_measure").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    rows = _table(at, -1)
     a_in_roi = rows[(rows["region"] == "dotA") & (rows["component"] == "dotA")].iloc[0]
     # noise-free mixture: the exact abundance comes back (1000 + 50 inside, 50 in the background region)
     assert float(a_in_roi["mean abundance (counts)"]) == pytest.approx(1050.0, rel=1e-3)
     assert float(a_in_roi["target-to-background ratio"]) == pytest.approx(21.0, rel=1e-3)
+    assert int(a_in_roi["pixels"]) == 100
     # the upload is in the session's private folder, under a sanitised basename
     folder = at.session_state["_session_folder"].path
     saved = sorted(p.name for p in (folder / "uploads").iterdir())
     assert saved == ["my_stack_1_.tif", "refs.csv"]
     labels = [b.label for b in at.get("download_button")]
     assert any("OME-TIFF" in lab for lab in labels) and any("CSV" in lab for lab in labels)
+    assert any("ROI file" in lab for lab in labels)
 
 
-def test_separate_with_the_demo_data():
-    at = _view(_app(), "separate")
+def test_unmix_automatic_target_region_is_offered_and_taken(tmp_path):
+    stack, csv, _, _ = _test_stack(tmp_path)
+    at = _view(_app(), "unmix")
+    at.file_uploader(key="up_stack").set_value(("stack.tif", stack, "image/tiff"))
+    at.file_uploader(key="up_refs").set_value(("refs.csv", csv, "text/csv"))
+    at.button(key="btn_unmix").click().run()
+    _clean(at)
+    assert any("Automatic target region for dotA" in i.value for i in at.info)
+    at.button(key="btn_roi_auto").click().run()
+    _clean(at)
+    table = _table(at, -1)
+    assert list(table["region"]) == ["dotA spot"]
+    # the test map's dotA square is x 5..14, y 5..14: the suggested region is that square
+    row = table.iloc[0]
+    assert (row["x from (pixel)"], row["x to"], row["y from"], row["y to"]) == ("5", "14", "5", "14")
+
+
+def test_unmix_with_the_demo_data():
+    at = _view(_app(), "unmix")
     box = at.checkbox(key="w_sep_demo")
     if box.disabled:
         pytest.skip("the demo data is not available in this checkout")
@@ -283,13 +318,15 @@ def test_separate_with_the_demo_data():
     _clean(at)
     assert _errors(at) == [], _errors(at)
     assert _image_count(at) >= 2
-    rows = _table(at)
+    at.button(key="btn_roi_measure").click().run()
+    _clean(at)
+    rows = _table(at, -1)
     assert {"tumour", "muscle"} <= set(rows["region"])
 
 
-def test_separate_bad_uploads_show_errors(tmp_path):
+def test_unmix_bad_uploads_show_errors(tmp_path):
     stack, csv, _, _ = _test_stack(tmp_path)
-    at = _view(_app(), "separate")
+    at = _view(_app(), "unmix")
     at.button(key="btn_unmix").click().run()
     _clean(at)
     assert any("upload" in e for e in _errors(at))
@@ -309,14 +346,21 @@ def test_separate_bad_uploads_show_errors(tmp_path):
     _clean(at)
     assert any("ch880" in e for e in _errors(at)), _errors(at)
     at.file_uploader(key="up_refs").set_value(("refs.csv", csv, "text/csv"))
-    at.text_area(key="w_sep_rois").set_value("tumour:0,0,500,500")
     at.button(key="btn_unmix").click().run()
     _clean(at)
-    assert any("extends past the image" in e for e in _errors(at)), _errors(at)
+    # a ROI file drawn on another image, and one whose region lies outside this image
+    other = _roi_file({"name": "t", "shape": "ellipse", "x": [1, 5], "y": [1, 5]}, size=(500, 500))
+    at.file_uploader(key="up_rois").set_value(("other.json", other, "application/json")).run()
+    _clean(at)
+    assert any("500 x 500" in e and "48 x 40" in e for e in _errors(at)), _errors(at)
+    outside = _roi_file({"name": "t", "shape": "rectangle", "x": [100, 120], "y": [1, 5]})
+    at.file_uploader(key="up_rois").set_value(("outside.json", outside, "application/json")).run()
+    _clean(at)
+    assert any("holds no pixel" in e for e in _errors(at)), _errors(at)
 
 
 
-def test_separate_under_abuse_one_line_each_nothing_outside_the_session(tmp_path, monkeypatch):
+def test_unmix_under_abuse_one_line_each_nothing_outside_the_session(tmp_path, monkeypatch):
     """An oversized upload, a unicode / ``../`` name, a library failure of an unexpected kind: one line each,
     no exception box, and every file the page wrote is inside the session's folder."""
     import streamlit
@@ -325,7 +369,7 @@ def test_separate_under_abuse_one_line_each_nothing_outside_the_session(tmp_path
 
     _, csv, _, _ = _test_stack(tmp_path)
     big = write_stack(tmp_path / "big.tif", np.ones((3, 400, 400)), channel_names=["ch700", "ch780", "ch880"])
-    at = _view(_app(), "separate")
+    at = _view(_app(), "unmix")
     at.file_uploader(key="up_stack").set_value(("../../стек ☃ (1).tif", big.read_bytes(), "image/tiff"))
     at.file_uploader(key="up_refs").set_value(("..\\..\\refs.csv", csv, "text/csv"))
     previous = streamlit.get_option("server.maxUploadSize")
@@ -427,11 +471,11 @@ def test_plan_upload_replaces_the_text():
 
 @pytest.fixture()
 def page_common():
-    sys.path.insert(0, str(APP.parent))
+    sys.path.insert(0, str(ROOT))
     try:
-        yield importlib.import_module("page_common")
+        yield importlib.import_module("app.page_common")
     finally:
-        sys.path.remove(str(APP.parent))
+        sys.path.remove(str(ROOT))
 
 
 @pytest.mark.parametrize(("name", "expected"), [
@@ -509,3 +553,150 @@ def test_app_command_without_the_page(monkeypatch, tmp_path, capsys):
     err = capsys.readouterr().err
     assert "is missing" in err and "pip install -e" in err
 
+
+
+# --------------------------------------------------------------------------- navigation
+
+
+def _views_in_order() -> list[tuple[str, str, str]]:
+    import ast
+
+    tree = ast.parse(APP.read_text(encoding="utf-8"))
+    for node in tree.body:
+        if isinstance(node, ast.AnnAssign | ast.Assign):
+            target = node.target if isinstance(node, ast.AnnAssign) else node.targets[0]
+            if isinstance(target, ast.Name) and target.id == "VIEWS":
+                return list(ast.literal_eval(node.value))
+    raise AssertionError("app/main.py defines no VIEWS")
+
+
+def test_navigation_lists_the_views_in_the_order_of_the_work_each_with_the_caution():
+    views = _views_in_order()
+    assert [title.split(":")[0] for _, title, _ in views] == ["Depth", "Channels", "Unmix", "Study", "Plan"]
+    at = _app()
+    for script, title, _ in views:
+        at.switch_page(script).run()
+        _clean(at)
+        assert any(RESEARCH_USE_CAUTION in w.value for w in at.warning), script
+        assert at.header and at.header[0].value.split(":")[0] == title.split(":")[0], script
+
+
+# --------------------------------------------------------------------------- study view
+
+
+def _measurements_csv() -> str:
+    """Two groups of three animals at three times (test data of our own)."""
+    lines = ["animal,group,time_h,roi,component,mean,se,tbr"]
+    for group, level in (("vehicle", 1.5), ("treated", 2.5)):
+        for a in range(3):
+            for t in (1.0, 24.0, 48.0):
+                tbr = level + 0.1 * a - 0.005 * t
+                lines.append(f"{group}-{a},{group},{t},tumour,dot A,{100 * tbr:.3f},2.0,{tbr:.4f}")
+    return "\n".join(lines) + "\n"
+
+
+def test_study_view_shows_animals_over_time_and_the_comparisons():
+    measurements_csv = _measurements_csv
+    at = _view(_app(), "study")
+    at.radio(key="w_study_source").set_value("upload").run()
+    assert any("measurements.csv" in i.value for i in at.info)
+    at.file_uploader(key="up_study_measurements").set_value(("measurements.csv", measurements_csv().encode(),
+                                                            "text/csv"))
+    groups = ("time_h,roi,component,quantity,group_a,group_b,n_a,n_b,difference,ci_low,ci_high,p_welch,p_rank,"
+              "p_adjusted\n24,tumour,dot A,tbr,treated,vehicle,3,3,0.9,0.31,1.49,0.0046,0.1,0.0138\n"
+              "24,tumour,dot A,mean,treated,vehicle,3,3,90,31,149,0.0046,0.1,0.0138\n")
+    at.file_uploader(key="up_study_groups").set_value(("groups.csv", groups.encode(), "text/csv")).run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    assert any("6 animals" in m.value for m in at.markdown)
+    assert _image_count(at) >= 1
+    table = _table(at, -1)
+    assert len(table) == 1 and table.iloc[0]["p (Welch)"] == "0.0046"  # a small p value keeps its figures
+    at.radio(key="w_study_quantity").set_value("mean").run()
+    _clean(at)
+    assert _table(at, -1).iloc[0]["difference (a − b)"] == "90"
+
+
+def test_study_view_bad_table_is_one_error_line():
+    at = _view(_app(), "study")
+    at.radio(key="w_study_source").set_value("upload").run()
+    at.file_uploader(key="up_study_measurements").set_value(("m.csv", b"animal,group\n1,a\n", "text/csv")).run()
+    _clean(at)
+    assert any("m.csv: has no column 'time_h'" in e for e in _errors(at)), _errors(at)
+
+
+def test_study_view_runs_a_study_table_with_a_roi_file(tmp_path):
+    """A small study of our own: dot A is 3x its background in the tumour of group 'high', 1.5x in 'low'."""
+    import json
+
+    from probeplan.io.stacks import write_stack
+
+    refs = np.array([[0.6, 0.1], [0.3, 0.3], [0.1, 0.6]])
+    channels = ["ch650", "ch700", "ch750"]
+    (tmp_path / "refs.csv").write_text("channel,dotA,dotB\n" + "".join(
+        f"{c},{refs[i, 0]},{refs[i, 1]}\n" for i, c in enumerate(channels)))
+    rows = ["animal,group,time_h,file"]
+    for group, level in (("low", 1.5), ("high", 3.0)):
+        for a in range(2):
+            for t in (1.0, 24.0):
+                ab = np.full((2, 20, 20), 100.0)
+                ab[0, 2:8, 2:8] = 100.0 * level
+                name = f"{group}{a}_{t:g}.tif"
+                write_stack(tmp_path / name, np.einsum("ck,kyx->cyx", refs, ab), channel_names=channels)
+                rows.append(f"{group}{a},{group},{t:g},{name}")
+    (tmp_path / "study.csv").write_text("\n".join(rows) + "\n")
+    (tmp_path / "rois.json").write_text(json.dumps({"kind": "probeplan ROIs", "version": 1, "rois": [
+        {"name": "tumour", "shape": "rectangle", "x": [2, 7], "y": [2, 7]},
+        {"name": "background", "shape": "rectangle", "x": [12, 19], "y": [12, 19]}]}))
+    at = _view(_app(), "study")
+    at.text_input(key="w_study_csv").set_value(str(tmp_path / "study.csv"))
+    at.text_input(key="w_study_refs").set_value(str(tmp_path / "refs.csv"))
+    at.text_area(key="w_study_rois").set_value(str(tmp_path / "rois.json"))
+    at.button(key="btn_study_run").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    assert any("4 animals" in m.value for m in at.markdown)
+    assert at.selectbox(key="w_study_roi").value == "tumour"
+    assert _image_count(at) >= 1
+    groups = _table(at, 0)
+    # noise-free study: the difference in tumour TBR between the groups is 3.0 - 1.5 at both times
+    assert sorted(abs(float(v)) for v in groups["difference (a − b)"]) == pytest.approx([1.5, 1.5], rel=1e-6)
+    at.text_area(key="w_study_rois").set_value("tumour:0,0,90,90")
+    at.button(key="btn_study_run").click().run()
+    _clean(at)
+    assert any("tumour:0,0,90,90" in e or "extends past" in e for e in _errors(at)), _errors(at)
+
+
+def test_plan_view_offers_a_phantom_for_the_plan():
+    at = _view(_app(), "plan")
+    at.button(key="btn_check").click().run()
+    at.button(key="btn_phantom").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    assert any("phantom replaces no review" in w.value for w in at.warning)
+    prep = _table(at, -2)
+    assert list(prep["step"]) == [1, 2, 3] and "water" in prep.iloc[2]["ingredient"]
+    # the three volumes make up the 100 mL batch
+    assert sum(float(v) for v in prep["volume (mL)"]) == pytest.approx(100.0, rel=1e-3)
+
+
+def test_unmix_with_a_calibration_gives_maps_in_micromolar(tmp_path):
+    stack, csv, _, _ = _test_stack(tmp_path)
+    # a calibration line of our own for dotA: 100 counts per µM above 50 counts; range 0.1-20 µM, LOD 0.05 µM
+    cal = ("component,slope_counts_per_uM,intercept_counts,lod_uM,r2,range_low_uM,range_high_uM,phantom_depth_mm\n"
+           "dotA,100,50,0.05,0.999,0.1,20,0\n")
+    at = _view(_app(), "unmix")
+    at.file_uploader(key="up_stack").set_value(("stack.tif", stack, "image/tiff"))
+    at.file_uploader(key="up_refs").set_value(("refs.csv", csv, "text/csv"))
+    at.file_uploader(key="up_calibration").set_value(("calibration.csv", cal.encode(), "text/csv"))
+    at.button(key="btn_unmix").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    assert any("Concentration maps (µM)" in m.value for m in at.markdown)
+    flags = next(df.value for df in at.dataframe if "pixels in range" in df.value.columns)
+    # inside the 10 x 10 square (1000 + 50 counts) dotA is (1050 - 50) / 100 = 10 µM: in range; outside it is
+    # 0 µM: below the LOD.  100 of the 48 x 40 pixels.
+    row = flags.iloc[0]
+    assert row["component"] == "dotA"
+    assert row["pixels in range"] == f"{100 * 100 / (48 * 40):.1f} %"
+    assert row["pixels below lod"] == f"{100 * (48 * 40 - 100) / (48 * 40):.1f} %"

@@ -119,6 +119,56 @@ def _test_stack(folder: Path) -> tuple[Path, Path]:
     return stack_path, ref_path
 
 
+def _draw_region(page, name: str, start: tuple[float, float], end: tuple[float, float]) -> None:
+    """Drag a box on the region chart (fractions of its plot area), name it and add it; wait for it in the list."""
+    _wait_idle(page)
+    chart = page.locator("[data-testid='stPlotlyChart']").first
+    chart.scroll_into_view_if_needed()
+    area = chart.locator("rect.nsewdrag").first
+    area.wait_for(timeout=UI_TIMEOUT_MS)
+    box = area.bounding_box()
+    x0, y0 = box["x"] + start[0] * box["width"], box["y"] + start[1] * box["height"]
+    x1, y1 = box["x"] + end[0] * box["width"], box["y"] + end[1] * box["height"]
+    page.mouse.move(x0, y0)
+    page.mouse.down()
+    for i in range(1, 11):
+        page.mouse.move(x0 + (x1 - x0) * i / 10, y0 + (y1 - y0) * i / 10)
+    page.mouse.up()
+    _wait_idle(page)
+    field = page.get_by_label("region name", exact=True)
+    field.fill(name)
+    field.press("Enter")
+    _wait_idle(page)
+    page.get_by_role("button", name="Add region").click()
+    _wait_idle(page)
+    page.get_by_text(f"{name} (", exact=False).first.wait_for(timeout=UI_TIMEOUT_MS)
+
+
+def _study_csv(folder: Path) -> Path:
+    """A small study's measurements table: two groups of three animals at three times (our own test data)."""
+    rng = np.random.default_rng(5)
+    lines = ["animal,group,time_h,roi,component,mean,se,tbr"]
+    for group, level in (("vehicle", 1.4), ("treated", 2.2)):
+        for a in range(3):
+            for t in (1, 24, 48):
+                tbr = level * (1 + 0.1 * rng.standard_normal()) * (1 - t / 200)
+                lines.append(f"{group}-{a + 1},{group},{t},tumour,dot A,{120 * tbr:.2f},3.0,{tbr:.3f}")
+    path = folder / "measurements.csv"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+def _pdf_pages_to_png(pdf_path: Path) -> None:
+    """Render the downloaded report's pages to PNG beside it, for a person to look at (when pypdfium2 is there)."""
+    try:
+        import pypdfium2 as pdfium
+    except ImportError:
+        return
+    pdf = pdfium.PdfDocument(str(pdf_path))
+    for i in range(min(len(pdf), 4)):
+        pdf[i].render(scale=1.2).to_pil().save(str(pdf_path.with_name(f"browser-report-page-{i + 1}.png")))
+
+
 def _plot_src(page) -> str:
     img = page.locator("[data-testid='stImage'] img").first
     img.wait_for(timeout=UI_TIMEOUT_MS)
@@ -140,6 +190,7 @@ def test_page_in_chromium(tmp_path):
     try:
         _wait_healthy(proc, port, log)
         stack_path, ref_path = _test_stack(tmp_path)
+        study_csv = _study_csv(tmp_path)
         with sync_playwright() as pw:
             browser = pw.chromium.launch(executable_path=str(CHROMIUM), args=CHROMIUM_ARGS)
             page = browser.new_page(viewport=VIEWPORT)
@@ -171,43 +222,64 @@ def test_page_in_chromium(tmp_path):
                 page.screenshot(path=str(ARTIFACTS / "browser-3-channels.png"))
 
                 # upload a stack and its reference spectra, unmix, see the abundance maps
-                page.get_by_text("Separate: unmix an image stack").click()
+                page.get_by_text("Unmix: abundance maps and regions").first.click()
                 page.get_by_text("reference spectra (CSV)").wait_for(timeout=UI_TIMEOUT_MS)
                 _upload(page, 0, stack_path)
                 _upload(page, 1, ref_path)
-                # let the reruns the uploads started finish first: a value typed during a rerun can be lost
                 _wait_idle(page)
-                roi_text = "dot A:28,28,52,52\nbackground:110,0,128,15"
-                rois = page.get_by_label("regions of interest", exact=False)
-                rois.fill(roi_text)
-                rois.press("Control+Enter")  # a text area commits its value on Ctrl+Enter (or blur)
-                _wait_idle(page)
-                background = page.get_by_label("background region", exact=False)
-                background.fill("background")
-                background.press("Enter")
-                _wait_idle(page)
-                assert rois.input_value() == roi_text and background.input_value() == "background"
-                page.get_by_role("button", name="Unmix").click()
-                page.get_by_text("Abundance maps", exact=True).wait_for(timeout=UNMIX_TIMEOUT_MS)
+                page.get_by_role("button", name="Unmix", exact=True).click()
+                page.get_by_text("Results for stack.tif").wait_for(timeout=UNMIX_TIMEOUT_MS)
                 maps = page.locator("[data-testid='stImage'] img")
                 maps.first.wait_for(timeout=UI_TIMEOUT_MS)
-                assert maps.count() >= 1
                 assert (maps.first.get_attribute("src") or "") != ""
-                assert page.get_by_text("Results for stack.tif").count() == 1
                 assert page.locator("[data-testid='stException']").count() == 0
                 maps.first.scroll_into_view_if_needed()
                 time.sleep(1.0)
-                page.screenshot(path=str(ARTIFACTS / "browser-4-separate-abundance.png"))
-                page.locator("[data-testid='stDataFrame']").last.scroll_into_view_if_needed()
-                time.sleep(0.5)
-                page.screenshot(path=str(ARTIFACTS / "browser-5-separate-roi.png"))
+                page.screenshot(path=str(ARTIFACTS / "browser-4-unmix-maps.png"))
+                page.get_by_text("composite", exact=True).click()
+                time.sleep(1.0)
+                page.screenshot(path=str(ARTIFACTS / "browser-5-unmix-composite.png"), full_page=True)
 
-                page.get_by_text("Plan: check against the rules").click()
+                # draw two regions on the map: a box around dot A (centre x 40, y 40 of 128 x 96) and one in a
+                # corner far from both dots, then measure them
+                _draw_region(page, "dot A", (0.20, 0.25), (0.43, 0.58))
+                _draw_region(page, "background", (0.86, 0.04), (0.98, 0.18))
+                page.get_by_role("button", name="Measure the regions").click()
+                page.get_by_text("Mean ± SD of the abundance in each region").wait_for(timeout=UI_TIMEOUT_MS)
+                _wait_idle(page)
+                assert page.locator("[data-testid='stException']").count() == 0
+                page.locator("[data-testid='stPlotlyChart']").first.scroll_into_view_if_needed()
+                time.sleep(1.0)
+                page.screenshot(path=str(ARTIFACTS / "browser-6-unmix-regions.png"))
+                page.get_by_text("Mean ± SD of the abundance in each region").scroll_into_view_if_needed()
+                time.sleep(0.5)
+                page.screenshot(path=str(ARTIFACTS / "browser-7-unmix-roi-table.png"), full_page=True)
+
+                # the study view: a study's measurements over time
+                page.get_by_text("Study: animals and groups over time").first.click()
+                page.get_by_text("upload a study's result tables").click()
+                page.get_by_text("measurements (CSV)").wait_for(timeout=UI_TIMEOUT_MS)
+                _upload(page, 0, study_csv)
+                page.get_by_text("6 animals").wait_for(timeout=UI_TIMEOUT_MS)
+                _wait_idle(page)
+                assert page.locator("[data-testid='stImage'] img").count() >= 1
+                assert page.locator("[data-testid='stException']").count() == 0
+                time.sleep(1.0)
+                page.screenshot(path=str(ARTIFACTS / "browser-8-study.png"))
+
+                # the plan view: check the demo plan, download the report as PDF
+                page.get_by_text("Plan: rules and the protocol report").first.click()
                 page.get_by_role("button", name="Check the plan").click()
                 page.get_by_text("Rule by rule").wait_for(timeout=UI_TIMEOUT_MS)
                 time.sleep(1.0)
-                page.screenshot(path=str(ARTIFACTS / "browser-6-plan.png"))
+                page.screenshot(path=str(ARTIFACTS / "browser-9-plan.png"))
                 assert page.locator("[data-testid='stException']").count() == 0
+                with page.expect_download(timeout=UI_TIMEOUT_MS) as download:
+                    page.get_by_role("button", name="Report (PDF)").click()
+                pdf_path = ARTIFACTS / "browser-report.pdf"
+                download.value.save_as(str(pdf_path))
+                assert pdf_path.read_bytes()[:5] == b"%PDF-"
+                _pdf_pages_to_png(pdf_path)
             except Exception:
                 page.screenshot(path=str(ARTIFACTS / "browser-failure.png"))
                 raise

@@ -82,7 +82,7 @@ def test_plan_writes_a_self_contained_report(tmp_path, capsys):
     printed = capsys.readouterr().out
     assert f"report: {out / 'report.html'}" in printed
     html = (out / "report.html").read_text(encoding="utf-8")
-    for text in (RESEARCH_USE_CAUTION, LASER_CAUTION, "cadmium", "Model assumptions", "Rules checked"):
+    for text in (RESEARCH_USE_CAUTION, LASER_CAUTION, "cadmium", "<h2>Protocol</h2>", "<h2>Assumptions</h2>", "Rules checked"):
         assert text.replace("'", "&#x27;") in html, text
     assert html.count("data:image/png;base64,") == 2
     assert "http://" not in html and "https://" not in html and "<script" not in html and "<link" not in html

@@ -26,7 +26,35 @@ from probeplan.io.atomic import (make_output_folder, output_batch, write_csv_ato
                                  write_text_atomic)
 
 __all__ = ["Report", "Table", "write_report", "format_number", "HEAVY_METAL_CAUTION", "LASER_CAUTION",
-           "figure_png_bytes", "plan_report", "report_pdf_bytes"]
+           "figure_png_bytes", "plan_report", "report_pdf_bytes", "column_label"]
+
+#: Unit suffixes of column names and how a reader writes them (longest first).
+_UNIT_SUFFIXES = (
+    ("_mw_per_cm2", "mW/cm²"), ("_j_per_cm2", "J/cm²"),
+    ("_nmol_per_kg", "nmol/kg"), ("_ml_per_kg", "mL/kg"), ("_e_per_s", "e⁻/s"), ("_per_m_cm", "M⁻¹ cm⁻¹"),
+    ("_per_cm", "cm⁻¹"), ("_ul", "µL"), ("_ml", "mL"), ("_um", "µm"), ("_uM", "µM"), ("_mm", "mm"), ("_nm", "nm"),
+    ("_mw", "mW"), ("_min", "min"), ("_s", "s"), ("_h", "h"), ("_g", "g"), ("_e", "e⁻"),
+)
+_WORDS = {"sbr": "SBR", "snr": "SNR", "tbr": "TBR", "mpe": "MPE", "fwhm": "FWHM", "qc": "QC", "rms": "RMS", "od": "OD"}
+
+
+def column_label(name: str) -> str:
+    """A column name as a reader writes it: words, acronyms in capitals, the unit in brackets.
+
+    Examples
+    --------
+    >>> column_label("volume_ul"), column_label("skin_mpe_mw_per_cm2"), column_label("sbr"), column_label("probe")
+    ('volume (µL)', 'skin MPE (mW/cm²)', 'SBR', 'probe')
+    """
+    if " " in name or not name:
+        return name
+    unit = ""
+    for suffix, text in _UNIT_SUFFIXES:
+        if name.endswith(suffix) and len(name) > len(suffix):
+            name, unit = name[: -len(suffix)], text
+            break
+    words = [_WORDS.get(w, w) for w in name.split("_")]
+    return " ".join(words) + (f" ({unit})" if unit else "")
 
 #: Shown whenever a plan uses a Cd- or Pb-containing probe.
 HEAVY_METAL_CAUTION = (
@@ -69,6 +97,8 @@ class Report:
     figures: list[tuple[str, bytes]] = field(default_factory=list)
     assumptions: list[str] = field(default_factory=list)
     extra_files: dict[str, bytes] = field(default_factory=dict)
+    #: The narrative first part (:class:`probeplan.report.protocol.Section` objects), before the results.
+    narrative: list = field(default_factory=list)
 
     def add_table(self, name: str, title: str, rows: list[dict[str, Any]], columns: list[str] | None = None,
                   note: str = "") -> None:
@@ -109,14 +139,22 @@ def format_number(value: float, digits: int = 4) -> str:
     --------
     >>> format_number(0.123456), format_number(1.5e6), format_number(float("inf")), format_number(float("nan"))
     ('0.1235', '1.500e+06', '∞', '–')
+    >>> format_number(2.4000000000000004), format_number(0.0046, 2), format_number(1500.0, 3), format_number(None)
+    ('2.4', '0.0046', '1500', '–')
     """
-    if math.isnan(value):
+    if value is None or math.isnan(value):
         return "–"
     if math.isinf(value):
         return "∞" if value > 0 else "−∞"
     if value != 0 and (abs(value) >= 1e5 or abs(value) < 1e-3):
         return f"{value:.{digits - 1}e}"
-    return f"{value:.{digits}g}"
+    if value == 0:
+        return "0"
+    # fixed notation rounded to ``digits`` significant figures, trailing zeros dropped ('g' would switch to
+    # exponents for 1500 at 3 figures)
+    decimals = max(0, digits - 1 - math.floor(math.log10(abs(value))))
+    text = f"{round(value, decimals):.{decimals}f}"
+    return text.rstrip("0").rstrip(".") if "." in text else text
 
 
 _CSS = """
@@ -131,7 +169,14 @@ td{min-width:4em;max-width:34em} td.num{white-space:nowrap;text-align:right}
 td.fail{background:#f8d7d3;font-weight:600} td.pass{background:#dcefe0}
 figure{margin:1em 0} figcaption{color:#444;font-size:.9em} img{max-width:100%}
 .note{color:#555;font-size:.9em} footer{color:#777;font-size:.85em;margin-top:3em}
+.placeholder{border:1px dashed #8a6d00;background:#fff8d6;padding:.3em .6em;margin:.4em 0}
 """
+
+
+def _placeholder_word() -> str:
+    from probeplan.report.protocol import PLACEHOLDER
+
+    return PLACEHOLDER
 
 
 def render_html(report: Report) -> str:
@@ -145,6 +190,14 @@ def render_html(report: Report) -> str:
         parts.append(f"<p class='sub'>{html.escape(report.subtitle)}</p>")
     for text in [RESEARCH_USE_CAUTION, *report.cautions]:
         parts.append(f"<div class='caution'>{html.escape(text)}</div>")
+    if report.narrative:
+        parts.append("<h2>Protocol</h2>")
+        for sec in report.narrative:
+            parts.append(f"<h3>{html.escape(sec.title)}</h3>")
+            parts += [f"<p>{html.escape(p)}</p>" for p in sec.paragraphs]
+            parts += [f"<p class='placeholder'><b>{html.escape(_placeholder_word())}:</b> {html.escape(p)}</p>"
+                      for p in sec.placeholders]
+        parts.append("<h2>Results</h2>")
     if report.summary:
         parts.append("<h2>Summary</h2><ul>" + "".join(f"<li>{html.escape(s)}</li>" for s in report.summary) + "</ul>")
     for table in report.tables:
@@ -152,7 +205,8 @@ def render_html(report: Report) -> str:
         if table.note:
             parts.append(f"<p class='note'>{html.escape(table.note)}</p>")
         cols = table.cols()
-        parts.append("<div class='scroll'><table><tr>" + "".join(f"<th>{html.escape(c)}</th>" for c in cols) + "</tr>")
+        parts.append("<div class='scroll'><table><tr>" + "".join(f"<th>{html.escape(column_label(c))}</th>"
+                                                                 for c in cols) + "</tr>")
         for row in table.rows:
             cells = []
             for c in cols:
@@ -172,7 +226,7 @@ def render_html(report: Report) -> str:
         parts.append(f"<figure><img alt='{html.escape(caption)}' src='data:image/png;base64,{data}'>"
                      f"<figcaption>{html.escape(caption)}</figcaption></figure>")
     if report.assumptions:
-        parts.append("<h2>Model assumptions</h2><ul>"
+        parts.append("<h2>Assumptions</h2><ul>"
                      + "".join(f"<li>{html.escape(a)}</li>" for a in report.assumptions) + "</ul>")
     parts.append(f"<footer>Written by probeplan {__version__}. {html.escape(RESEARCH_USE_CAUTION)}</footer>")
     parts.append("</body></html>")
@@ -212,6 +266,8 @@ def _write_report_files(report: Report, out: Path) -> dict[str, Path]:
         "cautions": [RESEARCH_USE_CAUTION, *report.cautions],
         "summary": report.summary,
         "tables": {t.name: {"title": t.title, "rows": t.rows, "note": t.note} for t in report.tables},
+        "narrative": [{"title": sec.title, "paragraphs": sec.paragraphs, "to_complete": sec.placeholders}
+                      for sec in report.narrative],
         "assumptions": report.assumptions,
         "probeplan_version": __version__,
     })
@@ -292,50 +348,15 @@ def plan_report(evaluation) -> Report:
                           rep.probe_names, rep.channel_names, depth_mm=depth)
     report.add_figure("Emission spectra with the emission filter bands and the excitation line (left); crosstalk "
                       f"at the target depth ({depth:g} mm) (right).", fig)
-    report.assumptions = list(ev.assumptions)
+    from probeplan.report.protocol import plain_assumptions, protocol_sections
+
+    report.narrative = protocol_sections(ev)
+    report.assumptions = plain_assumptions(ev.assumptions)
     return report
 
 
 def report_pdf_bytes(report: Report) -> bytes:
-    """The report as a PDF (matplotlib): cautions and summary, each table as text, each figure on its own page."""
-    import textwrap
+    """The report as a PDF a committee can read: :func:`probeplan.report.pdf.report_pdf_bytes` (reportlab)."""
+    from probeplan.report.pdf import report_pdf_bytes as _pdf
 
-    import matplotlib.image as mpimg
-    from matplotlib.backends.backend_pdf import PdfPages
-    from matplotlib.figure import Figure
-
-    from probeplan.io.atomic import table_to_csv_text
-
-    buf = io.BytesIO()
-    width = 110
-
-    def text_page(pdf, lines: list[str]) -> None:
-        for start in range(0, max(len(lines), 1), 60):
-            fig = Figure(figsize=(8.27, 11.69))
-            fig.text(0.05, 0.97, "\n".join(lines[start:start + 60]), va="top", ha="left", family="monospace",
-                     fontsize=6.5)
-            pdf.savefig(fig)
-
-    with PdfPages(buf) as pdf:
-        lines = [report.title, report.subtitle, ""]
-        for text in [RESEARCH_USE_CAUTION, *report.cautions, "", *report.summary]:
-            lines += textwrap.wrap(text, width) or [""]
-        text_page(pdf, lines)
-        for table in report.tables:
-            body = [table.title, *textwrap.wrap(table.note, width), ""]
-            for row in table_to_csv_text(table.rows, table.cols()).splitlines():
-                body += textwrap.wrap(row, width) or [""]
-            text_page(pdf, body)
-        for caption, png in report.figures:
-            fig = Figure(figsize=(11.69, 8.27))
-            ax = fig.add_axes((0.02, 0.12, 0.96, 0.86))
-            ax.imshow(mpimg.imread(io.BytesIO(png), format="png"))
-            ax.set_axis_off()
-            fig.text(0.03, 0.08, "\n".join(textwrap.wrap(caption, 150)), va="top", fontsize=8)
-            pdf.savefig(fig)
-        lines = ["Model assumptions", ""]
-        for a in report.assumptions:
-            lines += textwrap.wrap("- " + a, width)
-        lines += ["", f"Written by probeplan {__version__}."]
-        text_page(pdf, lines)
-    return buf.getvalue()
+    return _pdf(report)

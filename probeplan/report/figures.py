@@ -1,9 +1,11 @@
 """Figures shared by the command line, the report and the page (matplotlib, Agg).
 
-The palette is our own colour-blind-safe set: hues chosen far apart in hue and
-lightness so that they stay distinguishable under the common colour-vision
-deficiencies (checked by eye under simulated deuteranopia and protanopia; a
-design choice, not a standard).  Every axis carries its unit.
+Line colours are the Okabe–Ito set (Okabe & Ito, *Color Universal Design*, 2008; Wong,
+Nat. Methods 8, 441, 2011), chosen to stay distinct for readers with the common
+colour-vision deficiencies; the abundance maps and their composite come from
+:mod:`probeplan.unmixing.overlay`.  Every axis carries its unit; axes are linear unless
+the quantity spans orders of magnitude, and then the label says so; tick labels and
+annotations use the report's number formatter (no ``2×10⁰``, no ``0.00`` for 0.0046).
 """
 
 from __future__ import annotations
@@ -14,11 +16,28 @@ from collections.abc import Sequence
 import numpy as np
 
 __all__ = ["PALETTE", "colour", "depth_figure", "spectra_figure", "crosstalk_figure", "channels_figure", "maps_figure",
-           "escaped_spectra_figure",
+           "escaped_spectra_figure", "composite_figure", "phantom_sbr_figure",
            "depth_and_spectra_figure", "new_figure"]
 
-#: Probe colours: deep blue, orange, teal, magenta, ochre, grey-violet, dark green, brick.
-PALETTE = ("#1f4e9c", "#e07b00", "#1b9e8a", "#b8337a", "#c9a227", "#6f6a9b", "#2f6b2f", "#a04a2a")
+#: Line colours on white, Okabe–Ito (blue, orange, bluish green, reddish purple, vermilion, sky blue, black);
+#: yellow is left out, being too pale on white.
+PALETTE = ("#0072B2", "#E69F00", "#009E73", "#CC79A7", "#D55E00", "#56B4E9", "#000000")
+
+
+def _number(value: float, digits: int = 3) -> str:
+    from probeplan.report.document import format_number
+
+    return format_number(float(value), digits)
+
+
+def _plain_ticks(ax, axis: str = "y") -> None:
+    """Tick labels as plain numbers from the report's formatter (a log axis would otherwise print 2×10⁰)."""
+    from matplotlib.ticker import FuncFormatter
+
+    fmt = FuncFormatter(lambda v, _pos: _number(v, 3))
+    target = ax.yaxis if axis == "y" else ax.xaxis
+    target.set_major_formatter(fmt)
+    target.set_minor_formatter(FuncFormatter(lambda v, _pos: ""))
 
 
 def colour(i: int) -> str:
@@ -60,9 +79,16 @@ def _draw_depth(axes, profiles, *, sbr_threshold, target_depth_mm) -> None:
         if target_depth_mm is not None:
             ax.axvline(target_depth_mm, color="0.5", lw=1, ls=":")
     ax_sbr.set_ylabel("SBR = (S + B) / B")
-    ax_sbr.set_yscale("log")
-    ax_snr.set_ylabel("SNR per pixel")
+    # Linear SBR axis: what matters is where each curve crosses the threshold, so the axis stops at a few
+    # times the threshold (shallow SBRs above it are off the top; the table gives them).
+    top = max((float(np.nanmax(p.sbr)) for p in profiles), default=2.0)
+    cap = 5.0 * (sbr_threshold or 2.0)
+    ax_sbr.set_ylim(1.0, min(top, cap) * 1.05 if top > 1.0 else 2.0)
+    if top > cap:
+        ax_sbr.set_title(f"SBR axis cut at {_number(cap, 3)}", fontsize=8, loc="right", color="0.35")
+    ax_snr.set_ylabel("SNR per pixel (log axis: spans decades)")
     ax_snr.set_yscale("log")
+    _plain_ticks(ax_snr)
     ax_blur.set_ylabel("blur FWHM (mm)")
     ax_sbr.legend(fontsize=8)
 
@@ -75,10 +101,18 @@ def spectra_figure(wavelength_nm, emissions: Sequence[tuple[str, np.ndarray]], f
         ax = axes[0][0]
     fig = ax.figure
     wl = np.asarray(wavelength_nm)
+    # Filter labels sit in a band above the curves (emission peaks are 1, transmissions at most 1), on two
+    # alternating rows when neighbouring filters are close, so no label covers a peak or another label.
+    span = float(wl[-1] - wl[0]) or 1.0
+    last_x = {0: -np.inf, 1: -np.inf}
     for j, (name, t) in enumerate(filters):
+        t = np.asarray(t, dtype=float)
         ax.fill_between(wl, 0, t, color="0.6", alpha=0.18 + 0.07 * (j % 2), step=None, lw=0)
-        peak = int(np.argmax(t))
-        ax.text(wl[peak], float(t[peak]) * 1.02, name, ha="center", va="bottom", fontsize=8, color="0.25")
+        band = wl[t >= 0.5 * float(t.max())] if float(t.max()) > 0 else wl[[int(np.argmax(t))]]
+        x = float(np.clip((band[0] + band[-1]) / 2, wl[0] + 0.04 * span, wl[-1] - 0.04 * span))
+        row = 0 if x - last_x[0] > 0.09 * span else 1
+        last_x[row] = x
+        ax.text(x, 1.04 + 0.085 * row, name, ha="center", va="bottom", fontsize=8, color="0.25")
     for i, (name, e) in enumerate(emissions):
         m = float(np.max(e)) or 1.0
         ax.plot(wl, np.asarray(e) / m, color=colour(i), lw=2, label=name)
@@ -86,9 +120,10 @@ def spectra_figure(wavelength_nm, emissions: Sequence[tuple[str, np.ndarray]], f
         ax.axvline(excitation_nm, color="#7a0000", lw=1.5, ls="--", label=f"excitation {excitation_nm:g} nm")
     ax.set_xlabel("wavelength (nm)")
     ax.set_ylabel("emission (peak = 1) / filter transmission")
-    ax.set_ylim(0, 1.15)
+    ax.set_ylim(0, 1.25)
+    ax.set_yticks([0, 0.25, 0.5, 0.75, 1.0])
     ax.grid(alpha=0.3)
-    ax.legend(fontsize=8, loc="upper right")
+    ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     return fig
 
 
@@ -101,7 +136,7 @@ def crosstalk_figure(crosstalk, probe_names: Sequence[str], channel_names: Seque
     x = np.asarray(crosstalk, dtype=float)
     im = ax.imshow(x, cmap="cividis", vmin=0.0, vmax=1.0, aspect="auto")
     for (r, c), v in np.ndenumerate(x):
-        ax.text(c, r, f"{v:.2f}" if math.isfinite(v) else "–", ha="center", va="center", fontsize=9,
+        ax.text(c, r, _number(v, 2) if math.isfinite(v) else "–", ha="center", va="center", fontsize=9,
                 color="white" if v < 0.55 else "black")
     ax.set_xticks(range(len(probe_names)), probe_names, rotation=20, ha="right", fontsize=8)
     ax.set_yticks(range(len(channel_names)), channel_names, fontsize=8)
@@ -127,32 +162,18 @@ def channels_figure(wavelength_nm, probes, channels, crosstalk, probe_names, cha
     return fig
 
 
-def maps_figure(maps, titles: Sequence[str], unit: str, *, cmap: str = "magma"):
-    """One image per map (first plane of Z/T stacks), each with its own colour bar labelled ``unit``.
+def maps_figure(maps, titles: Sequence[str], unit, *, cmap: str = "magma", **kwargs):
+    """Small multiples of abundance (or error) maps: :func:`probeplan.unmixing.overlay.maps_figure`."""
+    from probeplan.unmixing.overlay import maps_figure as _maps
 
-    The colour scale runs from min(0, minimum) to the 99.5th percentile, so a
-    few bright pixels do not wash out the rest.
-    """
-    n = len(titles)
-    cols = min(n, 4)
-    rows = (n + cols - 1) // cols
-    fig, axes = new_figure(rows, cols, width=3.4 * cols, height=3.0)
-    for i, ax in enumerate(axes.ravel()):
-        if i >= n:
-            ax.set_axis_off()
-            continue
-        m = np.asarray(maps[i], dtype=np.float64)
-        while m.ndim > 2:
-            m = m[0]
-        finite = m[np.isfinite(m)]
-        hi = float(np.percentile(finite, 99.5)) if finite.size else 1.0
-        im = ax.imshow(m, cmap=cmap, vmin=min(0.0, float(finite.min())) if finite.size else 0.0,
-                       vmax=hi if hi > 0 else None, interpolation="nearest")
-        ax.set_title(titles[i], fontsize=9)
-        ax.set_xlabel("x (pixel)")
-        ax.set_ylabel("y (pixel)")
-        fig.colorbar(im, ax=ax, label=unit, shrink=0.85)
-    return fig
+    return _maps(maps, titles, unit, cmap=cmap, **kwargs)
+
+
+def composite_figure(abundances, names: Sequence[str], **kwargs):
+    """The colour-blind-safe composite: :func:`probeplan.unmixing.overlay.composite_figure`."""
+    from probeplan.unmixing.overlay import composite_figure as _composite
+
+    return _composite(abundances, names, **kwargs)
 
 
 def escaped_spectra_figure(profiles: Sequence, *, depths_mm: Sequence[float] = (0.5, 2.0, 5.0, 8.0)):
@@ -177,7 +198,7 @@ def _draw_spectra(axes, profiles, depths_mm) -> None:
             peak = float(spec.max())
             if peak > 0:
                 alpha = 1.0 - 0.7 * j / max(1, len(chosen) - 1)
-                ax.plot(wl, spec / peak, color=colour(i), alpha=alpha, label=f"{p.depth_mm[row]:g} mm")
+                ax.plot(wl, spec / peak, color=colour(i), alpha=alpha, label=f"{_number(p.depth_mm[row], 3)} mm")
         ax.axvline(float(p.escaped_peak_nm[0]), color="0.4", ls=":", lw=1)
         ax.set_title(p.probe, fontsize=9)
         ax.set_xlabel("wavelength (nm)")
@@ -196,4 +217,32 @@ def depth_and_spectra_figure(profiles: Sequence, sbr_threshold: float | None = 2
     top, bottom = fig.subfigures(2, 1)
     _draw_depth(top.subplots(1, 3), profiles, sbr_threshold=sbr_threshold, target_depth_mm=target_depth_mm)
     _draw_spectra(np.atleast_1d(bottom.subplots(1, n)), profiles, (0.5, 2.0, 5.0, 8.0))
+    return fig
+
+
+
+def phantom_sbr_figure(rows: Sequence[dict], *, sbr_threshold: float | None = 2.0):
+    """SBR against depth in the phantom (dashed) and in the plan's tissue (solid), one colour per probe.
+
+    ``rows`` are :attr:`probeplan.study.phantom.PlanPhantom.sbr_curve` rows (probe, depth_mm,
+    sbr_phantom, sbr_tissue).  Linear axes: the comparison is read where the curves cross
+    the threshold.
+    """
+    fig, axes = new_figure(1, 1, width=8.0, height=3.8)
+    ax = axes[0][0]
+    probes = list(dict.fromkeys(r["probe"] for r in rows))
+    for i, name in enumerate(probes):
+        sub = [r for r in rows if r["probe"] == name]
+        d = [r["depth_mm"] for r in sub]
+        ax.plot(d, [r["sbr_tissue"] for r in sub], color=colour(i), lw=2, label=f"{name}: tissue")
+        ax.plot(d, [r["sbr_phantom"] for r in sub], color=colour(i), lw=1.5, ls="--", label=f"{name}: phantom")
+    if sbr_threshold is not None:
+        ax.axhline(sbr_threshold, color="0.3", lw=1, ls=":", label=f"SBR {sbr_threshold:g}")
+    top = max((max(r["sbr_tissue"], r["sbr_phantom"]) for r in rows), default=2.0)
+    cap = 5.0 * (sbr_threshold or 2.0)
+    ax.set_ylim(1.0, min(top, cap) * 1.05 if top > 1.0 else 2.0)
+    ax.set_xlabel("inclusion depth (mm)")
+    ax.set_ylabel("SBR = (S + B) / B")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     return fig

@@ -17,7 +17,7 @@ from probeplan.report.document import LASER_CAUTION, Report, render_html
 from probeplan.unmixing.pipeline import DEPTH_COMPARISON_CAUTION
 from probeplan.report.figures import colour, new_figure
 
-__all__ = ["study_report", "write_study_report", "ANIMAL_CAUTION", "MAX_PANELS"]
+__all__ = ["study_report", "write_study_report", "ANIMAL_CAUTION", "MAX_PANELS", "group_time_course_figure"]
 
 #: Shown on every study report.
 ANIMAL_CAUTION = (
@@ -134,6 +134,42 @@ def kinetics_figure(measurements, kinetics, *, background="background", unit="")
         ax.set_ylabel(f"mean ({unit})" if unit else "mean")
     for j in range(len(panels), rows * cols):
         axes[j // cols][j % cols].set_visible(False)
+    return fig
+
+
+def group_time_course_figure(measurements, *, roi: str, component: str, quantity: str = "tbr", unit: str = "counts"):
+    """One ROI and component: each animal over time (thin lines) with each group's mean ± SE at each time.
+
+    ``measurements`` is the study's measurements table (a DataFrame with animal, group,
+    time_h, roi, component and the ``quantity`` column: ``"mean"`` or ``"tbr"``).  Linear
+    axes; group colours from :data:`the palette`; the mean ± standard error of the animals at
+    each time is drawn slightly to the right of the points so that neither hides the other.
+    """
+    import pandas as pd
+
+    df = measurements[(measurements["roi"] == roi) & (measurements["component"] == component)]
+    df = df[pd.notna(df[quantity])]
+    fig, axes = new_figure(1, 1, width=8.0, height=4.2)
+    ax = axes[0][0]
+    times = np.sort(df["time_h"].unique())
+    span = float(times[-1] - times[0]) if len(times) > 1 else 1.0
+    for i, (group, g) in enumerate(df.groupby("group", sort=True)):
+        c = colour(i)
+        for _animal, a in g.groupby("animal"):
+            a = a.sort_values("time_h")
+            ax.plot(a["time_h"], a[quantity], color=c, lw=0.7, alpha=0.45, marker="o", ms=3.5)
+        stats = g.groupby("time_h")[quantity].agg(["mean", "std", "count"])
+        se = stats["std"] / np.sqrt(stats["count"])
+        ax.errorbar(stats.index + 0.012 * span, stats["mean"], yerr=se.fillna(0.0), color=c, lw=2.0, marker="s",
+                    ms=6, capsize=4, label=f"{group} (n = {g['animal'].nunique()}): mean ± SE")
+    label = {"tbr": "target-to-background ratio", "mean": f"mean abundance ({unit})"}.get(quantity, quantity)
+    ax.set_xlabel("time after injection (h)")
+    ax.set_ylabel(label)
+    ax.set_title(f"{component} in {roi}", fontsize=10)
+    if quantity == "tbr":
+        ax.axhline(1.0, color="0.5", lw=0.8, ls=":")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     return fig
 
 

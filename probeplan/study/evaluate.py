@@ -412,7 +412,7 @@ def evaluate_plan(plan: Plan, rules: Rules | None = None) -> Evaluation:
         notes += animal_notes
     for w in caught:
         if issubclass(w.category, ProbeplanWarning):
-            assumptions.append(f"{w.category.__name__}: {w.message}")
+            assumptions.append(str(w.message))
         else:
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     assumptions = list(dict.fromkeys([*SCHEDULE_NOTES, *notes, *predictions["notes"], *assumptions]))

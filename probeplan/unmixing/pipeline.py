@@ -649,7 +649,8 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
                gain_e_per_count: float = 1.0, read_noise_e: float = 0.0, variance_floor_counts: float = 1.0,
                rois: Sequence | None = None, labels_path=None, roi_background: str = "background",
                memory_limit_mb: float = DEFAULT_MEMORY_MB, scheduler: str | None = None, engine: str = "auto",
-               extra_inputs: Sequence = (), progress=None) -> FileResult:
+               extra_inputs: Sequence = (), progress=None,
+               abundance_unit: str | Sequence[str] = "counts") -> FileResult:
     """Unmix a TIFF/OME-TIFF stack file by blocks of rows and write all outputs atomically.
 
     Writes the abundance OME-TIFF (float32, component names, pixel size carried over) and,
@@ -669,12 +670,17 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
         Needed only when the file does not say.
     dark_path, flat_path : path-like, optional
         Dark frame and flat field stacks of the same shape as the stack.
-    rois : sequence of str or Roi, optional
-        Rectangles ``"name:x0,y0,x1,y1"``.
+    rois : sequence of str, Roi or RoiShape, optional
+        Rectangles ``"name:x0,y0,x1,y1"``, ROI objects, or drawn shapes
+        (:class:`probeplan.unmixing.shapes.RoiShape`: rectangle, ellipse, polygon).
     labels_path : path-like, optional
         A label TIFF (Y, X); each non-zero label is an ROI.
     roi_background : str
         Name of the background ROI for the target-to-background ratio.
+    abundance_unit : str or sequence of str
+        The abundances' unit (one, or one per component) for the overlay's colour bars:
+        ``"counts"`` for references normalised to unit sum, ``"µM"`` for references in
+        counts per µM (a calibration).
     memory_limit_mb : float
         Working-memory bound for the blocks.
     scheduler : str, optional
@@ -704,6 +710,7 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     from probeplan.unmixing.overlay import downsample_mean, overlay_factor, write_overlay_png
     from probeplan.unmixing.references import abundance_unit
     from probeplan.unmixing.roi import Roi, RoiAccumulator, parse_roi, rois_from_labels, write_roi_csv
+    from probeplan.unmixing.shapes import RoiShape, rectangle_from_spec, shapes_to_rois
 
     if method not in METHODS:
         raise input_error("method", f"{method!r} is not known", f"choose one of {', '.join(METHODS)}")
@@ -739,8 +746,16 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
             raise input_error(str(labels_path), f"shape {labels.shape}, image is {(ny, nx)}",
                               "give a label image of the stack's Y x X size")
         roi_list += rois_from_labels(labels)
+    drawn = []  # outlines for the overlay PNG
     for spec in rois or ():
-        roi_list.append(spec if isinstance(spec, Roi) else parse_roi(spec, shape=(ny, nx)))
+        if isinstance(spec, RoiShape):
+            drawn.append(spec)
+            roi_list += shapes_to_rois([spec], (ny, nx))
+            continue
+        roi = spec if isinstance(spec, Roi) else parse_roi(spec, shape=(ny, nx))
+        roi_list.append(roi)
+        if roi.rect is not None:
+            drawn.append(rectangle_from_spec(roi))
     paths = output_paths(out_path, roi=bool(roi_list))
     inputs = [info.path, *(r.info.path for r in aux.values()), *extra_inputs]
     if labels_path is not None:
@@ -816,7 +831,8 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
         for w in writers:
             w.commit()
         write_json_atomic(paths["qc"], qc_summary)
-        write_overlay_png(paths["overlay"], canvas, names, title=info.path.name, pixel_size_um=info.pixel_size_um)
+        write_overlay_png(paths["overlay"], canvas, names, title=info.path.name, pixel_size_um=info.pixel_size_um,
+                          rois=drawn, scale=factor, unit=abundance_unit)
         roi_rows = None
         if roi_acc is not None:
             roi_rows = roi_acc.rows(roi_background)

@@ -19,7 +19,7 @@ from __future__ import annotations
 import os
 import re
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -57,9 +57,13 @@ class Roi:
     ellipse: tuple[float, float, float, float] | None = None
     polygon: tuple[tuple[float, float], ...] | None = None
     labels_file: str | None = None
+    #: A drawn region's own pixel mask (Y, X), from :func:`probeplan.unmixing.shapes.shapes_to_rois`.
+    pixel_mask: np.ndarray | None = field(default=None, compare=False, repr=False)
 
     def mask_rows(self, r0: int, r1: int, width: int, labels=None) -> np.ndarray:
         """Boolean mask of rows ``r0:r1`` (all ``width`` columns)."""
+        if self.pixel_mask is not None:
+            return np.asarray(self.pixel_mask[r0:r1, :width], dtype=bool)
         if self.rect is not None:
             x0, y0, x1, y1 = self.rect
             m = np.zeros((r1 - r0, width), bool)

@@ -34,7 +34,7 @@ def _measure(view: str, key: str, kind: str, new_value, old_value) -> dict[str, 
     at = AppTest.from_file(str(APP), default_timeout=120)
     at.run()
     if view != "depth":
-        at.sidebar.radio(key="w_view").set_value(view).run()
+        at.switch_page(f"view_{view}.py").run()
     widget = getattr(at, kind)(key=key)
     warm = _timed(lambda: widget.set_value(new_value).run())  # warm-up: first model run at the new value
     _timed(lambda: getattr(at, kind)(key=key).set_value(old_value).run())
