@@ -26,7 +26,6 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-import tifffile
 
 from probeplan.cli.main import main
 from probeplan.errors import InputError

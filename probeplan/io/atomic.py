@@ -61,6 +61,7 @@ __all__ = [
     "locked",
     "update_json_file",
     "STAGING_PREFIX",
+    "signals_held",
 ]
 
 
@@ -290,6 +291,10 @@ class OutputBatch:
         """Move every staged file onto its target; return the targets."""
         policy = _POLICY.get()
         done: list[Path] = []
+        with signals_held():
+            return self._commit(policy, done)
+
+    def _commit(self, policy: OutputPolicy | None, done: list[Path]) -> list[Path]:
         try:
             for target, staged in self._staged.items():
                 _move_into_place(staged, target, may_replace=policy is None or policy.may_replace(target))
@@ -322,6 +327,23 @@ class OutputBatch:
         for path in self._staging.values():
             shutil.rmtree(path, ignore_errors=True)
         self._staging.clear()
+
+
+@contextlib.contextmanager
+def signals_held() -> Iterator[None]:
+    """Hold SIGINT and SIGTERM back while a group is moved into place and recorded (delivered right after)."""
+    import signal
+    import threading
+
+    held = {signal.SIGINT, signal.SIGTERM}
+    if not hasattr(signal, "pthread_sigmask") or threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = signal.pthread_sigmask(signal.SIG_BLOCK, held)
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, previous)
 
 
 def _move_into_place(staged: Path, target: Path, *, may_replace: bool) -> None:

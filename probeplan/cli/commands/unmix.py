@@ -145,7 +145,7 @@ def run(args: argparse.Namespace) -> int:
     from probeplan.cli.common import print_json, print_table
     from probeplan.errors import input_error
     from probeplan.io.stacks import open_stack
-    from probeplan.io.atomic import current_policy, output_batch, readable_path
+    from probeplan.io.atomic import current_policy, output_batch, readable_path, signals_held
     from probeplan.unmixing.references import read_references_csv
     from probeplan.unmixing.pipeline import DEFAULT_MEMORY_MB, unmix_file
 
@@ -230,54 +230,58 @@ def run(args: argparse.Namespace) -> int:
     if created is not None:
         out.mkdir(parents=True, exist_ok=True)
     previous = signal.signal(signal.SIGTERM, _terminate)
+    run_batch = None
     try:
-        for s, target in targets:
-            key = s.name
-            t0 = time.perf_counter()
-            if args.resume and _is_done(manifest["entries"].get(key), s, settings):
-                summary.append({"stack": key, "status": "skipped (done)", "pixels": "", "constrained": "",
-                                "saturated": "", "invalid": "", "residual_rms": "", "seconds": 0.0})
-                continue
-            with open_stack(s, channel_axis=args.channel_axis) as r:
-                n_rows = r.info.n_rows
-            with output_batch() as batch:
-                with tqdm(total=n_rows, desc=key, unit="row", disable=None if not args.json else True,
-                          file=sys.stderr, leave=False) as bar:
-                    result = unmix_file(
-                        s, refs, target, method=args.method, channel_axis=args.channel_axis, dark_path=args.dark,
-                        flat_path=args.flat, offset=args.offset, saturation=args.saturation,
-                        gain_e_per_count=args.gain, read_noise_e=args.read_noise, rois=rect_rois,
-                        labels_path=label_files[0] if label_files else None, roi_background=args.roi_background,
-                        memory_limit_mb=args.memory_mb if args.memory_mb is not None else DEFAULT_MEMORY_MB,
-                        scheduler=args.scheduler, extra_inputs=all_inputs, progress=bar.update,
-                    )
-                if calibration is not None:
-                    from probeplan.cli.common import model_notes
-                    from probeplan.study.calibration import calibrate_outputs
+        with output_batch() as run_batch:  # the run's batch; each stack is committed in turn
+            for s, target in targets:
+                key = s.name
+                t0 = time.perf_counter()
+                if args.resume and _is_done(manifest["entries"].get(key), s, settings):
+                    summary.append({"stack": key, "status": "skipped (done)", "pixels": "", "constrained": "",
+                                    "saturated": "", "invalid": "", "residual_rms": "", "seconds": 0.0})
+                    continue
+                with open_stack(s, channel_axis=args.channel_axis) as r:
+                    n_rows = r.info.n_rows
+                with output_batch() as batch:
+                    with tqdm(total=n_rows, desc=key, unit="row", disable=None if not args.json else True,
+                              file=sys.stderr, leave=False) as bar:
+                        result = unmix_file(
+                            s, refs, target, method=args.method, channel_axis=args.channel_axis, dark_path=args.dark,
+                            flat_path=args.flat, offset=args.offset, saturation=args.saturation,
+                            gain_e_per_count=args.gain, read_noise_e=args.read_noise, rois=rect_rois,
+                            labels_path=label_files[0] if label_files else None, roi_background=args.roi_background,
+                            memory_limit_mb=args.memory_mb if args.memory_mb is not None else DEFAULT_MEMORY_MB,
+                            scheduler=args.scheduler, extra_inputs=all_inputs, progress=bar.update,
+                        )
+                    if calibration is not None:
+                        from probeplan.cli.common import model_notes
+                        from probeplan.study.calibration import calibrate_outputs
 
-                    with model_notes() as cal_notes:
-                        cal = calibrate_outputs(result.outputs, calibration, depth_mm=args.depth_mm, rois=rect_rois,
-                                                background=args.roi_background)
-                    result.outputs.update({k: v for k, v in cal.items() if k.startswith("uM")})
-                    calibration_notes.extend(cal_notes)
-                    calibration_flags[key] = cal["n_flagged"]
-                digests = {str(p): _sha256(readable_path(p)) for p in result.outputs.values()}
-                # recorded as being written first: a run killed while moving the files in leaves an
-                # entry that --resume redoes (and whose files it may replace), never one it skips
-                _record(manifest_path, key, {"status": "writing", "outputs": dict.fromkeys(digests)})
-                batch.commit()
-            _record(manifest_path, key, {"status": "done", "input_sha256": _sha256(s), "settings_sha256": settings,
-                                         "outputs": digests})
-            qc = result.qc
-            summary.append({
-                "stack": key, "status": "done", "pixels": qc["n_pixels"],
-                "constrained": round(qc["fraction_constrained"], 4), "saturated": qc["n_saturated"],
-                "invalid": qc["n_invalid"], "residual_rms": qc["residual_rms"]["rms"],
-                "seconds": round(time.perf_counter() - t0, 2), "outputs": {k: str(v) for k, v in result.outputs.items()},
-                "condition_number": qc["condition_number"], "mean_abundance": qc["mean_abundance"],
-            })
+                        with model_notes() as cal_notes:
+                            cal = calibrate_outputs(result.outputs, calibration, depth_mm=args.depth_mm, rois=rect_rois,
+                                                    background=args.roi_background)
+                        result.outputs.update({k: v for k, v in cal.items() if k.startswith("uM")})
+                        calibration_notes.extend(cal_notes)
+                        calibration_flags[key] = cal["n_flagged"]
+                    digests = {str(p): _sha256(readable_path(p)) for p in result.outputs.values()}
+                    # recorded as being written first: a run killed while moving the files in leaves an
+                    # entry that --resume redoes (and whose files it may replace), never one it skips
+                    _record(manifest_path, key, {"status": "writing", "outputs": dict.fromkeys(digests)})
+                    with signals_held():  # an interrupt waits until the stack is moved in and recorded as done
+                        batch.commit()
+                        _record(manifest_path, key, {"status": "done", "input_sha256": _sha256(s),
+                                                     "settings_sha256": settings, "outputs": digests})
+                qc = result.qc
+                summary.append({
+                    "stack": key, "status": "done", "pixels": qc["n_pixels"],
+                    "constrained": round(qc["fraction_constrained"], 4), "saturated": qc["n_saturated"],
+                    "invalid": qc["n_invalid"], "residual_rms": qc["residual_rms"]["rms"],
+                    "seconds": round(time.perf_counter() - t0, 2), "outputs": {k: str(v) for k, v in result.outputs.items()},
+                    "condition_number": qc["condition_number"], "mean_abundance": qc["mean_abundance"],
+                })
     except BaseException:
-        if created is not None and not any(row["status"] == "done" for row in summary):
+        # remove a folder this command created unless some stack was moved into it
+        if created is not None and not (run_batch is not None and run_batch.committed):
             import shutil
 
             shutil.rmtree(created, ignore_errors=True)
