@@ -402,7 +402,7 @@ def test_unmix_under_abuse_one_line_each_nothing_outside_the_session(tmp_path, m
 def test_separate_with_references_from_control_stacks():
     """The demo's single-probe and unlabelled controls give the references on the page."""
     demo = Path(__file__).resolve().parents[1] / "demo_tissue"
-    at = _view(_app(), "separate")
+    at = _view(_app(), "unmix")
     at.radio(key="w_sep_refs_from").set_value("control stacks").run()
     at.file_uploader(key="up_stack").set_value(("stack.tif", (demo / "stack.tif").read_bytes(), "image/tiff"))
     at.file_uploader(key="up_controls").set_value([
