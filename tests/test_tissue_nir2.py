@@ -174,3 +174,14 @@ def test_user_tissue_range_is_validated():
     with pytest.raises(InputError, match="scattering_range_nm"):
         tissue.Tissue("x", blood_fraction=0.0, saturation=0.0, water_fraction=0.5, a_per_cm=10.0, b=1.0,
                       scattering_range_nm=(900.0, 500.0))
+
+
+def test_a_users_fat_spectrum_extends_the_fat_presets(_isolated_user_library):
+    # Beyond 1098 nm the user supplies the fat spectrum (their own measurement or a published one they choose).
+    folder = _isolated_user_library / "spectra" / "absorption"
+    folder.mkdir(parents=True)
+    (folder / "fat.csv").write_text("# my lab's lard measurement (example)\nwavelength_nm,fat\n400,0.1\n1800,0.3\n")
+    t = tissue.tissue_preset("subcutaneous fat")
+    lean = t.with_composition(fat_fraction=0.0)
+    expected = t.fat_fraction * (0.1 + 0.2 * (1300.0 - 400.0) / 1400.0)
+    assert float(t.mu_a_per_cm(1300.0) - lean.mu_a_per_cm(1300.0)) == pytest.approx(expected)

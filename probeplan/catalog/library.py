@@ -171,9 +171,12 @@ def _shipped_entries() -> list[LibraryEntry]:
         details = (
             ("blood_fraction", f"{t.blood_fraction:g}"),
             ("saturation", f"{t.saturation:g}"),
-            ("water_fraction", f"{t.water_fraction:g}"),
+            ("water_fraction", f"{t.water_fraction:g} (outside the blood)"),
+            ("fat_fraction", f"{t.fat_fraction:g}"),
             ("melanin_fraction", f"{t.melanin_fraction:g}"),
             ("scattering", f"mu_s' = {t.a_per_cm:g} (lambda/500 nm)^-{t.b:g} cm^-1"),
+            ("scattering_range_nm", "{:g}-{:g} nm measured; beyond: b_Mie = {:g}".format(
+                *(t.scattering_range_nm or (float("nan"), float("nan"))), t.long_wavelength_b())),
             ("refractive_index", f"{t.refractive_index:g} (common practice)"),
             ("composition_source", t.sources.get("composition_source", "")),
         )

@@ -560,7 +560,12 @@ def tissue_preset(name: str) -> Tissue:
 
     presets = _presets()
     if name in presets:
-        return _tissue_from_mapping(name, presets[name])
+        preset = _tissue_from_mapping(name, presets[name])
+        if preset.fat_fraction > 0:  # a user's fat spectrum (library spectra/absorption, column 'fat') replaces ours
+            fat = library.user_spectra("absorption").get("fat")
+            if fat is not None:
+                preset = preset.with_composition(fat_absorption=fat)
+        return preset
     user_names = library.user_tissue_names()
     if name in user_names:
         return library.user_tissue(name)
