@@ -18,7 +18,7 @@ import warnings
 import numpy as np
 import pytest
 
-from probeplan.errors import ModelValidityWarning, ProbeAbsorptionWarning
+from probeplan.errors import InputError, ModelValidityWarning, ProbeAbsorptionWarning
 from probeplan.model import dots, optics, transport
 from probeplan.model.fluorescence import (
     PROBE_ABSORPTION_WARN_FRACTION,
@@ -56,6 +56,11 @@ def test_probe_absorption_is_ln10_epsilon_c(nir2):
     assert float(probe_mu_a_per_cm(probe, 808.0, 0.2)) == pytest.approx(math.log(10.0) * eps * 0.2e-6, rel=1e-12)
     # Beyond the first exciton (the Stokes-shifted emission side) the model says nothing: taken as 0.
     assert float(probe_mu_a_per_cm(probe, probe.exciton_peak_nm + 20.0, 1.0)) == 0.0
+    for bad in (float("nan"), -1.0):
+        with pytest.raises(InputError):
+            probe_mu_a_per_cm(probe, bad, 1.0)
+    with pytest.raises(InputError, match="concentration_uM"):
+        probe_mu_a_per_cm(probe, 808.0, float("inf"))
 
 
 def test_background_uptake_lowers_the_fluence_as_a_higher_mu_a_does(nir2):

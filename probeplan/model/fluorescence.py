@@ -154,8 +154,10 @@ def probe_mu_a_per_cm(probe, wavelength_nm, concentration_uM: float) -> np.ndarr
     >>> round(float(probe_mu_a_per_cm(p, 500.0, 1.0)), 4)   # ln(10) x 1e5 /M/cm x 1e-6 M
     0.2303
     """
+    from probeplan.model.spectra import as_wavelengths_nm
+
     shape = np.shape(wavelength_nm)
-    wl = np.atleast_1d(np.asarray(wavelength_nm, dtype=np.float64)).ravel()
+    wl = np.atleast_1d(as_wavelengths_nm(wavelength_nm)).ravel()
     conc = positive_number("concentration_uM", concentration_uM, allow_zero=True)
     out = np.zeros(wl.shape)
     if conc == 0:
