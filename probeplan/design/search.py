@@ -557,7 +557,7 @@ def design(
         var = (m.sum(axis=1) * conc + back[s, fi] + upt[s][np.ix_(pi, fi)].sum(axis=0)) / t + read[fi] ** 2 / t**2
         var = np.maximum(var, VAR_FLOOR)
         snr = tuple(float(v) for v in out.snr[rank])
-        full_well = np.array([filter_cams[f].full_well_e for f in fi])
+        full_well = np.array([filter_cams[f].binned_full_well_e for f in fi])  # per binned pixel
         candidates.append(DesignCandidate(
             rank=rank + 1, source=srcs[s].name, source_nm=float(srcs[s].centre_nm),
             irradiance_mw_per_cm2=float(irr[s]), probes=tuple(probes[p].name for p in pi),

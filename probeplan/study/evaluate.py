@@ -703,7 +703,7 @@ def _imaging(plan: Plan, model: PlanModel) -> dict[str, Any]:
         if prof.sbr[at] < DEFAULT_SBR_THRESHOLD:
             problems.append(f"{prof.probe}: predicted SBR {float(prof.sbr[at]):.2f} at {depth[at]:g} mm is below "
                             f"{DEFAULT_SBR_THRESHOLD:g} (common practice for 'visible above background', not a standard)")
-    full_well = float(model.camera.full_well_e)
+    full_well = float(model.camera.binned_full_well_e)  # one binned pixel: digital or charge binning
     conc = tgt["concentration_uM"]
     ch_rows = []
     for c, ch in enumerate(model.channels):
