@@ -189,8 +189,6 @@ def generate_demo_study(folder: str | Path, plan=None) -> Path:
     """
     import tifffile
 
-    from probeplan.io.atomic import write_text_atomic
-    from probeplan.io.stacks import write_stack
     from probeplan.study.plan import load_plan
     from probeplan.unmixing.synthetic import DEMO_SEED, simulate_counts
 
@@ -218,9 +216,12 @@ def generate_demo_study(folder: str | Path, plan=None) -> Path:
                     rows.append(f"{animal},{group},{t:g},{name},{ch}")
             else:
                 name = f"{stem}.ome.tif"
-                write_stack(folder / name, stack, channel_names=channel_names, dtype=np.uint16)
+                tifffile.imwrite(folder / name, stack, ome=True, photometric="minisblack",
+                                 metadata={"axes": "CYX", "Channel": {"Name": channel_names}})
                 rows.append(f"{animal},{group},{t:g},{name},")
-    return write_text_atomic(folder / "study.csv", "\n".join(rows) + "\n")
+    # Plain writes, not the staged output helpers: these are the study's inputs, read back at once.
+    (folder / "study.csv").write_text("\n".join(rows) + "\n", encoding="utf-8")
+    return folder / "study.csv"
 
 
 def demo_study_truth(plan=None):
