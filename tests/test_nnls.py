@@ -161,3 +161,54 @@ def test_property_matches_scipy(params):
     for engine in ENGINES:
         x, _ = nnls_pixels(M, Y, engine=engine)
         _assert_close(x, _scipy(M, Y))
+
+
+@pytest.mark.parametrize(("C", "K"), [(8, 4), (12, 8), (16, 7)])
+def test_half_absent_probes_match_scipy(C, K):
+    # the hard case of real images: half the probes absent from half the pixels, so most of those
+    # pixels need several exchanges of the passive set (tabulated path, K <= 8)
+    rng = np.random.default_rng(K)
+    M = _gaussian_references(C, K, rng)
+    X = rng.gamma(2.0, 300.0, (K, 3000))
+    X[K // 2 :, :1500] = 0.0
+    Y = rng.poisson(M @ X).astype(np.float32)
+    x, status = nnls_pixels(M, Y)
+    assert (status[:1500] == STATUS_CONSTRAINED).mean() > 0.5
+    _assert_close(x, _scipy(M, Y))
+
+
+def test_passive_set_table_against_lstsq():
+    # each tabulated matrix turns the unconstrained solution into the least-squares solution on
+    # its passive set and the gradient off it; checked with numpy.linalg.lstsq on the columns of P
+    from probeplan.unmixing.nnls import _passive_set_table
+
+    rng = np.random.default_rng(8)
+    M = rng.random((9, 5))
+    y = rng.normal(0, 1, 9)
+    xu = np.linalg.lstsq(M, y, rcond=None)[0]
+    T = _passive_set_table(M.T @ M)
+    for mask in range(1 << 5):
+        sel = ((mask >> np.arange(5)) & 1).astype(bool)
+        xp = np.zeros(5)
+        if sel.any():
+            xp[sel] = np.linalg.lstsq(M[:, sel], y, rcond=None)[0]
+        v = T[mask] @ xu
+        np.testing.assert_allclose(v[sel], xp[sel], rtol=1e-9, atol=1e-12)
+        np.testing.assert_allclose(v[~sel], (M.T @ (y - M @ xp))[~sel], rtol=1e-9, atol=1e-12)
+
+
+def test_fallback_lawson_hanson_pixel_matches_scipy():
+    # the path a pixel takes if block principal pivoting does not settle (a safeguard that the
+    # data above never reach): Lawson-Hanson from b = Mᵀy, checked against scipy.optimize.nnls
+    from probeplan.unmixing.nnls import _lawson_hanson_pixel
+
+    rng = np.random.default_rng(9)
+    M = rng.random((7, 4))
+    Y = rng.normal(0, 1, (7, 50))
+    K = 4
+    for col in range(Y.shape[1]):
+        x = np.empty(K)
+        _lawson_hanson_pixel(Y, col, np.ascontiguousarray(M.T), M.T @ M, 1e-13, np.abs(M).sum(axis=0).max(), 12,
+                             x, np.zeros(K, np.bool_), np.empty(K), np.empty(K), np.empty((K, K)),
+                             np.empty(K, np.int64), np.empty(7), np.empty(K))
+        _assert_close(x[:, None], _scipy(M, Y[:, col : col + 1]))

@@ -10,11 +10,17 @@ Two engines give the same answer (both in float64 arithmetic whatever the input 
 ``"numba"``
     A compiled kernel.  Per block of pixels it computes the unconstrained solution
     ``x = M⁺ y`` (vectorised over pixels); where every component is ``>= 0`` that *is*
-    the NNLS optimum.  Other pixels are solved exactly: first the passive set
-    ``{k: x_k > 0}`` is tried and accepted when it satisfies the Karush–Kuhn–Tucker
-    conditions; otherwise the Lawson–Hanson active-set method runs on ``G`` and ``Mᵀy``
-    (any ``K``), and, should it not converge within ``3K`` steps on a degenerate
-    pixel, all ``2^K`` passive sets are enumerated (``K <= 12``).
+    the NNLS optimum.  For ``K <= 8`` the other pixels are solved on a table computed once
+    per matrix: for every passive set ``P`` (all ``2^K`` of them) a ``K x K`` matrix that
+    turns ``x`` into the least-squares solution on ``P`` and the gradient off ``P``, so that
+    testing ``P`` against the Karush–Kuhn–Tucker conditions costs one small product.
+    Starting from ``P = {k: x_k > 0}``, pending pixels are sorted by passive set and tested
+    together (vectorised over pixels); every variable that breaks a condition is exchanged
+    at once (block principal pivoting, Júdice & Pires 1994; Kim & Park 2011).  Pixels not
+    settled after a few rounds finish one by one with the method's backup rule, which
+    guarantees termination.  For larger ``K`` (or as a last safeguard) the Lawson–Hanson
+    active-set method runs on ``G = MᵀM`` and ``Mᵀy``, and, should it not converge within
+    ``3K`` steps on a degenerate pixel, all ``2^K`` passive sets are enumerated (``K <= 12``).
 ``"numpy"``
     Pure numpy, ``K <= 12``: all ``2^K`` passive sets are solved for all pixels at once
     and each pixel keeps the feasible one with the lowest objective.
@@ -28,7 +34,7 @@ invalid; output NaN),
 from __future__ import annotations
 
 import numpy as np
-from numba import njit, prange
+from numba import get_num_threads, njit, prange
 
 from probeplan.errors import input_error
 
@@ -51,9 +57,18 @@ STATUS_SATURATED = 3
 #: Largest number of components for which all passive sets are enumerated.
 MAX_ENUMERATION_COMPONENTS = 12
 
+#: Largest number of components for which the KKT test of every passive set is tabulated
+#: (2^K matrices of K x K: 512 KiB at K = 8).
+MAX_TABLE_COMPONENTS = 8
+# Relative tolerance of the tabulated KKT test (its gradients are formed from the unconstrained
+# solution, a few hundred rounding errors away from Mᵀy for well-conditioned references).
+_TABLE_TOL = 1e-11
+
 ENGINES = ("auto", "numba", "numpy")
 
-_BLOCK = 1024  # pixels per block in the compiled kernel (fits in L1/L2 with C <= 32)
+_BATCH = 4096  # pending constrained pixels solved together on the table
+_ROUNDS = 4  # vectorised exchange rounds before the remaining pixels finish one by one
+_BLOCK = 256  # pixels per block in the compiled kernel (its float64 work arrays stay in L1 for K <= 8)
 
 
 # --------------------------------------------------------------------------- compiled engine
@@ -172,16 +187,224 @@ def _enumerate(G, b, x, passive, s, A, idx):
             for j in range(K):
                 x[j] = s[j]
 
+@njit(cache=True)
+def _passive_set_table(G):
+    # For every passive set P (bit mask m) one K x K matrix T[m] such that, with x the
+    # unconstrained solution and b = G x = Mᵀy, v = T[m] @ x gives v_P = (G_PP)⁻¹ b_P (the
+    # least-squares solution on P) and v_Z = b_Z − G_ZP v_P (the gradient off P).  Testing a
+    # passive set against the KKT conditions is then one K x K product per pixel.
+    K = G.shape[0]
+    T = np.zeros((1 << K, K, K))
+    S = np.zeros((K, K))
+    passive = np.zeros(K, dtype=np.bool_)
+    A = np.empty((K, K))
+    idx = np.empty(K, dtype=np.int64)
+    e = np.zeros(K)
+    s = np.empty(K)
+    inv = np.empty((K, K))
+    for m in range(1 << K):
+        for j in range(K):
+            passive[j] = (m >> j) & 1 == 1
+        for q in range(K):
+            for j in range(K):
+                inv[j, q] = 0.0
+            if passive[q]:
+                e[q] = 1.0
+                _solve_subset(G, e, passive, A, idx, s)
+                e[q] = 0.0
+                for j in range(K):
+                    inv[j, q] = s[j]
+        # S: v = S @ b
+        for j in range(K):
+            if passive[j]:
+                for q in range(K):
+                    S[j, q] = inv[j, q]
+            else:
+                for q in range(K):
+                    if passive[q]:
+                        v = 0.0
+                        for r in range(K):
+                            v -= G[j, r] * inv[r, q]
+                        S[j, q] = v
+                    else:
+                        S[j, q] = 1.0 if q == j else 0.0
+        for j in range(K):
+            for q in range(K):
+                v = 0.0
+                for r in range(K):
+                    v += S[j, r] * G[r, q]
+                T[m, j, q] = v
+    return T
+
+@njit(cache=True, inline="always")
+def _principal_pivoting(T, xu, mask, tol, x, v):
+    # Block principal pivoting (Júdice & Pires 1994; Kim & Park 2011, Algorithm 2) on the
+    # precomputed table: exchange every variable that breaks the KKT conditions at once, with
+    # the single-variable backup rule that guarantees termination.  Returns False if it did
+    # not settle within its step budget (the caller then falls back to Lawson-Hanson).
+    K = xu.shape[0]
+    best_bad = K + 1
+    backup = 3
+    for _ in range(8 * K + 8):
+        flip = 0
+        nbad = 0
+        last = 0
+        for j in range(K):
+            t = 0.0
+            for q in range(K):
+                t += T[mask, j, q] * xu[q]
+            v[j] = t
+            inside = (mask >> j) & 1
+            wrong = (inside == 1 and t < 0.0) or (inside == 0 and t > tol)
+            flip |= wrong << j
+            nbad += wrong
+            if wrong:
+                last = j
+        if nbad == 0:
+            for j in range(K):
+                x[j] = v[j] if (mask >> j) & 1 else 0.0
+            return True
+        if nbad < best_bad:
+            best_bad = nbad
+            backup = 3
+            mask ^= flip
+        elif backup > 0:
+            backup -= 1
+            mask ^= flip
+        else:
+            mask ^= 1 << last
+    return False
+
 @njit(cache=True, fastmath={"contract"})
 def _accumulate(P, Y, i0, n, acc):
+    # acc[:, :n] = P @ Y[:, i0:i0+n] in float64; one-dimensional views let LLVM vectorise the
+    # inner loop over pixels
     K, C = P.shape
     for k in range(K):
-        a = acc[k]
-        for c in range(C):
+        a = acc[k, :n]
+        p = P[k, 0]
+        yy = Y[0, i0 : i0 + n]
+        for i in range(n):
+            a[i] = p * yy[i]
+        for c in range(1, C):
             p = P[k, c]
             yy = Y[c, i0 : i0 + n]
             for i in range(n):
                 a[i] += p * yy[i]
+
+@njit(cache=True)
+def _lawson_hanson_pixel(Y, col, Mt, G, tol_rel, normM, max_enum, x, passive, w, s, A, idx, y, b):
+    # the general path for one pixel: Lawson-Hanson on b = Mᵀy, then enumeration if it stalls
+    C = Y.shape[0]
+    K = G.shape[0]
+    ymax = 0.0
+    for c in range(C):
+        y[c] = np.float64(Y[c, col])
+        ymax = max(ymax, abs(y[c]))
+    for k in range(K):
+        v = 0.0
+        for c in range(C):
+            v += Mt[k, c] * y[c]
+        b[k] = v
+    if not _lawson_hanson(G, b, tol_rel * normM * ymax, x, passive, w, s, A, idx):
+        if K <= max_enum:
+            _enumerate(G, b, x, passive, s, A, idx)
+
+@njit(cache=True, fastmath={"contract"})
+def _table_batch(T, xs, masks, tols, cols, n, Y, Mt, G, tol_rel, normM, max_enum, out):
+    # Pixels with a negative unconstrained component (columns ``cols``, unconstrained solutions
+    # ``xs``, starting passive sets ``masks``), solved on the table.  Each round sorts the pending
+    # pixels by passive set, tests each set's pixels together (one K x K product vectorised over
+    # pixels) and exchanges every variable that breaks the KKT conditions (block principal
+    # pivoting without its backup rule).  The few still pending after the rounds finish one by
+    # one with the backup rule, then Lawson-Hanson.  Overwrites xs, masks, tols, cols.
+    K = xs.shape[0]
+    nm = 1 << K
+    count = np.empty(nm + 1, dtype=np.int64)
+    xs2 = np.empty((K, n))
+    tols2 = np.empty(n)
+    cols2 = np.empty(n, dtype=np.int64)
+    V = np.empty((K, n))
+    flip = np.empty(n, dtype=np.int64)
+    for _ in range(_ROUNDS):
+        if n == 0:
+            break
+        # counting sort by passive set into xs2/tols2/cols2
+        for m in range(nm + 1):
+            count[m] = 0
+        for t in range(n):
+            count[masks[t] + 1] += 1
+        for m in range(nm):
+            count[m + 1] += count[m]
+        for t in range(n):
+            m = masks[t]
+            d = count[m]
+            count[m] = d + 1
+            for k in range(K):
+                xs2[k, d] = xs[k, t]
+            tols2[d] = tols[t]
+            cols2[d] = cols[t]
+        # count[m] is now the end of group m
+        keep = 0
+        lo = 0
+        for m in range(nm):
+            hi = count[m]
+            if hi == lo:
+                continue
+            fl = flip[lo:hi]
+            tg = tols2[lo:hi]
+            cg = cols2[lo:hi]
+            fl[:] = 0
+            for j in range(K):
+                vj = V[j, lo:hi]
+                coef = T[m, j, 0]
+                g = xs2[0, lo:hi]
+                for t in range(hi - lo):
+                    vj[t] = coef * g[t]
+                for q in range(1, K):
+                    coef = T[m, j, q]
+                    g = xs2[q, lo:hi]
+                    for t in range(hi - lo):
+                        vj[t] += coef * g[t]
+                bit = 1 << j
+                o = out[j]
+                if (m >> j) & 1:
+                    for t in range(hi - lo):
+                        fl[t] |= (vj[t] < 0.0) * bit
+                        o[cg[t]] = vj[t]
+                else:
+                    for t in range(hi - lo):
+                        fl[t] |= (vj[t] > tg[t]) * bit
+                        o[cg[t]] = 0.0
+            # pixels that broke a condition go on with the exchanged set (their output is rewritten)
+            for t in range(hi - lo):
+                if fl[t]:
+                    for k in range(K):
+                        xs[k, keep] = xs2[k, lo + t]
+                    masks[keep] = m ^ fl[t]
+                    tols[keep] = tg[t]
+                    cols[keep] = cg[t]
+                    keep += 1
+            lo = hi
+        n = keep
+    if n:
+        C = Y.shape[0]
+        xu = np.empty(K)
+        x = np.empty(K)
+        v = np.empty(K)
+        passive = np.zeros(K, dtype=np.bool_)
+        w = np.empty(K)
+        A = np.empty((K, K))
+        idx = np.empty(K, dtype=np.int64)
+        y = np.empty(C)
+        b = np.empty(K)
+        for t in range(n):
+            for k in range(K):
+                xu[k] = xs[k, t]
+            if not _principal_pivoting(T, xu, masks[t], tols[t], x, v):
+                _lawson_hanson_pixel(Y, cols[t], Mt, G, tol_rel, normM, max_enum, x, passive, w, v, A, idx, y, b)
+            for k in range(K):
+                out[k, cols[t]] = x[k]
 
 @njit(cache=True)
 def _slow_pixels(Y, acc, bad, i0, n, Mt, G, sat, check_sat, nonneg, tol_rel, normM, max_enum, out, status):
@@ -249,8 +472,79 @@ def _slow_pixels(Y, acc, bad, i0, n, Mt, G, sat, check_sat, nonneg, tol_rel, nor
         for k in range(K):
             out[k, i0 + i] = x[k]
 
+@njit(cache=True)
+def _nnls_range(Y, P, Mt, G, T, use_table, sat, check_sat, nonneg, tol_rel, table_tol, max_enum, normM, gnorm,
+                out, status, b0, b1):
+    # blocks b0..b1-1 of _BLOCK pixels, one thread
+    C, N = Y.shape
+    K = P.shape[0]
+    acc = np.empty((K, _BLOCK))
+    flag = np.empty(_BLOCK, dtype=np.uint8)
+    bad = np.empty(_BLOCK, dtype=np.bool_)
+    table = nonneg and use_table
+    nbatch = _BATCH if table else 1
+    xs = np.empty((K, nbatch))
+    masks = np.empty(nbatch, dtype=np.int64)
+    tols = np.empty(nbatch)
+    cols = np.empty(nbatch, dtype=np.int64)
+    npend = 0
+    for bi in range(b0, b1):
+        i0 = bi * _BLOCK
+        n = min(N, i0 + _BLOCK) - i0
+        # unconstrained solution for the block, vectorised over pixels (float64 arithmetic)
+        _accumulate(P, Y, i0, n, acc)
+        # flag 0: done; 1: a negative component (NNLS to solve); >= 2: NaN/inf/saturated
+        for i in range(n):
+            flag[i] = 0
+        if check_sat:
+            for c in range(C):
+                yy = Y[c, i0 : i0 + n]
+                for i in range(n):
+                    flag[i] |= (yy[i] >= sat) << 1
+        for k in range(K):
+            a = acc[k, :n]
+            o = out[k, i0 : i0 + n]
+            for i in range(n):
+                v = a[i]
+                o[i] = v
+                flag[i] |= (v < 0.0) | ((not abs(v) < np.inf) << 1)
+        nneg = 0
+        nspecial = 0
+        for i in range(n):
+            status[i0 + i] = 0
+            f = flag[i]
+            nneg += f == 1
+            nspecial += f >= 2
+        if not nonneg:
+            nneg = 0
+        if nneg and table:
+            for i in range(n):
+                if flag[i] == 1:
+                    mask = 0
+                    scale = 0.0
+                    for k in range(K):
+                        v = acc[k, i]
+                        xs[k, npend] = v
+                        mask |= (v > 0.0) << k
+                        scale = max(scale, abs(v))
+                    masks[npend] = mask
+                    tols[npend] = table_tol * gnorm * scale
+                    cols[npend] = i0 + i
+                    status[i0 + i] = 1
+                    npend += 1
+            if npend > _BATCH - _BLOCK:
+                _table_batch(T, xs, masks, tols, cols, npend, Y, Mt, G, tol_rel, normM, max_enum, out)
+                npend = 0
+            nneg = 0
+        if nneg or nspecial:
+            for i in range(n):
+                bad[i] = flag[i] >= 2 or (nneg > 0 and flag[i] == 1)
+            _slow_pixels(Y, acc, bad, i0, n, Mt, G, sat, check_sat, nonneg, tol_rel, normM, max_enum, out, status)
+    if npend:
+        _table_batch(T, xs, masks, tols, cols, npend, Y, Mt, G, tol_rel, normM, max_enum, out)
+
 @njit(cache=True, parallel=True)
-def _nnls_kernel(Y, P, Mt, G, sat, check_sat, nonneg, tol_rel, max_enum, out, status):
+def _nnls_kernel(Y, P, Mt, G, T, use_table, sat, check_sat, nonneg, tol_rel, table_tol, max_enum, nthreads, out, status):
     C, N = Y.shape
     K = P.shape[0]
     nblocks = (N + _BLOCK - 1) // _BLOCK
@@ -260,30 +554,17 @@ def _nnls_kernel(Y, P, Mt, G, sat, check_sat, nonneg, tol_rel, max_enum, out, st
         for c in range(C):
             col += abs(Mt[k, c])
         normM = max(normM, col)
-    for bi in prange(nblocks):
-        i0 = bi * _BLOCK
-        n = min(N, i0 + _BLOCK) - i0
-        acc = np.zeros((K, _BLOCK))
-        bad = np.zeros(_BLOCK, dtype=np.bool_)
-        # unconstrained solution for the block, vectorised over pixels (float64 arithmetic)
-        _accumulate(P, Y, i0, n, acc)
-        if check_sat:
-            for c in range(C):
-                for i in range(n):
-                    bad[i] |= Y[c, i0 + i] >= sat
-        for k in range(K):
-            for i in range(n):
-                v = acc[k, i]
-                out[k, i0 + i] = v
-                if nonneg:
-                    bad[i] |= not v >= 0.0
-                bad[i] |= v - v != 0.0  # NaN or +-inf: looked at pixel by pixel
-        nbad = 0
-        for i in range(n):
-            status[i0 + i] = 0
-            nbad += bad[i]
-        if nbad:
-            _slow_pixels(Y, acc, bad, i0, n, Mt, G, sat, check_sat, nonneg, tol_rel, normM, max_enum, out, status)
+    gnorm = 0.0
+    for k in range(K):
+        row = 0.0
+        for q in range(K):
+            row += abs(G[k, q])
+        gnorm = max(gnorm, row)
+    # a few contiguous ranges of blocks per thread, each with its own work buffers
+    nranges = min(nblocks, 8 * nthreads)
+    for r in prange(nranges):
+        _nnls_range(Y, P, Mt, G, T, use_table, sat, check_sat, nonneg, tol_rel, table_tol, max_enum, normM, gnorm,
+                     out, status, r * nblocks // nranges, (r + 1) * nblocks // nranges)
 
 
 def _kernel():
@@ -361,9 +642,13 @@ def _run(M, Y, out_dtype, sat, nonneg, engine, tol_rel):
             "use engine='numba'",
         )
     if use_numba and N:
+        G = np.ascontiguousarray(G)
+        use_table = nonneg and K <= MAX_TABLE_COMPONENTS
+        T = _passive_set_table(G) if use_table else np.zeros((1, 1, 1))
         _kernel()(
-            Y, np.ascontiguousarray(P), np.ascontiguousarray(M.T), np.ascontiguousarray(G),
-            sat, check_sat, nonneg, tol_rel, MAX_ENUMERATION_COMPONENTS, out, status,
+            Y, np.ascontiguousarray(P), np.ascontiguousarray(M.T), G, T, use_table,
+            sat, check_sat, nonneg, tol_rel, max(tol_rel, _TABLE_TOL), MAX_ENUMERATION_COMPONENTS,
+            get_num_threads(), out, status,
         )
     elif N:
         _numpy_engine(Y, P, M, sat, check_sat, nonneg, out, status)
@@ -414,6 +699,10 @@ def nnls_pixels(matrix, data, *, saturation=None, out_dtype=None, engine="auto",
     ch. 23. doi:10.1137/1.9781611971217
     Bro, R. & De Jong, S. A fast non-negativity-constrained least squares algorithm.
     J. Chemometrics 11, 393–401 (1997). doi:10.1002/(SICI)1099-128X(199709/10)11:5<393::AID-CEM483>3.0.CO;2-L
+    Júdice, J. J. & Pires, F. M. A block principal pivoting algorithm for large-scale strictly
+    monotone linear complementarity problems. Computers & Operations Research 21, 587–596 (1994).
+    Kim, J. & Park, H. Fast nonnegative matrix factorization: an active-set-like method and
+    comparisons. SIAM J. Sci. Comput. 33, 3261–3281 (2011), Algorithm 2 (block principal pivoting).
 
     Examples
     --------
