@@ -33,8 +33,9 @@ invalid; output NaN),
 
 from __future__ import annotations
 
+import numba
 import numpy as np
-from numba import get_num_threads, njit, prange
+from numba import njit
 
 from probeplan.errors import input_error
 
@@ -236,7 +237,7 @@ def _passive_set_table(G):
                 T[m, j, q] = v
     return T
 
-@njit(cache=True, inline="always")
+@njit(cache=True)
 def _principal_pivoting(T, xu, mask, tol, x, v):
     # Block principal pivoting (Júdice & Pires 1994; Kim & Park 2011, Algorithm 2) on the
     # precomputed table: exchange every variable that breaks the KKT conditions at once, with
@@ -311,13 +312,14 @@ def _lawson_hanson_pixel(Y, col, Mt, G, tol_rel, normM, max_enum, x, passive, w,
             _enumerate(G, b, x, passive, s, A, idx)
 
 @njit(cache=True, fastmath={"contract"})
-def _table_batch(T, xs, masks, tols, cols, n, Y, Mt, G, tol_rel, normM, max_enum, out):
+def _table_batch(T, xs, masks, tols, cols, n, out):
     # Pixels with a negative unconstrained component (columns ``cols``, unconstrained solutions
     # ``xs``, starting passive sets ``masks``), solved on the table.  Each round sorts the pending
     # pixels by passive set, tests each set's pixels together (one K x K product vectorised over
     # pixels) and exchanges every variable that breaks the KKT conditions (block principal
     # pivoting without its backup rule).  The few still pending after the rounds finish one by
-    # one with the backup rule, then Lawson-Hanson.  Overwrites xs, masks, tols, cols.
+    # one with the backup rule; the columns of any left over are returned in cols[:nleft] for
+    # Lawson-Hanson.  Overwrites xs, masks, tols, cols.
     K = xs.shape[0]
     nm = 1 << K
     count = np.empty(nm + 1, dtype=np.int64)
@@ -387,24 +389,41 @@ def _table_batch(T, xs, masks, tols, cols, n, Y, Mt, G, tol_rel, normM, max_enum
                     keep += 1
             lo = hi
         n = keep
+    nleft = 0
     if n:
-        C = Y.shape[0]
         xu = np.empty(K)
         x = np.empty(K)
         v = np.empty(K)
-        passive = np.zeros(K, dtype=np.bool_)
-        w = np.empty(K)
-        A = np.empty((K, K))
-        idx = np.empty(K, dtype=np.int64)
-        y = np.empty(C)
-        b = np.empty(K)
         for t in range(n):
             for k in range(K):
                 xu[k] = xs[k, t]
-            if not _principal_pivoting(T, xu, masks[t], tols[t], x, v):
-                _lawson_hanson_pixel(Y, cols[t], Mt, G, tol_rel, normM, max_enum, x, passive, w, v, A, idx, y, b)
-            for k in range(K):
-                out[k, cols[t]] = x[k]
+            if _principal_pivoting(T, xu, masks[t], tols[t], x, v):
+                for k in range(K):
+                    out[k, cols[t]] = x[k]
+            else:
+                cols[nleft] = cols[t]
+                nleft += 1
+    return nleft
+
+
+@njit(cache=True)
+def _fallback_pixels(Y, cols, n, Mt, G, tol_rel, normM, max_enum, out):
+    # pixels on which the tabulated method did not settle (a safeguard): Lawson-Hanson from Mᵀy
+    C = Y.shape[0]
+    K = G.shape[0]
+    x = np.empty(K)
+    passive = np.zeros(K, dtype=np.bool_)
+    w = np.empty(K)
+    s = np.empty(K)
+    A = np.empty((K, K))
+    idx = np.empty(K, dtype=np.int64)
+    y = np.empty(C)
+    b = np.empty(K)
+    for t in range(n):
+        _lawson_hanson_pixel(Y, cols[t], Mt, G, tol_rel, normM, max_enum, x, passive, w, s, A, idx, y, b)
+        for k in range(K):
+            out[k, cols[t]] = x[k]
+
 
 @njit(cache=True)
 def _slow_pixels(Y, acc, bad, i0, n, Mt, G, sat, check_sat, nonneg, tol_rel, normM, max_enum, out, status):
@@ -472,7 +491,7 @@ def _slow_pixels(Y, acc, bad, i0, n, Mt, G, sat, check_sat, nonneg, tol_rel, nor
         for k in range(K):
             out[k, i0 + i] = x[k]
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _nnls_range(Y, P, Mt, G, T, use_table, sat, check_sat, nonneg, tol_rel, table_tol, max_enum, normM, gnorm,
                 out, status, b0, b1):
     # blocks b0..b1-1 of _BLOCK pixels, one thread
@@ -533,7 +552,9 @@ def _nnls_range(Y, P, Mt, G, T, use_table, sat, check_sat, nonneg, tol_rel, tabl
                     status[i0 + i] = 1
                     npend += 1
             if npend > _BATCH - _BLOCK:
-                _table_batch(T, xs, masks, tols, cols, npend, Y, Mt, G, tol_rel, normM, max_enum, out)
+                nleft = _table_batch(T, xs, masks, tols, cols, npend, out)
+                if nleft:
+                    _fallback_pixels(Y, cols, nleft, Mt, G, tol_rel, normM, max_enum, out)
                 npend = 0
             nneg = 0
         if nneg or nspecial:
@@ -541,35 +562,9 @@ def _nnls_range(Y, P, Mt, G, T, use_table, sat, check_sat, nonneg, tol_rel, tabl
                 bad[i] = flag[i] >= 2 or (nneg > 0 and flag[i] == 1)
             _slow_pixels(Y, acc, bad, i0, n, Mt, G, sat, check_sat, nonneg, tol_rel, normM, max_enum, out, status)
     if npend:
-        _table_batch(T, xs, masks, tols, cols, npend, Y, Mt, G, tol_rel, normM, max_enum, out)
-
-@njit(cache=True, parallel=True)
-def _nnls_kernel(Y, P, Mt, G, T, use_table, sat, check_sat, nonneg, tol_rel, table_tol, max_enum, nthreads, out, status):
-    C, N = Y.shape
-    K = P.shape[0]
-    nblocks = (N + _BLOCK - 1) // _BLOCK
-    normM = 0.0
-    for k in range(K):
-        col = 0.0
-        for c in range(C):
-            col += abs(Mt[k, c])
-        normM = max(normM, col)
-    gnorm = 0.0
-    for k in range(K):
-        row = 0.0
-        for q in range(K):
-            row += abs(G[k, q])
-        gnorm = max(gnorm, row)
-    # a few contiguous ranges of blocks per thread, each with its own work buffers
-    nranges = min(nblocks, 8 * nthreads)
-    for r in prange(nranges):
-        _nnls_range(Y, P, Mt, G, T, use_table, sat, check_sat, nonneg, tol_rel, table_tol, max_enum, normM, gnorm,
-                     out, status, r * nblocks // nranges, (r + 1) * nblocks // nranges)
-
-
-def _kernel():
-    return _nnls_kernel
-
+        nleft = _table_batch(T, xs, masks, tols, cols, npend, out)
+        if nleft:
+            _fallback_pixels(Y, cols, nleft, Mt, G, tol_rel, normM, max_enum, out)
 
 # --------------------------------------------------------------------------- numpy engine
 def _numpy_engine(Y, P, M, sat, check_sat, nonneg, out, status):
@@ -643,13 +638,31 @@ def _run(M, Y, out_dtype, sat, nonneg, engine, tol_rel):
         )
     if use_numba and N:
         G = np.ascontiguousarray(G)
+        Mt = np.ascontiguousarray(M.T)
         use_table = nonneg and K <= MAX_TABLE_COMPONENTS
         T = _passive_set_table(G) if use_table else np.zeros((1, 1, 1))
-        _kernel()(
-            Y, np.ascontiguousarray(P), np.ascontiguousarray(M.T), G, T, use_table,
-            sat, check_sat, nonneg, tol_rel, max(tol_rel, _TABLE_TOL), MAX_ENUMERATION_COMPONENTS,
-            get_num_threads(), out, status,
-        )
+        normM = float(np.abs(M).sum(axis=0).max())
+        gnorm = float(np.abs(G).sum(axis=1).max())
+        P = np.ascontiguousarray(P)
+        nblocks = -(-N // _BLOCK)
+        nthreads = max(1, min(int(numba.config.NUMBA_NUM_THREADS), nblocks))
+        nranges = min(nblocks, 4 * nthreads)
+
+        def blocks(r):
+            _nnls_range(Y, P, Mt, G, T, use_table, sat, check_sat, nonneg, tol_rel, max(tol_rel, _TABLE_TOL),
+                        MAX_ENUMERATION_COMPONENTS, normM, gnorm, out, status,
+                        r * nblocks // nranges, (r + 1) * nblocks // nranges)
+
+        # the compiled function releases the GIL: threads share the ranges of blocks (plain threads
+        # instead of numba's parallel loops, whose compilation costs seconds per input dtype)
+        if nthreads == 1:
+            for r in range(nranges):
+                blocks(r)
+        else:
+            from concurrent.futures import ThreadPoolExecutor
+
+            with ThreadPoolExecutor(nthreads) as pool:
+                list(pool.map(blocks, range(nranges)))
     elif N:
         _numpy_engine(Y, P, M, sat, check_sat, nonneg, out, status)
     return out, status
