@@ -105,6 +105,8 @@ OPTION_RANGES: dict[str, OptionRange] = {
     "saturation": _r(0, math.inf, "counts", True),
     "gain": _r(0, 1e6, "e-/count", True),
     "read_noise": _r(0, 1e6, "e- rms"),
+    "min_snr": _r(0, 1e6, ""),
+    "confidence": _r(0, 1, "", True),
     "memory_mb": _r(0, 1e6, "MiB", True),
     # the page
     "port": _r(1, 65535),
