@@ -21,9 +21,9 @@ def test_every_default_is_the_one_constant():
     add_target_options(parser)
     assert parser.parse_args([]).concentration_uM == DEFAULT_CONCENTRATION_UM
     assert SCHEMA["target"][0]["concentration_uM"].default == DEFAULT_CONCENTRATION_UM
-    sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "app"))
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
     try:
-        import page_setup
+        from app import page_setup
     finally:
         sys.path.pop(0)
     assert page_setup.DEFAULTS["w_concentration"] == DEFAULT_CONCENTRATION_UM

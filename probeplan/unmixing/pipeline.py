@@ -708,7 +708,7 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     from probeplan.io.stacks import StackWriter, open_stack
     from probeplan.io.atomic import check_outputs, refuse_input_paths, write_json_atomic
     from probeplan.unmixing.overlay import downsample_mean, overlay_factor, write_overlay_png
-    from probeplan.unmixing.references import abundance_unit
+    from probeplan.unmixing.references import abundance_unit as unit_of_references
     from probeplan.unmixing.roi import Roi, RoiAccumulator, parse_roi, rois_from_labels, write_roi_csv
     from probeplan.unmixing.shapes import RoiShape, rectangle_from_spec, shapes_to_rois
 
@@ -812,11 +812,15 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
         else:
             _run_on_cluster(scheduler, chunks, handle, reader, dark_r, flat_r, params)
         qc_summary = qc.summary()
+        if isinstance(abundance_unit, str):
+            unit_text = unit_of_references(references, None if abundance_unit == "counts" else abundance_unit)
+        else:
+            unit_text = "; ".join(f"{n}: {u}" for n, u in zip(names, abundance_unit, strict=True))
         qc_summary.update(
             probeplan_version=__version__, caution=RESEARCH_USE_CAUTION, depth_caution=DEPTH_COMPARISON_CAUTION,
             stack=str(info.path),
-            abundance_unit=abundance_unit(references),
-            files={"abundance": f"abundance of each component, in {abundance_unit(references)}",
+            abundance_unit=unit_text,
+            files={"abundance": f"abundance of each component, in {unit_text}",
                    "stderr": "standard error of each abundance (same unit), from the camera noise model",
                    "residual": "root mean square over channels of the fit residual, counts"},
             stack_shape=list(info.shape), stack_axes=info.axes, channel_axis=info.channel_axis,
