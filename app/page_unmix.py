@@ -359,8 +359,8 @@ def _maps_section(result: dict) -> None:
         cols = st.columns(min(4, len(names)))
         for k, n in enumerate(names):
             hi = max(auto[k], 1e-12)
-            pct = cols[k % len(cols)].slider(f"{n}: full brightness at (% of its 99.5th percentile)", 5, 400, 100,
-                                             step=5, key=f"w_contrast_{k}")
+            pct = cols[k % len(cols)].slider(f"{n}: full brightness at (% of its 99.5th percentile)",
+                                             min_value=5, max_value=400, value=100, step=5, key=f"w_contrast_{k}")
             limits.append(hi * pct / 100.0)
         st.image(composite_png(result["abundances"], names, tuple(limits), pixel_size_um=px, rois=tuple(regions)),
                  caption="Each component in its own colour (Okabe–Ito colours, distinct for colour-blind readers); "

@@ -37,7 +37,8 @@ def test_closure_table_says_which_quantity_is_which(demo):
     assert len(c.table) == 3 * 5
     a_sbr, a_tbr = _row(c.table, "probe A (700)", "sbr"), _row(c.table, "probe A (700)", "tbr")
     # the plan's SBR at 3 mm (about 1.3) and the measured TBR (about 3.8) are different quantities
-    assert a_sbr["predicted"] == pytest.approx(1.29, abs=0.02)
+    # 1.25-1.26 with the default transport (Monte Carlo tables) and the shipped tissue optics; 1.29 by diffusion
+    assert a_sbr["predicted"] == pytest.approx(1.26, abs=0.02)
     assert a_tbr["measured"] == pytest.approx(3.83, abs=0.1) and a_tbr["predicted"] == 4.0
     assert "not the SBR" in a_tbr["meaning"] and "before unmixing" in a_sbr["meaning"]
     assert (c.table["ratio"] == c.table["measured"] / c.table["predicted"]).all()

@@ -61,8 +61,8 @@ def test_assumptions_once_each_in_plain_words(evaluation):
     assert report.assumptions
     assert not any(re.match(r"^[A-Z][A-Za-z]*Warning:", a) for a in report.assumptions)
     assert len(report.assumptions) == len(set(report.assumptions))
-    diffusion = [a for a in report.assumptions if a.lower().startswith("diffusion theory")]
-    assert len(diffusion) == 1
+    transport = [a for a in report.assumptions if a.lower().startswith("light transport")]
+    assert len(transport) == 1
     assert plain_assumptions(["AssumptionWarning: a thing", "a thing", "b"]) == ["A thing.", "B."]
 
 
