@@ -40,7 +40,7 @@ def main(argv=None) -> int:
     colours = {0.0: "tab:blue", 0.9: "tab:orange"}
     depth_mm = DEPTHS_MFP * MFP_MM
     fine = np.linspace(0.0, DEPTHS_MFP[-1] * MFP_MM, 200)
-    axes[0, 0].plot(fine / MFP_MM, tr.point_source_escape(fine, MU_A, MU_SP, N_REL), "k-", label="diffusion (exact A)")
+    axes[0, 0].plot(fine / MFP_MM, tr.point_source_escape(fine, MU_A, MU_SP, N_REL, model="diffusion"), "k-", label="diffusion (exact A)")
 
     print("| depth (mfp) | diffusion | MC g=0 | ratio | MC g=0.9 | ratio |")
     print("| --- | --- | --- | --- | --- | --- |")
@@ -49,7 +49,7 @@ def main(argv=None) -> int:
         escape[g] = [
             simulate_point_source(_layers(g), float(d), photons, engine="numba", seed=100 + i) for i, d in enumerate(depth_mm)
         ]
-    diffusion = tr.point_source_escape(depth_mm, MU_A, MU_SP, N_REL)
+    diffusion = tr.point_source_escape(depth_mm, MU_A, MU_SP, N_REL, model="diffusion")
     for i, d in enumerate(DEPTHS_MFP):
         a, b = escape[0.0][i], escape[0.9][i]
         print(
@@ -83,7 +83,7 @@ def main(argv=None) -> int:
         ratio_r[g] = model / res.radial_reflectance_per_mm2
         err = ratio_r[g] * res.radial_reflectance_per_mm2_std / res.radial_reflectance_per_mm2
         axes[1, 0].errorbar(res.rho_mm / MFP_MM, ratio_r[g], 2 * err, fmt="o-", ms=3, color=colours[g], label=f"g={g:g}")
-        flu = tr.broad_beam_fluence(res.depth_mm, MU_A, MU_SP, N_REL)
+        flu = tr.broad_beam_fluence(res.depth_mm, MU_A, MU_SP, N_REL, model="diffusion")
         ratio_f[g] = flu / res.fluence
         err = ratio_f[g] * res.fluence_std / res.fluence
         axes[1, 1].errorbar(res.depth_mm / MFP_MM, ratio_f[g], 2 * err, fmt="o-", ms=3, color=colours[g], label=f"g={g:g}")

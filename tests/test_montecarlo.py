@@ -228,9 +228,9 @@ def test_point_source_escape_diffusion_vs_monte_carlo(depth_mfp):
     depth = depth_mfp * _MFP_MM
     edges = np.linspace(0.0, depth, 6)
     res = simulate_point_source(_SEMI, depth, 20_000, engine="numba", seed=int(depth_mfp), rho_bins_mm=edges)
-    diffusion = float(tr.point_source_escape(depth, _MUA, _MUSP, _N))
+    diffusion = float(tr.point_source_escape(depth, _MUA, _MUSP, _N, model="diffusion"))
     assert abs(diffusion / res.escape - 1) < 0.10 + Z * res.escape_std / res.escape
-    profile = tr.point_source_exitance_per_mm2(res.rho_mm, depth, _MUA, _MUSP, _N)
+    profile = tr.point_source_exitance_per_mm2(res.rho_mm, depth, _MUA, _MUSP, _N, model="diffusion")
     rel_err = res.radial_reflectance_per_mm2_std / res.radial_reflectance_per_mm2
     assert np.all(np.abs(profile / res.radial_reflectance_per_mm2 - 1) < 0.10 + Z * rel_err)
 
@@ -260,7 +260,7 @@ def test_broad_beam_fluence_diffusion_vs_monte_carlo(_pencil_beam):
     # 10 % at depths >= 2 transport mean free paths (found: within 4 %), and low near the surface.
     res = _pencil_beam
     deep = res.depth_mm >= 2 * _MFP_MM
-    ratio = tr.broad_beam_fluence(res.depth_mm, _MUA, _MUSP, _N) / res.fluence
+    ratio = tr.broad_beam_fluence(res.depth_mm, _MUA, _MUSP, _N, model="diffusion") / res.fluence
     rel_err = res.fluence_std / res.fluence
     assert np.all(np.abs(ratio[deep] - 1) < 0.10 + Z * rel_err[deep])
     assert ratio[0] < 0.9

@@ -114,15 +114,15 @@ def test_total_reflectance_is_integral_of_r_rho(mu_a, mu_sp, n, method):
 @pytest.mark.parametrize(("depth", "mu_a", "mu_sp", "n"), [(0.5, 0.1, 10.0, 1.4), (3.0, 0.3, 12.0, 1.33), (8.0, 0.05, 5.0, 1.0)])
 def test_escape_is_integral_of_exitance(depth, mu_a, mu_sp, n):
     # Closed form 1/2 e^{-mu d}(1 + e^{-2 mu z_b}) (Farrell et al. 1992 dipole) vs scipy quad of the profile
-    f = lambda r: float(tr.point_source_exitance_per_mm2(r, depth, mu_a, mu_sp, n)) * 2 * math.pi * r  # noqa: E731
+    f = lambda r: float(tr.point_source_exitance_per_mm2(r, depth, mu_a, mu_sp, n, model="diffusion")) * 2 * math.pi * r  # noqa: E731
     total = integrate.quad(f, 0, np.inf, limit=200)[0]
-    assert total == pytest.approx(float(tr.point_source_escape(depth, mu_a, mu_sp, n)), rel=1e-6)
+    assert total == pytest.approx(float(tr.point_source_escape(depth, mu_a, mu_sp, n, model="diffusion")), rel=1e-6)
 
 
 @pytest.mark.parametrize(("top", "bottom"), [(0.0, np.inf), (1.0, 4.0), (2.5, np.inf)])
 def test_uniform_layer_is_integral_of_escape(top, bottom):
     # Definition of the layer background: integral over depth of the point-source escape (scipy quad)
-    f = lambda z: float(tr.point_source_escape(z, 0.2, 12.0, 1.4))  # noqa: E731
+    f = lambda z: float(tr.point_source_escape(z, 0.2, 12.0, 1.4, model="diffusion"))  # noqa: E731
     expected = integrate.quad(f, top, bottom)[0]
     assert float(tr.uniform_layer_escape_mm(0.2, 12.0, 1.4, top_mm=top, bottom_mm=bottom)) == pytest.approx(expected, rel=1e-8)
 
@@ -157,36 +157,36 @@ def test_broad_beam_fluence_matches_green_function_quadrature(mu_a, mu_sp, n):
         diffuse = integrate.quad(integrand, 0, z, limit=200)[0] if z > 0 else 0.0
         diffuse += integrate.quad(integrand, z, np.inf, limit=200)[0]
         expected = t_in * math.exp(-mu_t * z) + diffuse
-        assert float(tr.broad_beam_fluence(z_mm, mu_a, mu_sp, n)) == pytest.approx(expected, rel=1e-7)
+        assert float(tr.broad_beam_fluence(z_mm, mu_a, mu_sp, n, model="diffusion")) == pytest.approx(expected, rel=1e-7)
 
 
 def test_broad_beam_fluence_limits():
     # Deep inside, diffuse light decays as exp(-mu_eff z) (Farrell et al. 1992; Star 1995)
     z = np.array([30.0, 31.0])
-    phi = tr.broad_beam_fluence(z, 0.1, 10.0)
+    phi = tr.broad_beam_fluence(z, 0.1, 10.0, model="diffusion")
     assert phi[1] / phi[0] == pytest.approx(math.exp(-float(tr.mu_eff(0.1, 10.0)) / tr.MM_PER_CM), rel=1e-6)
     # No absorption: fluence tends to (1 - R_sp)(3 + 2A) deep down (derived: the mu_a -> 0 limit of the closed form)
     a_factor = float(tr.boundary_factor(1.4))
-    deep = float(tr.broad_beam_fluence(200.0, 0.0, 10.0, 1.4))
+    deep = float(tr.broad_beam_fluence(200.0, 0.0, 10.0, 1.4, model="diffusion"))
     assert deep == pytest.approx((1 - (0.4 / 2.4) ** 2) * (3 + 2 * a_factor), rel=1e-9)
     # Continuity where mu_eff crosses mu_t' (mu_a = mu_s'/2), handled without a special case
-    near = tr.broad_beam_fluence(2.0, [5.0 - 1e-7, 5.0, 5.0 + 1e-7], 10.0)
+    near = tr.broad_beam_fluence(2.0, [5.0 - 1e-7, 5.0, 5.0 + 1e-7], 10.0, model="diffusion")
     assert np.ptp(near) < 1e-5 * near[1]
     # Continuity as mu_a -> 0
-    assert float(tr.broad_beam_fluence(3.0, 1e-16, 10.0)) == pytest.approx(float(tr.broad_beam_fluence(3.0, 0.0, 10.0)), rel=1e-6)
+    assert float(tr.broad_beam_fluence(3.0, 1e-16, 10.0, model="diffusion")) == pytest.approx(float(tr.broad_beam_fluence(3.0, 0.0, 10.0, model="diffusion")), rel=1e-6)
 
 
 def test_escape_limits():
     # No absorption: all light eventually leaves a semi-infinite medium (escape 1 at any depth)
-    np.testing.assert_allclose(tr.point_source_escape([0.0, 1.0, 50.0], 0.0, 10.0), 1.0, rtol=0, atol=1e-15)
+    np.testing.assert_allclose(tr.point_source_escape([0.0, 1.0, 50.0], 0.0, 10.0, model="diffusion"), 1.0, rtol=0, atol=1e-15)
     # Source at the surface: 1/2 (1 + e^{-2 mu z_b}); strongly absorbing: mu_eff z_b -> 2A/sqrt(3), so the
     # escape tends to 1/2 (1 + e^{-4A/sqrt(3)}) (derived from the closed form)
     mu = float(tr.mu_eff(0.5, 10.0))
     zb = float(tr.extrapolated_boundary_cm(0.5, 10.0))
-    assert float(tr.point_source_escape(0.0, 0.5, 10.0)) == pytest.approx(0.5 * (1 + math.exp(-2 * mu * zb)), rel=1e-12)
+    assert float(tr.point_source_escape(0.0, 0.5, 10.0, model="diffusion")) == pytest.approx(0.5 * (1 + math.exp(-2 * mu * zb)), rel=1e-12)
     limit = 0.5 * (1 + math.exp(-4 * float(tr.boundary_factor(1.4)) / math.sqrt(3)))
-    assert float(tr.point_source_escape(0.0, 1e6, 10.0)) == pytest.approx(limit, rel=1e-4)
-    assert float(tr.point_source_escape(100.0, 1.0, 10.0)) < 1e-20
+    assert float(tr.point_source_escape(0.0, 1e6, 10.0, model="diffusion")) == pytest.approx(limit, rel=1e-4)
+    assert float(tr.point_source_escape(100.0, 1.0, 10.0, model="diffusion")) < 1e-20
 
 
 def test_diffuse_reflectance_limits():
@@ -237,28 +237,28 @@ def test_diffusion_rd_fails_at_low_albedo_as_documented():
 )
 def test_blur_fwhm_matches_brentq(depth, mu_a, mu_sp, n):
     # Independent root finding (scipy.optimize.brentq) on the dipole profile's half maximum
-    j0 = float(tr.point_source_exitance_per_mm2(0.0, depth, mu_a, mu_sp, n))
+    j0 = float(tr.point_source_exitance_per_mm2(0.0, depth, mu_a, mu_sp, n, model="diffusion"))
     half = optimize.brentq(
-        lambda r: float(tr.point_source_exitance_per_mm2(r, depth, mu_a, mu_sp, n)) - j0 / 2, 0, 10 * depth + 10, xtol=1e-13
+        lambda r: float(tr.point_source_exitance_per_mm2(r, depth, mu_a, mu_sp, n, model="diffusion")) - j0 / 2, 0, 10 * depth + 10, xtol=1e-13
     )
-    assert float(tr.point_source_blur_fwhm_mm(depth, mu_a, mu_sp, n)) == pytest.approx(2 * half, rel=1e-8)
+    assert float(tr.point_source_blur_fwhm_mm(depth, mu_a, mu_sp, n, model="diffusion")) == pytest.approx(2 * half, rel=1e-8)
 
 
 def test_blur_limits_and_broadcasting():
     # Deep source, no absorption, matched index: both dipole terms alike, FWHM -> 2 sqrt(2^(2/3) - 1) d = 1.532 d
     # (half maximum of d/r^3; derived)
-    assert float(tr.point_source_blur_fwhm_mm(1000.0, 0.0, 10.0, 1.0)) / 1000.0 == pytest.approx(
+    assert float(tr.point_source_blur_fwhm_mm(1000.0, 0.0, 10.0, 1.0, model="diffusion")) / 1000.0 == pytest.approx(
         2 * math.sqrt(2 ** (2 / 3) - 1), rel=2e-3
     )
-    assert float(tr.point_source_blur_fwhm_mm(0.0, 0.1, 10.0)) == 0.0
+    assert float(tr.point_source_blur_fwhm_mm(0.0, 0.1, 10.0, model="diffusion")) == 0.0
     depths = np.linspace(0, 20, 200)[:, None]
     mua = np.linspace(0.02, 2.0, 300)
     musp = np.linspace(20.0, 5.0, 300)
-    fwhm = tr.point_source_blur_fwhm_mm(depths, mua, musp)
+    fwhm = tr.point_source_blur_fwhm_mm(depths, mua, musp, model="diffusion")
     assert fwhm.shape == (200, 300)
     assert np.all(np.diff(fwhm, axis=0) > 0)  # blur grows with depth
     for i, j in [(10, 0), (100, 150), (199, 299)]:
-        assert fwhm[i, j] == pytest.approx(float(tr.point_source_blur_fwhm_mm(depths[i, 0], mua[j], musp[j])), rel=1e-9)
+        assert fwhm[i, j] == pytest.approx(float(tr.point_source_blur_fwhm_mm(depths[i, 0], mua[j], musp[j], model="diffusion")), rel=1e-9)
 
 
 # --------------------------------------------------------------------------- shapes and validation
@@ -267,9 +267,9 @@ def test_blur_limits_and_broadcasting():
 def test_broadcasting_shapes():
     depth = np.linspace(0, 10, 5)[:, None]
     mua = np.array([0.1, 0.2, 0.3])
-    assert tr.broad_beam_fluence(depth, mua, 10.0).shape == (5, 3)
-    assert tr.point_source_escape(depth, mua, 10.0).shape == (5, 3)
-    assert tr.point_source_exitance_per_mm2(np.zeros((2, 1, 1)), depth, mua, 10.0).shape == (2, 5, 3)
+    assert tr.broad_beam_fluence(depth, mua, 10.0, model="diffusion").shape == (5, 3)
+    assert tr.point_source_escape(depth, mua, 10.0, model="diffusion").shape == (5, 3)
+    assert tr.point_source_exitance_per_mm2(np.zeros((2, 1, 1)), depth, mua, 10.0, model="diffusion").shape == (2, 5, 3)
     assert tr.spatially_resolved_reflectance_per_mm2(depth, mua, 10.0, [1.33, 1.4, 1.4]).shape == (5, 3)
     assert tr.effective_reflection(np.array([[1.33], [1.4]])).shape == (2, 1)
     assert tr.uniform_layer_escape_mm(mua, 10.0, top_mm=depth).shape == (5, 3)
@@ -287,8 +287,8 @@ def test_broadcasting_shapes():
         (lambda: tr.mu_eff(np.nan, 10.0), r"mu_a_per_cm: got nan"),
         (lambda: tr.mu_eff(0.1, np.inf), r"mu_s_prime_per_cm: got inf"),
         (lambda: tr.mu_eff(0.1, 0.0), r"mu_s_prime_per_cm: got 0\.0, expected > 0"),
-        (lambda: tr.broad_beam_fluence(-1.0, 0.1, 10.0), r"depth_mm: got -1\.0, expected >= 0"),
-        (lambda: tr.point_source_escape([1.0, np.nan], 0.1, 10.0), r"depth_mm: got nan"),
+        (lambda: tr.broad_beam_fluence(-1.0, 0.1, 10.0, model="diffusion"), r"depth_mm: got -1\.0, expected >= 0"),
+        (lambda: tr.point_source_escape([1.0, np.nan], 0.1, 10.0, model="diffusion"), r"depth_mm: got nan"),
         (lambda: tr.spatially_resolved_reflectance_per_mm2(-2.0, 0.1, 10.0), r"rho_mm: got -2\.0"),
         (lambda: tr.boundary_factor(0.0), r"n: got 0\.0, expected a finite value > 0"),
         (lambda: tr.diffuse_reflectance(0.1, 10.0, n=-1.4), r"n: got -1\.4"),
@@ -297,7 +297,7 @@ def test_broadcasting_shapes():
         (lambda: tr.boundary_factor(1.4, method="fancy"), r"method: got 'fancy'; choose one of 'exact', 'polynomial'"),
         (lambda: tr.uniform_layer_escape_mm(0.1, 10.0, top_mm=3.0, bottom_mm=2.0), r"bottom_mm: .*deeper than the top"),
         (lambda: tr.uniform_layer_escape_mm(0.1, 10.0, top_mm=-1.0), r"top_mm: got"),
-        (lambda: tr.point_source_blur_fwhm_mm(1.0, 0.1, -10.0), r"mu_s_prime_per_cm: got -10\.0"),
+        (lambda: tr.point_source_blur_fwhm_mm(1.0, 0.1, -10.0, model="diffusion"), r"mu_s_prime_per_cm: got -10\.0"),
     ],
 )
 def test_bad_input_is_refused(call, match):

@@ -1,5 +1,8 @@
 """Benchmark: a depth curve for 3 probes × 200 depths on a 1 nm emission grid (target: under 50 ms).
 
+Timed side by side in one run for each transport model: the default Monte Carlo tables
+(``"mc_table"``) and plain diffusion theory, with the ratio printed.
+
 Run with ``python3 -m pytest tests/benchmarks/test_bench_depth.py -m benchmark -s -p no:cacheprovider``.
 """
 
@@ -28,29 +31,31 @@ def test_depth_curve_three_probes_200_depths():
     filters = [optics.parse_filter(f) for f in ("700/30", "780/40", "880/50")]
     depths = np.linspace(0.0, 10.0, 200)
 
-    def run(probe_absorption=True):
+    def run(model="auto", probe_absorption=True):
         return [depth_profile("soft tissue", p, source=source, irradiance_mw_per_cm2=10.0, emission_filter=f,
                               camera=cam, lens=lens, exposure_s=0.01, depth_mm=depths, warn=False,
-                              probe_absorption=probe_absorption)
+                              probe_absorption=probe_absorption, transport_model=model)
                 for p, f in zip(probes, filters, strict=True)]
 
-    profiles = run()  # warm-up: table loading and caches
-    n_wl = sum(p.wavelength_nm.size for p in profiles)
-    times = []
-    for _ in range(7):
-        t0 = time.perf_counter()
-        run()
-        times.append(time.perf_counter() - t0)
-    best, median = min(times), float(np.median(times))
-    print(f"\ndepth curve: 3 probes x 200 depths x {n_wl // 3} wavelengths (1 nm grid): "
-          f"best {best * 1e3:.1f} ms, median {median * 1e3:.1f} ms; target {TARGET_S * 1e3:.0f} ms "
-          f"-> {TARGET_S / median:.2f}x the target budget")
+    def timed(**kw):
+        times = []
+        for _ in range(7):
+            t0 = time.perf_counter()
+            run(**kw)
+            times.append(time.perf_counter() - t0)
+        return min(times), float(np.median(times))
+
+    medians = {}
+    for model in ("mc_table", "diffusion"):
+        profiles = run(model)  # warm-up: table loading and caches
+        n_wl = sum(p.wavelength_nm.size for p in profiles)
+        best, medians[model] = timed(model=model)
+        print(f"\ndepth curve ({model}): 3 probes x 200 depths x {n_wl // 3} wavelengths (1 nm grid): "
+              f"best {best * 1e3:.1f} ms, median {medians[model] * 1e3:.1f} ms; target {TARGET_S * 1e3:.0f} ms "
+              f"-> {TARGET_S / medians[model]:.2f}x the target budget")
+        assert all(p.signal_e.shape == (200,) and p.transport_model == model for p in profiles)
+    print(f"Monte Carlo tables / diffusion time: {medians['mc_table'] / medians['diffusion']:.2f}x")
     # the probe's own absorption (background uptake and the target's self-attenuation), measured side by side
-    without = []
-    for _ in range(7):
-        t0 = time.perf_counter()
-        run(probe_absorption=False)
-        without.append(time.perf_counter() - t0)
-    print(f"without the probe's own absorption: median {float(np.median(without)) * 1e3:.1f} ms; with it "
-          f"{median / float(np.median(without)):.2f}x that")
-    assert all(p.signal_e.shape == (200,) for p in profiles)
+    _, without = timed(probe_absorption=False)
+    print(f"without the probe's own absorption: median {without * 1e3:.1f} ms; with it "
+          f"{medians['mc_table'] / without:.2f}x that")
