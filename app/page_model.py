@@ -111,8 +111,11 @@ def depth_grid_mm(depth_max_mm: float, depth_step_mm: float, target_depth_mm: fl
 
 
 @st.cache_data(max_entries=64, show_spinner=False)
-def depth_profiles(setup: Setup, depth_max_mm: float, depth_step_mm: float):
-    """One :class:`~probeplan.model.fluorescence.DepthProfile` per probe (its own filter) and the notes."""
+def depth_profiles(setup: Setup, depth_max_mm: float, depth_step_mm: float, layers: tuple = ()):
+    """One :class:`~probeplan.model.fluorescence.DepthProfile` per probe (its own filter) and the notes.
+
+    ``layers``: ((tissue name, thickness mm), ...) from the surface down over the set-up's tissue.
+    """
     from probeplan.errors import input_error
     from probeplan.model.fluorescence import depth_profile
 
@@ -122,6 +125,11 @@ def depth_profiles(setup: Setup, depth_max_mm: float, depth_step_mm: float):
             raise input_error("filters", f"{len(setup.filters)} filters for {len(setup.probes)} probes",
                               "give one emission filter per probe")
         tissue = build_tissue(setup)
+        if layers:
+            from probeplan.model.layers import Layer, LayeredTissue
+            from probeplan.model.tissue import tissue_preset
+
+            tissue = LayeredTissue(tuple(Layer(tissue_preset(name), mm) for name, mm in layers), tissue)
         probes = build_probes(setup)
         channels = build_channels(setup)
         depths = depth_grid_mm(depth_max_mm, depth_step_mm, setup.target_depth_mm)
@@ -142,12 +150,13 @@ def depth_profiles(setup: Setup, depth_max_mm: float, depth_step_mm: float):
 
 
 @st.cache_data(max_entries=64, show_spinner=False)
-def depth_png(setup: Setup, depth_max_mm: float, depth_step_mm: float, sbr_threshold: float) -> bytes:
+def depth_png(setup: Setup, depth_max_mm: float, depth_step_mm: float, sbr_threshold: float,
+              layers: tuple = ()) -> bytes:
     """SBR, SNR and blur against depth (probeplan.report.figures.depth_figure) as PNG bytes."""
     from probeplan.report.figures import depth_figure
     from probeplan.report.document import figure_png_bytes
 
-    profiles, _ = depth_profiles(setup, depth_max_mm, depth_step_mm)
+    profiles, _ = depth_profiles(setup, depth_max_mm, depth_step_mm, layers)
     fig = depth_figure(profiles, sbr_threshold=sbr_threshold, target_depth_mm=setup.target_depth_mm)
     return figure_png_bytes(fig, dpi=FIGURE_DPI)
 

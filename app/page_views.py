@@ -95,14 +95,24 @@ def depth_view(setup: Setup, mpe: float | None) -> None:
     c[1].number_input("deepest depth plotted (mm)", min_value=0.5, max_value=50.0, step=1.0,
                       persist_state="session", key="w_depth_max")
     c[2].number_input("depth step (mm)", min_value=0.01, max_value=5.0, step=0.05, persist_state="session", key="w_depth_step")
+    ss.setdefault("w_skin_mm", 0.0)
+    ss.setdefault("w_fat_mm", 0.0)
+    c = st.columns(2)
+    c[0].number_input("skin layer over the tissue (mm; 0: none)", min_value=0.0, max_value=5.0, step=0.1,
+                      key="w_skin_mm")
+    c[1].number_input("subcutaneous fat layer under the skin (mm; 0: none)", min_value=0.0, max_value=10.0,
+                      step=0.1, key="w_fat_mm")
+    layers = tuple((name, float(ss[key])) for name, key in (("skin", "w_skin_mm"), ("subcutaneous fat", "w_fat_mm"))
+                   if float(ss[key]) > 0)
     threshold = float(ss["w_sbr_threshold"])
     depth_max, depth_step = float(ss["w_depth_max"]), float(ss["w_depth_step"])
     irradiance_check(setup, mpe)
     with guard("depth"):
-        profiles, notes = depth_profiles(setup, depth_max, depth_step)
-        png = depth_png(setup, depth_max, depth_step, threshold)
+        profiles, notes = depth_profiles(setup, depth_max, depth_step, layers)
+        png = depth_png(setup, depth_max, depth_step, threshold, layers)
         st.image(png, caption=f"Dashed line: SBR {threshold:g}; dotted line: target depth "
-                              f"{setup.target_depth_mm:g} mm; dots: depths where diffusion theory is unreliable.",
+                              f"{setup.target_depth_mm:g} mm; dots: depths where the light-transport model is unreliable. Light "
+                              f"transport: {profiles[0].transport_model if profiles else 'auto'}.",
                  width="stretch")
         d = setup.target_depth_mm
         rows = []

@@ -58,15 +58,26 @@ def test_disc_escape_equals_integral_of_farrell_exitance(radius, depth, mu_a, mu
     # Closed form against numerical integration (scipy.integrate.quad) of the image-source surface flux
     # of Farrell, Patterson & Wilson 1992 as implemented in probeplan.model.transport.
     def integrand(rho):
-        return 2 * math.pi * rho * float(transport.point_source_exitance_per_mm2(rho, depth, mu_a, mu_sp))
+        return 2 * math.pi * rho * float(transport.point_source_exitance_per_mm2(rho, depth, mu_a, mu_sp, model="diffusion"))
 
     numeric, _ = integrate.quad(integrand, 0.0, radius, limit=200)
-    assert float(disc_escape_fraction(radius, depth, mu_a, mu_sp)) == pytest.approx(numeric, rel=1e-6)
+    assert float(disc_escape_fraction(radius, depth, mu_a, mu_sp, model="diffusion")) == pytest.approx(numeric, rel=1e-6)
 
 
-def test_disc_escape_tends_to_total_escape():
-    total = transport.point_source_escape(np.array([1.0, 4.0]), 0.2, 10.0)
-    np.testing.assert_allclose(disc_escape_fraction(np.inf, np.array([1.0, 4.0]), 0.2, 10.0), total, rtol=1e-12)
+@pytest.mark.parametrize("model", ["diffusion", "mc_table"])
+def test_disc_escape_tends_to_total_escape(model):
+    total = transport.point_source_escape(np.array([1.0, 4.0]), 0.2, 10.0, model=model)
+    np.testing.assert_allclose(disc_escape_fraction(np.inf, np.array([1.0, 4.0]), 0.2, 10.0, model=model), total,
+                               rtol=1e-12)
+
+
+@pytest.mark.parametrize(("depth", "mu_a", "mu_sp"), [(2.0, 1.03, 5.53), (5.0, 0.3, 8.0)])
+def test_small_disc_escape_is_area_times_on_axis_exitance(depth, mu_a, mu_sp):
+    # With the Monte Carlo tables a small disc must get the tables' on-axis exitance (pi r^2 J(0)):
+    # the blend in disc_escape_fraction is exact in that limit.
+    r = 1e-3 * depth
+    j0 = float(transport.point_source_exitance_per_mm2(0.0, depth, mu_a, mu_sp))
+    assert float(disc_escape_fraction(r, depth, mu_a, mu_sp)) == pytest.approx(math.pi * r**2 * j0, rel=1e-4)
 
 
 def test_signal_is_linear_in_concentration_and_irradiance(setup):

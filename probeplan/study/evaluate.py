@@ -279,6 +279,7 @@ def plan_model(plan: Plan, rules: Rules | None = None) -> PlanModel:
     from probeplan.model import optics
     from probeplan.study import safety
     from probeplan.catalog.setup import make_camera, make_filter
+    from probeplan.model.layers import Layer, LayeredTissue
     from probeplan.model.tissue import tissue_preset
 
     rules = default_rules() if rules is None else rules
@@ -307,6 +308,12 @@ def plan_model(plan: Plan, rules: Rules | None = None) -> PlanModel:
         channels.append(optics.Channel(ch["name"], source, filt, cam, lens, ch["exposure_s"]))
     with _located(plan, ("target", "tissue")):
         tissue = tissue_preset(plan.target["tissue"])
+    layers = []
+    for i, layer in enumerate(plan.tissue["layers"]):
+        with _located(plan, ("tissue", "layers", i, "tissue")):
+            layers.append(Layer(tissue_preset(layer["tissue"]), layer["thickness_mm"]))
+    if layers:
+        tissue = LayeredTissue(tuple(layers), tissue)
     if acq["irradiance_mw_per_cm2"] is not None:
         irradiance = skin = float(acq["irradiance_mw_per_cm2"])
     else:
@@ -678,7 +685,8 @@ def _imaging(plan: Plan, model: PlanModel) -> dict[str, Any]:
         ch = model.channels[own[k]]
         with _located(plan, ("probes", k)):
             profiles.append(depth_profile(model.tissue, probe, emission_filter=ch.emission_filter,
-                                          exposure_s=ch.exposure_s, depth_mm=depth, **common))
+                                          exposure_s=ch.exposure_s, depth_mm=depth,
+                                          transport_model=plan.tissue["transport_model"], **common))
     rows = []
     for k, prof in enumerate(profiles):
         ch = model.channels[own[k]]
@@ -695,6 +703,7 @@ def _imaging(plan: Plan, model: PlanModel) -> dict[str, Any]:
             "noise_amplification": float(report.noise_amplification[0, k]),
             "unmixed_snr": float(report.unmixed_snr[0, k]),
             "diffusion_valid": bool(prof.diffusion_valid[at]), "saturated": bool(prof.saturated[at]),
+            "transport_model": prof.transport_model,
         })
         notes += prof.notes
         if prof.saturated[at]:
@@ -724,8 +733,9 @@ def _imaging(plan: Plan, model: PlanModel) -> dict[str, Any]:
         problems.append(f"condition number {cond:.3g} at the target depth: the probes cannot be separated reliably")
     notes += report.notes
     imaging = EvaluationTable(
-        "imaging", f"Predicted imaging at the target depth ({tgt['depth_mm']:g} mm, {plan.target['tissue']})", rows,
+        "imaging", f"Predicted imaging at the target depth ({tgt['depth_mm']:g} mm, {model.tissue.name})", rows,
         note=f"Per binned pixel per exposure; each probe read in its own (brightest) channel. "
+             f"Light transport: {profiles[0].transport_model if profiles else plan.tissue['transport_model']}. "
              f"depth_at_sbr_threshold_mm: where SBR falls below "
              f"{DEFAULT_SBR_THRESHOLD:g} (empty: not within the profile). SBR = (S + B) / B; SNR = S / sqrt(S + B + "
              f"read noise^2). Unmixing condition number {cond:.3g} (separable below {SEPARABLE_CONDITION_LIMIT:g}).")

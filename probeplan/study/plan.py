@@ -9,6 +9,9 @@ A plan file has these tables (units are in the key names)::
                    route ("iv" | "iv_slow" | "ip" | "sc" | "im" | "oral"), injection_time_h,
                    optional quantum_yield, fwhm_nm, extinction_at_excitation_per_M_cm
     [target]       tissue, depth_mm, size_mm, uptake_ratio, concentration_uM, tumour_diameter_mm
+    [tissue]       optional: [[tissue.layers]] tissue, thickness_mm: layers from the surface down
+                   (e.g. skin, then subcutaneous fat) over the target's tissue; and
+                   transport_model ("auto" | "mc_table" | "diffusion")
     [acquisition]  source ("laser" | "led"), wavelength_nm, linewidth_nm, either
                    irradiance_mw_per_cm2 or power_mw + spot_diameter_mm, beam_profile,
                    camera, f_number, magnification, binning, positions, time_points_h,
@@ -117,6 +120,9 @@ _TARGET = {
                              help="expected probe concentration in target"),
     "tumour_diameter_mm": _num(minimum=0.0, maximum=100.0, exclusive=True, help="largest planned tumour diameter"),
 }
+_LAYER = {"tissue": _str(True, help="a tissue preset or user tissue, e.g. 'skin'"),
+          "thickness_mm": _num(True, minimum=0.0, maximum=50.0, exclusive=True, help="layer thickness in mm")}
+_TISSUE = {"transport_model": _str(default="auto", choices=("auto", "mc_table", "diffusion"))}
 _CHANNEL = {"name": _str(True), "filter": _str(True, help="e.g. '720/40' or a library filter"),
             "exposure_s": _num(True, minimum=0.0, maximum=3600.0, exclusive=True)}
 _ACQUISITION = {
@@ -155,6 +161,7 @@ SCHEMA: dict[str, tuple[dict[str, _Field], bool, dict[str, dict[str, _Field]]]] 
     "animals": (_ANIMALS, False, {"groups": _GROUP}),
     "probes": (_PROBE, True, {}),
     "target": (_TARGET, False, {}),
+    "tissue": (_TISSUE, False, {"layers": _LAYER}),
     "acquisition": (_ACQUISITION, False, {"channels": _CHANNEL}),
     "analysis": (_ANALYSIS, False, {}),
     "statistics": (_STATISTICS, False, {}),
@@ -175,6 +182,7 @@ class Plan:
     acquisition: dict[str, Any]
     analysis: dict[str, Any]
     statistics: dict[str, Any] | None
+    tissue: dict[str, Any] = field(default_factory=lambda: {"transport_model": "auto", "layers": []})
     path: Path | None = None
     text: str = field(default="", repr=False)
     source: str = field(default="", repr=False)  #: name used in messages (the file path, or the text's source)

@@ -23,6 +23,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     g.add_argument("--json", action="store_true", help="print every row and the summary as JSON")
     g.add_argument("--csv", metavar="FILE", help="write every row to a CSV file")
     g.add_argument("--plot", metavar="PNG", help="write SBR/SNR/blur against depth to a PNG file")
+    g.add_argument("--transport-model", default="auto", choices=["auto", "mc_table", "diffusion"],
+                   help="light transport: auto (default: the most accurate shipped, Monte Carlo tables), "
+                        "mc_table, or diffusion theory")
     add_output_options(parser)
 
 
@@ -69,6 +72,7 @@ def run(args: argparse.Namespace) -> int:
                 tissue, probe, source=source, irradiance_mw_per_cm2=args.irradiance, emission_filter=filt,
                 camera=cam, lens=lens, exposure_s=args.exposure_s, depth_mm=depths, target_size_mm=args.size_mm,
                 concentration_uM=args.concentration_uM, uptake_ratio=args.uptake_ratio, autofluorescence=af,
+                transport_model=args.transport_model,
             ))
     mpe = float(safety.skin_mpe_mw_per_cm2(args.excitation_nm, max(10.0, args.exposure_s)))
     summary = []
@@ -88,15 +92,20 @@ def run(args: argparse.Namespace) -> int:
     notes = sorted({n for p in profiles for n in p.notes}) + messages
     skin = {"wavelength_nm": args.excitation_nm, "irradiance_mw_per_cm2": args.irradiance,
             "skin_mpe_mw_per_cm2": mpe, "fraction_of_mpe": args.irradiance / mpe}
+    from probeplan.model.transport import TRANSPORT_MODELS
+
+    transport_model = profiles[0].transport_model if profiles else args.transport_model
     if args.json:
-        print_json({"caution": RESEARCH_USE_CAUTION, "sbr_threshold": args.sbr_threshold,
+        print_json({"caution": RESEARCH_USE_CAUTION, "transport_model": transport_model,
+                    "sbr_threshold": args.sbr_threshold,
                     "sbr_threshold_note": "common practice, not a standard", "skin": skin,
                     "summary": summary, "rows": rows, "notes": notes})
         return 0
     print(RESEARCH_USE_CAUTION)
     flag = "  ABOVE THE SKIN LIMIT" if args.irradiance > mpe else ""
     print(f"excitation {args.excitation_nm:g} nm at {args.irradiance:g} mW/cm^2; skin MPE (>= 10 s) "
-          f"{mpe:.0f} mW/cm^2 ({100 * args.irradiance / mpe:.1f} % of it){flag}\n")
+          f"{mpe:.0f} mW/cm^2 ({100 * args.irradiance / mpe:.1f} % of it){flag}")
+    print(f"light transport: {transport_model}: {TRANSPORT_MODELS.get(transport_model, '')}\n")
     step = max(1, int(round(1.0 / args.depth_step_mm)))
     shown = [r for p in profiles for r in p.rows()[::step]]
     print_table(shown, ["probe", "depth_mm", "signal_e", "background_e", "sbr", "snr", "blur_fwhm_mm",
