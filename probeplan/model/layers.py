@@ -46,6 +46,8 @@ from probeplan.errors import input_error
 __all__ = ["Layer", "LayeredTissue", "effective_coefficients", "planar_escape_diffusion",
            "layered_coefficients_and_factor", "MAX_LAYERS"]
 
+#: Millimetres per centimetre (depths in mm, coefficients in cm⁻¹).
+MM_PER_CM = 10.0
 #: Layers above the target's tissue that a stack may hold.
 MAX_LAYERS = 4
 
@@ -228,8 +230,8 @@ def planar_escape_diffusion(coefficients, boundaries_mm, depth_mm, a_factor) -> 
     ...                  point_source_escape(2.0, 0.1, 10.0, model="diffusion")))
     True
     """
-    depth_cm = np.asarray(depth_mm, dtype=np.float64)[..., None] / 10.0  # (..., 1)
-    tops = np.concatenate([[0.0], np.asarray(boundaries_mm, dtype=np.float64)]) / 10.0
+    depth_cm = np.asarray(depth_mm, dtype=np.float64)[..., None] / MM_PER_CM  # (..., 1)
+    tops = np.concatenate([[0.0], np.asarray(boundaries_mm, dtype=np.float64)]) / MM_PER_CM
     mu_a = np.stack([np.asarray(a, dtype=np.float64) for a, _ in coefficients])  # (T, W)
     mu_sp = np.stack([np.asarray(s, dtype=np.float64) for _, s in coefficients])
     diff = 1.0 / (3.0 * (mu_a + mu_sp))
