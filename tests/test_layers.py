@@ -14,8 +14,13 @@ import pytest
 from probeplan.errors import InputError
 from probeplan.model import transport as tr
 from probeplan.model.fluorescence import optical_properties
-from probeplan.model.layers import (Layer, LayeredTissue, effective_coefficients, layered_coefficients_and_factor,
-                                    planar_escape_diffusion)
+from probeplan.model.layers import (
+    Layer,
+    LayeredTissue,
+    effective_coefficients,
+    layered_coefficients_and_factor,
+    planar_escape_diffusion,
+)
 from probeplan.model.montecarlo import Layer as McLayer
 from probeplan.model.montecarlo import simulate_point_source, simulate_slab
 from probeplan.model.tissue import tissue_preset

@@ -113,7 +113,7 @@ def _tail_fill(log_c, log_se, z, min_points=4, slope=None):
         smooth = UnivariateSpline(z[keep], y, w=1.0 / se, s=float(last + 1), k=3)(z[keep])
     else:
         smooth = y
-    sel = np.flatnonzero((z[keep] >= z[last] - 2.0))
+    sel = np.flatnonzero(z[keep] >= z[last] - 2.0)
     if sel.size < min_points:
         sel = np.arange(max(0, last - min_points + 1), last + 1)
     fitted, _ = np.polyfit(z[sel], y[sel], 1, w=1.0 / se[sel])
