@@ -84,10 +84,10 @@ def test_layered_tissue_in_the_depth_model():
     from probeplan.model import dots, optics
     from probeplan.model.fluorescence import depth_profile
 
-    kw = dict(source=optics.Laser(808.0), irradiance_mw_per_cm2=10.0, emission_filter=optics.parse_filter("LP 1000"),
-              camera=optics.camera("ingaas"), lens=optics.Lens(2.0, 0.1), exposure_s=0.1,
+    kw = dict(source=optics.Laser(640.0), irradiance_mw_per_cm2=10.0, emission_filter=optics.parse_filter("700/30"),
+              camera=optics.camera("si-deep-depletion"), lens=optics.Lens(2.0, 0.1), exposure_s=0.1,
               depth_mm=[1.0, 3.0, 5.0], warn=False)
-    probe = dots.make_probe("PbS", 1100.0)
+    probe = dots.make_probe("CdTe", 700.0)
     muscle = tissue_preset("mouse muscle")
     plain = depth_profile(muscle, probe, **kw)
     # a "layer" of the same tissue changes nothing
