@@ -22,9 +22,9 @@ the layer factor L = (1-D layered escape)/(1-D escape of the stand-in)
 (:func:`layered_coefficients_and_factor`; for the fluence by 1-D reciprocity).  All
 layers share the surface's refractive index.  Against the package's layered Monte
 Carlo (skin 0.5–1 mm, subcutaneous fat 0.5–1.5 mm, then the target's tissue, g = 0.9)
-the escape and fluence are within 5 % at 800 nm (muscle and soft tissue below, 1–6 mm)
-and within 18 % at 1300 nm over liver (μa/μs′ ≈ 0.65 there, beyond the tables),
-see ``docs/transport_models.md`` and ``tests/test_layers.py``.  Diffusion over the
+the escape and fluence are within 5 % at 800 nm (muscle and soft tissue below, 1–6 mm);
+deep in NIR-II, where μa/μs′ leaves the tables, an earlier check found up to 18 % low at 6 mm
+(``docs/transport_models.md``, ``tests/test_layers.py``).  Diffusion over the
 base tissue alone (ignoring the layers) is off by up to 38 % in the same cases.
 
 References
