@@ -387,6 +387,8 @@ def test_huge_plan_numbers_are_refused_naming_line_and_range_within_a_memory_lim
     base = (DEMO / "plan.toml").read_text()
     cases, labels = [], []
     for section, key, spec in _plan_numeric_fields():
+        if f"[{section}]" not in base:  # optional tables the demo plan leaves out (e.g. [[tissue.layers]])
+            continue
         for huge in _HUGE:
             value = f"[{huge}, {huge}]" if spec.kind in ("numbers", "pair") else huge
             path = tmp_path / f"{section}.{key}.{huge[:4]}.toml"
