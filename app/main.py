@@ -64,4 +64,8 @@ def main() -> None:
     st.caption(FOOT_CAUTION)
 
 
-main()
+
+# Streamlit runs this file as "__main__"; a process spawned by multiprocessing re-imports its parent's main
+# script as "__mp_main__" and must not draw the page (a dask worker started from a test or a notebook).
+if __name__ == "__main__":
+    main()
