@@ -63,3 +63,25 @@ def test_stable_signatures():
     assert params["method"].default == "nnls" and params["channel_axis"].default == 0
     assert list(inspect.signature(safety.max_injection_volume_ml).parameters) == [
         "species", "route", "body_mass_g", "rules"]
+
+
+STABLE_NAMES = """optical_properties molar_extinction absorption mu_eff diffuse_reflectance point_source_escape
+point_source_exitance_per_mm2 point_source_blur_fwhm_mm broad_beam_fluence diameter_nm exciton_peak_nm
+extinction_coefficient concentration_uM skin_mpe_mw_per_cm2 max_injection_volume_ml unmix
+sphere_reduced_scattering_per_cm phantom_recipe""".split()
+
+
+@pytest.mark.parametrize("name", STABLE_NAMES)
+def test_stable_name_at_the_top_level(name):
+    assert name in probeplan.__all__ and name in dir(probeplan)
+    assert callable(getattr(probeplan, name))
+
+
+def test_top_level_names_give_published_values():
+    # a preset name works at the top level (Jacques 2013 Table 2: skin mu_s'(800 nm) = 23.59 /cm)
+    assert float(probeplan.optical_properties("skin", 800.0)[1]) == pytest.approx(23.59, abs=0.01)
+    assert float(probeplan.molar_extinction("HbO2", 800.0)) == 816.0  # Prahl's compilation
+    assert float(probeplan.mu_eff(0.1, 10.0)) == pytest.approx(1.7407, abs=1e-4)  # sqrt(3 mu_a (mu_a + mu_s'))
+    assert float(probeplan.diameter_nm("CdSe", 550.0)) == pytest.approx(3.04, abs=0.01)  # Yu et al. 2003
+    assert float(probeplan.skin_mpe_mw_per_cm2(808.0, 100.0)) == pytest.approx(328.9, abs=0.1)  # ANSI Z136.1
+    assert float(probeplan.max_injection_volume_ml("mouse", "iv", 25.0)) == pytest.approx(0.125)  # Diehl 2001
