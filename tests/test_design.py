@@ -5,7 +5,7 @@ Outside references used here:
 * the unmixed SNR c/√[(MᵀΣ⁻¹M)⁻¹]ₖₖ of weighted least squares (Neher & Neher, J. Microsc. 213, 46
   (2004), doi:10.1111/j.1365-2818.2004.01262.x), computed independently with numpy's general
   matrix inverse for the brute-force checks;
-* the camera SNR S/√(S + B + σr²) in electrons (REFERENCES.md "Camera noise"; EMVA 1288) for the
+* the camera SNR S/√(S + B + σr²) in electrons (docs/sources.md "Camera noise"; EMVA 1288) for the
   channel without crosstalk;
 * exhaustive enumeration (itertools) as the definition of the optimum.
 """
@@ -135,7 +135,7 @@ def test_identical_probes_are_never_separable():
 
 def test_channels_without_crosstalk_give_the_camera_snr():
     # identity response: each probe seen by its own filter only; then the unmixed SNR is the
-    # single-channel camera SNR S/√(S + B + σr²) in electrons (REFERENCES.md, camera noise)
+    # single-channel camera SNR S/√(S + B + σr²) in electrons (docs/sources.md, camera noise)
     r = np.diag([400.0, 900.0, 250.0])[None]
     back = np.array([[30.0, 10.0, 60.0]])
     upt = np.zeros((1, 3, 3))
@@ -171,7 +171,7 @@ def test_more_irradiance_gives_a_higher_worst_snr(small):
 
 
 def test_default_irradiance_is_the_skin_mpe():
-    # ANSI Z136.1 / IEC 60825-1 long exposure: 0.2 C_A W/cm² with C_A = 10^(0.002(λ-700)) (REFERENCES.md: 808 nm -> 328.9)
+    # ANSI Z136.1 / IEC 60825-1 long exposure: 0.2 C_A W/cm² with C_A = 10^(0.002(λ-700)) (docs/sources.md: 808 nm -> 328.9)
     probes = [dots.make_probe("PbS", p) for p in (1100, 1300)]
     filters = [optics.parse_filter(f) for f in ("1100/50", "1300/50")]
     res = design("soft tissue", probes, filters, sources=optics.Laser(808.0, 1.0), camera=optics.camera("ingaas"), k=2,

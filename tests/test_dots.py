@@ -12,7 +12,7 @@ from probeplan.model import dots
 from probeplan.errors import AssumptionWarning, InputError, ModelValidityWarning
 from probeplan.model.spectra import Spectrum
 
-HC = 1239.84  # eV nm, the value REFERENCES.md uses for the PbS worked point
+HC = 1239.84  # eV nm, the value docs/sources.md uses for the PbS worked point
 SIZED = ("CdSe", "CdTe", "CdS", "PbS", "PbSe")
 
 

@@ -213,7 +213,7 @@ def test_progress_bar_runs(capsys):
 
 # --------------------------------------------------------------------------- diffusion versus Monte Carlo
 
-# Semi-infinite medium, mu_a 0.1, mu_s' 10 cm^-1 (isotropic scattering), n 1.4 in air: the REFERENCES.md
+# Semi-infinite medium, mu_a 0.1, mu_s' 10 cm^-1 (isotropic scattering), n 1.4 in air: the docs/sources.md
 # case.  One transport mean free path is 1/(mu_a + mu_s') = 0.99 mm.
 _MUA, _MUSP, _N = 0.1, 10.0, 1.4
 _MFP_MM = 10.0 / (_MUA + _MUSP)

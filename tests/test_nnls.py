@@ -1,5 +1,5 @@
 """Batched exact NNLS checked against scipy.optimize.nnls (the reference implementation named in
-REFERENCES.md "Unmixing"; Lawson & Hanson 1974) to 1e-6 relative."""
+docs/sources.md "Unmixing"; Lawson & Hanson 1974) to 1e-6 relative."""
 
 import numpy as np
 import pytest

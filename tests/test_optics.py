@@ -192,14 +192,14 @@ def test_source_checks():
 
 
 def test_silicon_back_illuminated_qe_figures():
-    # REFERENCES.md (camera noise): back-illuminated silicon QE > 90 % at 490-700 nm, ~0 by 1100 nm
+    # docs/sources.md (camera noise): back-illuminated silicon QE > 90 % at 490-700 nm, ~0 by 1100 nm
     cam = optics.camera("si-back")
     assert np.all(cam.qe(np.arange(490.0, 701.0, 5.0)) > 0.9)
     assert cam.qe(1100.0) == pytest.approx(0.0, abs=1e-3)
 
 
 def test_ingaas_qe_figures():
-    # REFERENCES.md: InGaAs > 80 % over 960-1600 nm, cut-off about 1.7 um
+    # docs/sources.md: InGaAs > 80 % over 960-1600 nm, cut-off about 1.7 um
     cam = optics.camera("ingaas")
     assert np.all(cam.qe(np.arange(960.0, 1601.0, 5.0)) > 0.8)
     assert cam.qe(1750.0) == 0.0 and cam.qe(1800.0) == 0.0

@@ -1,4 +1,4 @@
-"""The stable interfaces of DESIGN §5 exist, every module declares its public names, and they resolve."""
+"""The stable interfaces exist, every module declares its public names, and they resolve."""
 
 from __future__ import annotations
 
@@ -28,7 +28,7 @@ def test_every_public_name_in_all_exists(module):
 
 
 def test_stable_interfaces_behave_as_stated():
-    # DESIGN §5 signatures, with a value each; the sources are cited in the modules' own tests.
+    # The stable signatures, with a value each; the sources are cited in the modules' own tests.
     from probeplan.model import dots
     from probeplan.study import safety
     from probeplan.model import tissue
@@ -39,7 +39,7 @@ def test_stable_interfaces_behave_as_stated():
     assert float(mu_sp) == pytest.approx(23.59, abs=0.01)  # Jacques 2013 Table 2
     assert float(tissue.molar_extinction("HbO2", 800.0)) == 816.0  # Prahl
     assert float(tissue.absorption("water", 800.0)) == pytest.approx(0.01964)  # Segelstein
-    assert float(transport.mu_eff(0.1, 10.0)) == pytest.approx(1.7407, abs=1e-4)  # REFERENCES.md
+    assert float(transport.mu_eff(0.1, 10.0)) == pytest.approx(1.7407, abs=1e-4)  # docs/sources.md
     assert float(transport.diffuse_reflectance(0.1, 10.0, n=1.4)) == pytest.approx(0.6141, abs=1e-4)  # Farrell 1992
     assert float(dots.diameter_nm("CdSe", 550.0)) == pytest.approx(3.04, abs=0.01)  # Yu 2003
     assert float(dots.exciton_peak_nm("CdSe", float(dots.diameter_nm("CdSe", 550.0)))) == pytest.approx(550.0)

@@ -2,7 +2,7 @@
 
 Sources named beside each check:
 * [STD]  ANSI Z136.1 / IEC 60825-1 / ICNIRP skin MPE and C_A (Directive 2006/25/EC, Annex II,
-  Tables 2.4-2.6 carry the same values); the check table is the one in REFERENCES.md.
+  Tables 2.4-2.6 carry the same values); the check table is the one in docs/sources.md.
 * [DIEHL] Diehl et al., J. Appl. Toxicol. 21, 15 (2001), doi:10.1002/jat.727, Table 1 and the
   blood-volume table (values as reproduced in institutional guidance pages citing Table 1).
 """

@@ -11,7 +11,7 @@ from probeplan.model import tissue
 from probeplan.errors import InputError
 from probeplan.model.spectra import Spectrum
 
-# Prahl's haemoglobin compilation (Gratzer, Kollias), values quoted in REFERENCES.md.
+# Prahl's haemoglobin compilation (Gratzer, Kollias), values quoted in docs/sources.md.
 HB_POINTS = [
     ("HbO2", 650.0, 368.0),
     ("Hb", 650.0, 3750.12),
@@ -36,14 +36,14 @@ def test_haemoglobin_interpolates_between_rows():
 
 
 def test_water_segelstein_points():
-    # Segelstein 1981 via Prahl: 800 nm 0.01964 cm^-1 (REFERENCES.md).
+    # Segelstein 1981 via Prahl: 800 nm 0.01964 cm^-1 (docs/sources.md).
     assert float(tissue.absorption("water", 800.0)) == pytest.approx(0.01964, rel=1e-6)
     # Jacques 2013 worked example: water at 970 nm ~0.45 cm^-1.
     assert float(tissue.absorption("water", 970.0)) == pytest.approx(0.45, rel=0.02)
 
 
 def test_water_hale_querry_agreement_in_the_nir():
-    # REFERENCES.md: Hale & Querry 1973 agrees within 1 % at 700-900 nm and differs by ~20 % at 1200 nm.
+    # docs/sources.md: Hale & Querry 1973 agrees within 1 % at 700-900 nm and differs by ~20 % at 1200 nm.
     # Hale & Querry 900 nm mu_a ~0.0679 cm^-1 (k = 4.86e-7; from memory) - loose 5 % check only.
     assert float(tissue.absorption("water", 900.0)) == pytest.approx(0.0679, rel=0.05)
 
@@ -70,8 +70,8 @@ def test_melanosome_formula():
 @pytest.mark.parametrize(
     ("preset", "wl", "expected"),
     [
-        ("skin", 800.0, 23.59),  # Jacques 2013 Table 2 check value (REFERENCES.md)
-        ("soft tissue", 650.0, 13.49),  # Jacques 2013 Table 2 check value (REFERENCES.md)
+        ("skin", 800.0, 23.59),  # Jacques 2013 Table 2 check value (docs/sources.md)
+        ("soft tissue", 650.0, 13.49),  # Jacques 2013 Table 2 check value (docs/sources.md)
         ("skin", 500.0, 46.0),  # a is mu_s' at the 500 nm reference by definition
         ("mouse muscle", 500.0, 9.8),  # Jacques 2013 Table 1 (Alexandrakis 2005)
     ],
@@ -97,7 +97,7 @@ def test_seven_table2_classes_and_mouse_organs_are_presets():
     for n in ["skin", "brain", "breast", "bone", "soft tissue", "fibrous", "fatty tissue",
               "mouse muscle", "mouse liver", "mouse kidney", "mouse lung", "mouse whole blood", "subcutaneous fat"]:
         assert n in names
-    # Jacques 2013 Table 2 a, b for each class (REFERENCES.md)
+    # Jacques 2013 Table 2 a, b for each class (docs/sources.md)
     table2 = {"skin": (46.0, 1.421), "brain": (24.2, 1.611), "breast": (16.8, 1.055), "bone": (22.9, 0.716),
               "soft tissue": (18.9, 1.286), "fibrous": (27.1, 1.627), "fatty tissue": (18.4, 0.672)}
     for n, (a, b) in table2.items():

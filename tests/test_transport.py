@@ -1,6 +1,6 @@
 """Tests of probeplan.model.transport against published values, independent numerics and iadpython.
 
-Sources are named beside each check.  "REFERENCES.md" values are the project's
+Sources are named beside each check.  "docs/sources.md" values are the project's
 collected check values (Haskell et al. 1994; Groenhuis et al. 1983; Farrell et al. 1992).
 """
 
@@ -42,20 +42,20 @@ def test_public_names_exist():
 
 @pytest.mark.parametrize(("mu_a", "mu_sp", "expected"), [(0.1, 10.0, 1.7407), (1.0, 10.0, 5.7446)])
 def test_mu_eff_reference_values(mu_a, mu_sp, expected):
-    # REFERENCES.md, diffusion table (Farrell et al. 1992 definition of mu_eff)
+    # docs/sources.md, diffusion table (Farrell et al. 1992 definition of mu_eff)
     assert float(tr.mu_eff(mu_a, mu_sp)) == pytest.approx(expected, abs=5e-5)
 
 
 @pytest.mark.parametrize(("n", "r_eff", "a_factor"), [(1.33, 0.4311, 2.515), (1.40, 0.4935, 2.949)])
 def test_exact_boundary_reference_values(n, r_eff, a_factor):
-    # REFERENCES.md: Haskell et al., JOSA A 11, 2727 (1994), exact R_eff and A
+    # docs/sources.md: Haskell et al., JOSA A 11, 2727 (1994), exact R_eff and A
     assert float(tr.effective_reflection(n)) == pytest.approx(r_eff, abs=5e-5)
     # A is quoted to 3 decimals from the rounded R_eff, hence the looser tolerance
     assert float(tr.boundary_factor(n)) == pytest.approx(a_factor, abs=1e-3)
 
 
 def test_polynomial_boundary_reference_values():
-    # REFERENCES.md: Groenhuis et al. 1983 polynomial at n = 1.40 -> 0.5295 / 3.251
+    # docs/sources.md: Groenhuis et al. 1983 polynomial at n = 1.40 -> 0.5295 / 3.251
     assert float(tr.effective_reflection(1.4, method="polynomial")) == pytest.approx(0.5295, abs=5e-5)
     assert float(tr.boundary_factor(1.4, method="polynomial")) == pytest.approx(3.251, abs=5e-4)
     # n = 1.33: the published polynomial r_id = -1.440/n^2 + 0.710/n + 0.668 + 0.0636 n evaluated by hand
@@ -64,7 +64,7 @@ def test_polynomial_boundary_reference_values():
 
 
 def test_diffuse_reflectance_reference_value():
-    # REFERENCES.md: Farrell et al. 1992 closed form, mu_a 0.1, mu_s' 10 cm^-1, n 1.4, polynomial A -> 0.6141
+    # docs/sources.md: Farrell et al. 1992 closed form, mu_a 0.1, mu_s' 10 cm^-1, n 1.4, polynomial A -> 0.6141
     assert float(tr.diffuse_reflectance(0.1, 10.0, 1.4)) == pytest.approx(0.6141, abs=5e-5)
     assert float(tr.diffuse_reflectance(0.1, 10.0, n=1.4, method="polynomial")) == pytest.approx(0.6141, abs=5e-5)
 

@@ -3,7 +3,7 @@
 Stacks are read with their axes: ``(C, Y, X)``, ``(C, Z, Y, X)``, ``(T, C, Y, X)`` and
 other orders tifffile reports.  The channel axis comes from the file when it says
 (OME-TIFF ``C`` axis, or RGB samples ``S``); a plain 3-D TIFF is taken as channel-first
-(the package convention, DESIGN §3) and the choice is recorded in
+(the package convention) and the choice is recorded in
 :attr:`StackInfo.channel_axis_source`; a plain stack of more dimensions needs an explicit
 ``channel_axis``.  Channel names and the physical pixel size come from the OME metadata
 when present.

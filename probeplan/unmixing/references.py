@@ -2,7 +2,7 @@
 
 Three sources give the same :class:`ReferenceSpectra` value:
 
-* a CSV file (DESIGN §5): a ``channel`` column naming each channel, then one column per
+* a CSV file (the documented format): a ``channel`` column naming each channel, then one column per
   component (probe or autofluorescence) — :func:`read_references_csv`;
 * single-probe control stacks and an unlabelled control — :func:`references_from_controls`;
 * a matrix computed elsewhere (e.g. a channel model) — :func:`references_from_matrix`.

@@ -21,7 +21,7 @@ TARGET_INTERACTIONS_PER_S = 10e6
 #: Target time of one depth-curve figure (3 probes x 200 depths x ~300 wavelengths), seconds.
 TARGET_DEPTH_CURVE_S = 0.050
 
-# Near-infrared soft tissue in air: mu_a 0.1, mu_s 100 cm^-1, g 0.9 (mu_s' 10), n 1.4 (REFERENCES.md case).
+# Near-infrared soft tissue in air: mu_a 0.1, mu_s 100 cm^-1, g 0.9 (mu_s' 10), n 1.4 (docs/sources.md case).
 _TISSUE = [Layer(math.inf, 0.1, 100.0, 0.9, 1.4)]
 _PHOTONS = {"python": 100, "numpy": 10_000, "numba": 40_000}
 
@@ -51,7 +51,7 @@ def test_monte_carlo_interaction_rate():
 
 def _tissue_like(wavelength_nm):
     # Magnitudes only (timing input): Jacques 2013 soft-tissue scattering power law a = 18.9, b = 1.286
-    # (REFERENCES.md) and a smooth absorption between 0.05 and 0.6 cm^-1.
+    # (docs/sources.md) and a smooth absorption between 0.05 and 0.6 cm^-1.
     mu_sp = 18.9 * (wavelength_nm / 500.0) ** -1.286
     mu_a = 0.05 + 0.55 * np.exp(-(((wavelength_nm - 980.0) / 60.0) ** 2)) + 0.2 * np.exp(-(wavelength_nm - 600.0) / 40.0)
     return mu_a, mu_sp
