@@ -262,7 +262,8 @@ def test_page_in_chromium(tmp_path):
                 _upload(page, 0, study_csv)
                 page.get_by_text("6 animals").wait_for(timeout=UI_TIMEOUT_MS)
                 _wait_idle(page)
-                assert page.locator("[data-testid='stImage'] img").count() >= 1
+                # the figure is drawn after the summary line: wait for it rather than count at once
+                page.locator("[data-testid='stImage'] img").first.wait_for(timeout=UI_TIMEOUT_MS)
                 assert page.locator("[data-testid='stException']").count() == 0
                 time.sleep(1.0)
                 page.screenshot(path=str(ARTIFACTS / "browser-8-study.png"))
