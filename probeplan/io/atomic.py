@@ -40,6 +40,7 @@ from typing import Any
 from probeplan.errors import InputError, input_error
 
 __all__ = [
+    "file_sha256",
     "atomic_path",
     "write_bytes_atomic",
     "write_text_atomic",
@@ -642,3 +643,19 @@ def update_json_file(path: str | Path, update: Callable[[Any], Any], *, read: Ca
                 tmp.unlink()
             raise
     return data
+
+
+def file_sha256(path) -> str:
+    """Checksum of a file, or of every file in a folder (an OME-Zarr image) with its relative name."""
+    import hashlib
+
+    h = hashlib.sha256()
+    p = Path(path)
+    files = sorted(f for f in p.rglob("*") if f.is_file()) if p.is_dir() else [p]
+    for f in files:
+        if p.is_dir():
+            h.update(str(f.relative_to(p)).encode())
+        with open(f, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 22), b""):
+                h.update(block)
+    return h.hexdigest()

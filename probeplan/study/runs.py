@@ -32,7 +32,8 @@ import numpy as np
 import pandas as pd
 
 from probeplan.errors import input_error
-from probeplan.io.atomic import check_outputs, current_policy, make_output_folder, output_batch, readable_path
+from probeplan.io.atomic import (check_outputs, current_policy, file_sha256, make_output_folder, output_batch,
+                                 readable_path)
 from probeplan.study.table import Acquisition, read_study_table
 from probeplan.unmixing.references import abundance_unit
 
@@ -418,18 +419,7 @@ def read_table_csv(path: str | os.PathLike) -> pd.DataFrame:
 
 
 # --------------------------------------------------------------------------- the study
-def _sha256(path) -> str:
-    """Checksum of a file, or of every file in a folder (an OME-Zarr image) with its relative name."""
-    h = hashlib.sha256()
-    p = Path(path)
-    files = sorted(f for f in p.rglob("*") if f.is_file()) if p.is_dir() else [p]
-    for f in files:
-        if p.is_dir():
-            h.update(str(f.relative_to(p)).encode())
-        with open(f, "rb") as fh:
-            for block in iter(lambda: fh.read(1 << 22), b""):
-                h.update(block)
-    return h.hexdigest()
+_sha256 = file_sha256
 
 
 def _write_shared_rois(path: Path, settings: StudySettings, shape_yx) -> Path:

@@ -69,20 +69,9 @@ def _stem(name: str) -> str:
 
 
 def _sha256(path) -> str:
-    """Checksum of a file, or of every file in a folder (an OME-Zarr image) with its relative name."""
-    import hashlib
-    from pathlib import Path
+    from probeplan.io.atomic import file_sha256
 
-    h = hashlib.sha256()
-    p = Path(path)
-    files = sorted(f for f in p.rglob("*") if f.is_file()) if p.is_dir() else [p]
-    for f in files:
-        if p.is_dir():
-            h.update(str(f.relative_to(p)).encode())
-        with open(f, "rb") as fh:
-            for block in iter(lambda: fh.read(1 << 22), b""):
-                h.update(block)
-    return h.hexdigest()
+    return file_sha256(path)
 
 
 def _settings_digest(args, refs) -> str:
