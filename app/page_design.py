@@ -54,9 +54,9 @@ def _run_search(setup: Setup, materials: list[str]) -> None:
     """Build the candidates, run probeplan.design.search.design with a progress bar, keep the result."""
     import numpy as np
 
+    from probeplan.catalog import resolve
     from probeplan.design import search as design_mod
     from probeplan.model import optics
-    from probeplan.catalog.setup import make_camera
 
     ss = st.session_state
     notes: list[str] = []
@@ -83,7 +83,7 @@ def _run_search(setup: Setup, materials: list[str]) -> None:
 
         result = design_mod.design(
             build_tissue(setup), probes, filters, sources=optics.Laser(setup.excitation_nm),
-            camera=make_camera(setup.camera, setup.binning),
+            camera=resolve.camera(setup.camera, setup.binning),
             lens=optics.Lens(setup.f_number, setup.magnification), k=int(ss["w_ds_k"]),
             depth_mm=setup.target_depth_mm, exposure_s=setup.exposure_s,
             irradiance_mw_per_cm2=None if ss["w_ds_use_mpe"] else setup.irradiance_mw_per_cm2,

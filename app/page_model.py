@@ -16,6 +16,7 @@ from app.page_common import FIGURE_DPI, ProbeSpec, captured_warnings
 
 __all__ = [
     "Setup",
+    "build",
     "build_tissue",
     "build_probes",
     "build_channels",
@@ -52,43 +53,44 @@ class Setup(NamedTuple):
     autofluorescence_yield_per_cm: float | None
 
 
-def build_tissue(setup: Setup):
-    """The tissue preset, with the composition changes applied."""
-    from probeplan.model.tissue import tissue_preset
+def build(setup: Setup, layers: tuple = ()):
+    """The set-up's objects, by the catalog's one builder (as the command line and the plan build theirs).
 
-    tissue = tissue_preset(setup.tissue)
+    ``layers``: ((tissue name, thickness mm), ...) from the surface down over the set-up's tissue.
+    """
+    from probeplan.catalog.setup import build_setup
+    from probeplan.errors import input_error
+
+    names = [(m, float(peak)) for m, peak, _, _ in setup.probes]
+    if len(set(names)) != len(names):
+        raise input_error("probes", f"two probes are the same ({names})", "give each probe its own material or peak")
+    return build_setup(
+        tissue=setup.tissue, composition=dict(setup.composition) or None,
+        probes=[{"material": m, "emission_peak_nm": peak, "quantum_yield": qy, "extinction_at_excitation_per_M_cm": e}
+                for m, peak, qy, e in setup.probes],
+        filters=list(setup.filters), excitation_nm=setup.excitation_nm,
+        irradiance_mw_per_cm2=setup.irradiance_mw_per_cm2, camera=setup.camera, binning=setup.binning,
+        f_number=setup.f_number, magnification=setup.magnification, exposure_s=setup.exposure_s,
+        autofluorescence_yield_per_cm=setup.autofluorescence_yield_per_cm, layers=layers,
+    )
+
+
+def build_tissue(setup: Setup):
+    """The tissue (preset or user tissue), with the composition changes applied."""
+    from probeplan.catalog import resolve
+
+    tissue = resolve.tissue(setup.tissue)
     return tissue.with_composition(**dict(setup.composition)) if setup.composition else tissue
 
 
 def build_probes(setup: Setup) -> list:
     """Probe objects from (material, peak, QY, extinction) values."""
-    from probeplan.model import dots
-
-    probes = []
-    for material, peak, qy, eps in setup.probes:
-        overrides = {}
-        if qy is not None:
-            overrides["quantum_yield"] = qy
-        if eps is not None:
-            overrides["extinction_at_excitation_per_M_cm"] = eps
-        probes.append(dots.make_probe(material, peak, **overrides))
-    names = [p.name for p in probes]
-    if len(set(names)) != len(names):
-        from probeplan.errors import input_error
-
-        raise input_error("probes", f"two probes are the same ({names})", "give each probe its own material or peak")
-    return probes
+    return build(setup).probes
 
 
 def build_channels(setup: Setup) -> list:
     """One channel per emission filter; source, camera, lens and exposure shared."""
-    from probeplan.model import optics
-    from probeplan.catalog.setup import make_camera, make_filter
-
-    source = optics.Laser(setup.excitation_nm)
-    lens = optics.Lens(setup.f_number, setup.magnification)
-    cam = make_camera(setup.camera, setup.binning)
-    return [optics.Channel(f, source, make_filter(f), cam, lens, setup.exposure_s) for f in setup.filters]
+    return build(setup).channels
 
 
 def autofluorescence(setup: Setup):
@@ -124,23 +126,16 @@ def depth_profiles(setup: Setup, depth_max_mm: float, depth_step_mm: float, laye
         if len(setup.filters) != len(setup.probes):
             raise input_error("filters", f"{len(setup.filters)} filters for {len(setup.probes)} probes",
                               "give one emission filter per probe")
-        tissue = build_tissue(setup)
-        if layers:
-            from probeplan.model.layers import Layer, LayeredTissue
-            from probeplan.model.tissue import tissue_preset
-
-            tissue = LayeredTissue(tuple(Layer(tissue_preset(name), mm) for name, mm in layers), tissue)
-        probes = build_probes(setup)
-        channels = build_channels(setup)
+        built = build(setup, layers)
         depths = depth_grid_mm(depth_max_mm, depth_step_mm, setup.target_depth_mm)
         profiles = [
             depth_profile(
-                tissue, probe, source=ch.source, irradiance_mw_per_cm2=setup.irradiance_mw_per_cm2,
-                emission_filter=ch.emission_filter, camera=ch.camera, lens=ch.lens, exposure_s=setup.exposure_s,
+                built.tissue, probe, source=ch.source, irradiance_mw_per_cm2=built.irradiance_mw_per_cm2,
+                emission_filter=ch.emission_filter, camera=ch.camera, lens=ch.lens, exposure_s=ch.exposure_s,
                 depth_mm=depths, target_size_mm=setup.target_size_mm, concentration_uM=setup.concentration_uM,
-                uptake_ratio=setup.uptake_ratio, autofluorescence=autofluorescence(setup),
+                uptake_ratio=setup.uptake_ratio, autofluorescence=built.autofluorescence,
             )
-            for probe, ch in zip(probes, channels, strict=True)
+            for probe, ch in zip(built.probes, built.channels, strict=True)
         ]
     for p in profiles:
         for n in p.notes:
@@ -153,8 +148,8 @@ def depth_profiles(setup: Setup, depth_max_mm: float, depth_step_mm: float, laye
 def depth_png(setup: Setup, depth_max_mm: float, depth_step_mm: float, sbr_threshold: float,
               layers: tuple = ()) -> bytes:
     """SBR, SNR and blur against depth (probeplan.report.figures.depth_figure) as PNG bytes."""
-    from probeplan.report.figures import depth_figure
     from probeplan.report.document import figure_png_bytes
+    from probeplan.report.figures import depth_figure
 
     profiles, _ = depth_profiles(setup, depth_max_mm, depth_step_mm, layers)
     fig = depth_figure(profiles, sbr_threshold=sbr_threshold, target_depth_mm=setup.target_depth_mm)
@@ -168,14 +163,12 @@ def channel_results(setup: Setup):
 
     notes: list[str] = []
     with captured_warnings(notes):
-        tissue = build_tissue(setup)
-        probes = build_probes(setup)
-        channels = build_channels(setup)
+        built = build(setup)
         rep = channel_report(
-            tissue, probes, channels, irradiance_mw_per_cm2=setup.irradiance_mw_per_cm2,
+            built.tissue, built.probes, built.channels, irradiance_mw_per_cm2=built.irradiance_mw_per_cm2,
             depth_mm=[setup.target_depth_mm], target_size_mm=setup.target_size_mm,
             concentration_uM=setup.concentration_uM, uptake_ratio=setup.uptake_ratio,
-            autofluorescence=autofluorescence(setup),
+            autofluorescence=built.autofluorescence,
         )
     notes += [n for n in rep.notes if n not in notes]
     return rep, notes
@@ -185,8 +178,8 @@ def channel_results(setup: Setup):
 def channels_png(setup: Setup) -> bytes:
     """Emission spectra with filter bands and the crosstalk map (probeplan.report.figures.channels_figure)."""
     from probeplan.model.fluorescence import emission_grid_nm
-    from probeplan.report.figures import channels_figure
     from probeplan.report.document import figure_png_bytes
+    from probeplan.report.figures import channels_figure
 
     rep, _ = channel_results(setup)
     notes: list[str] = []
@@ -219,7 +212,6 @@ def material_ranges() -> dict[str, tuple[float, float]]:
 
 def camera_names() -> list[str]:
     """Built-in cameras and those in the user library folder."""
-    from probeplan.catalog import library
-    from probeplan.model import optics
+    from probeplan.catalog import resolve
 
-    return [r["name"] for r in optics.list_cameras()] + list(library.user_camera_names())
+    return resolve.camera_names()

@@ -84,7 +84,7 @@ def init_state() -> None:
 
 def _load_composition(force: bool = False) -> None:
     """Fill the composition sliders from the chosen preset."""
-    from probeplan.model.tissue import tissue_preset
+    from probeplan.catalog.resolve import tissue as tissue_preset
 
     ss = st.session_state
     if not force and all(f"w_comp_{f}" in ss for f, *_ in COMPOSITION_FIELDS):

@@ -9,7 +9,9 @@ subclass instead.
 
 from __future__ import annotations
 
+import difflib
 import math
+from collections.abc import Iterable
 from typing import Any
 
 __all__ = [
@@ -20,6 +22,7 @@ __all__ = [
     "ScatteringRangeWarning",
     "ProbeAbsorptionWarning",
     "input_error",
+    "did_you_mean",
     "positive_number",
 ]
 
@@ -99,3 +102,42 @@ def positive_number(name: str, value: Any, *, allow_zero: bool = False) -> float
     if not math.isfinite(v) or v < 0 or (v == 0 and not allow_zero):
         raise input_error(name, f"got {value!r}", "give a finite number " + (">= 0" if allow_zero else "> 0"))
     return v
+
+
+def did_you_mean(name: Any, choices: Iterable[Any], *, cutoff: float = 0.5, listing: str | None = None) -> str:
+    """The fix part of an unknown-name message: the closest choice, then the valid ones.
+
+    The package's one "did you mean" helper: every lookup by name (tissues,
+    materials, cameras, filters, rules, plan keys, options) words its refusal
+    with it.
+
+    Parameters
+    ----------
+    name : str
+        What was asked for.
+    choices : iterable of str
+        The valid names.
+    cutoff : float
+        Similarity (0-1) a choice needs to be suggested (:func:`difflib.get_close_matches`).
+    listing : str, optional
+        Said instead of the list of valid names (for long lists kept in a file).
+
+    Examples
+    --------
+    >>> did_you_mean("skn", ["skin", "brain"])
+    "did you mean 'skin'? valid: 'skin', 'brain'"
+    >>> did_you_mean("zebrafish", ["mouse", "rat"])
+    "valid: 'mouse', 'rat'"
+    """
+    choices = [str(c) for c in choices]
+    name = str(name)
+    close = difflib.get_close_matches(name, choices, n=1, cutoff=cutoff)
+    if not close:
+        lowered = {str(c).lower(): c for c in choices}
+        if str(name).lower() in lowered:
+            close = [lowered[str(name).lower()]]
+    hint = f"did you mean {close[0]!r}? " if close else ""
+    if listing is not None:
+        return f"{hint}{listing}"
+    shown = ", ".join(repr(c) for c in choices[:30]) + (", ..." if len(choices) > 30 else "")
+    return f"{hint}valid: {shown}"

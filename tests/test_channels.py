@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from probeplan.model import dots
-from probeplan.model import optics
+from probeplan.errors import InputError
+from probeplan.model import dots, optics
 from probeplan.model.channels import (
     channel_report,
     condition_number,
@@ -14,7 +14,9 @@ from probeplan.model.channels import (
     noise_amplification,
     unmixed_snr,
 )
-from probeplan.errors import InputError
+from probeplan.model.tissue import tissue_preset
+
+SOFT = tissue_preset("soft tissue")
 
 
 def test_identity_crosstalk_gives_noise_amplification_one():
@@ -80,7 +82,7 @@ def three_colour():
 
 def test_channel_report_on_a_three_colour_set(three_colour):
     probes, channels = three_colour
-    rep = channel_report("soft tissue", probes, channels, irradiance_mw_per_cm2=10.0, depth_mm=[1.0, 4.0])
+    rep = channel_report(SOFT, probes, channels, irradiance_mw_per_cm2=10.0, depth_mm=[1.0, 4.0])
     assert rep.response_e_per_s_per_uM.shape == (2, 3, 3)
     assert rep.separable.all()
     # each probe is brightest in its own channel
@@ -93,7 +95,7 @@ def test_channel_report_on_a_three_colour_set(three_colour):
 
 def test_identical_probes_in_the_channel_model(three_colour):
     probes, channels = three_colour
-    rep = channel_report("soft tissue", [probes[0], probes[0]], channels, irradiance_mw_per_cm2=10.0, depth_mm=[2.0])
+    rep = channel_report(SOFT, [probes[0], probes[0]], channels, irradiance_mw_per_cm2=10.0, depth_mm=[2.0])
     assert not rep.separable.any()
     assert any("cannot be separated" in n for n in rep.notes)
 
@@ -101,4 +103,4 @@ def test_identical_probes_in_the_channel_model(three_colour):
 def test_more_probes_than_channels_refused(three_colour):
     probes, channels = three_colour
     with pytest.raises(InputError, match="at least as many channels as probes"):
-        channel_report("soft tissue", probes, channels[:2], irradiance_mw_per_cm2=10.0, depth_mm=[2.0])
+        channel_report(SOFT, probes, channels[:2], irradiance_mw_per_cm2=10.0, depth_mm=[2.0])

@@ -18,9 +18,6 @@ import math
 import numpy as np
 import pytest
 
-from probeplan.model import channels
-from probeplan.model import dots
-from probeplan.model import optics
 from probeplan.design.search import (
     camera_for_filter,
     design,
@@ -29,6 +26,8 @@ from probeplan.design.search import (
     probe_series,
 )
 from probeplan.errors import AssumptionWarning, InputError
+from probeplan.model import channels, dots, optics
+from probeplan.model.tissue import tissue_preset
 
 LENS = optics.Lens(2.0, 0.1)
 SI = optics.camera("si-deep-depletion")
@@ -111,7 +110,7 @@ def test_each_candidate_equals_channel_report(small):
     for cand in res.candidates[:2]:
         chosen = [probes[res.probe_names.index(n)] for n in cand.probes]
         chans = [optics.Channel(f, LASER_532, filters[res.filter_names.index(f)], SI, LENS, 0.1) for f in cand.filters]
-        rep = channels.channel_report("soft tissue", chosen, chans, irradiance_mw_per_cm2=cand.irradiance_mw_per_cm2,
+        rep = channels.channel_report(tissue_preset("soft tissue"), chosen, chans, irradiance_mw_per_cm2=cand.irradiance_mw_per_cm2,
                                       depth_mm=2.0, concentration_uM=0.1, uptake_ratio=5.0)
         np.testing.assert_allclose(cand.snr, rep.unmixed_snr[0], rtol=1e-9)
         np.testing.assert_allclose(cand.noise_amplification, rep.noise_amplification[0], rtol=1e-9)

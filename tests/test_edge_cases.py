@@ -15,17 +15,19 @@ import warnings
 import numpy as np
 import pytest
 
-from probeplan.study import animals as an
 from probeplan.model import channels as ch
-from probeplan.model import dots
-from probeplan.model import optics
+from probeplan.model import dots, optics
 from probeplan.model import fluorescence as fl
-from probeplan.study import safety as sf
 from probeplan.model import tissue as ti
 from probeplan.model import transport as tr
+from probeplan.study import animals as an
+from probeplan.study import safety as sf
 from probeplan.errors import InputError, ModelValidityWarning, ProbeplanWarning
+from probeplan.unmixing import references as refs
 from probeplan.unmixing.nnls import STATUS_NAN
 from probeplan.unmixing.pipeline import CONDITION_WARN, check_references, unmix, unmix_stack
+
+SKIN = ti.tissue_preset("skin")
 
 # Three Gaussian-like emission bands sampled by four channels (invented, common practice, no source).
 M4x3 = np.array([[0.70, 0.10, 0.02], [0.25, 0.60, 0.08], [0.04, 0.25, 0.50], [0.01, 0.05, 0.40]])
@@ -214,17 +216,17 @@ def _model_cases():
         (tr.point_source_escape, (2.0, 0.1, 10.0, 1.4), {}), (tr.point_source_blur_fwhm_mm, (2.0, 0.1, 10.0, 1.4), {}),
         (tr.uniform_layer_escape_mm, (0.1, 10.0, 1.4), {"top_mm": 0.0, "bottom_mm": 5.0}),
         (tr.diffusion_validity, (2.0, 0.1, 10.0), {"warn": False}),
-        (ti.optical_properties, ("skin", 700.0), {}), (ti.molar_extinction, ("HbO2", 700.0), {}),
+        (ti.optical_properties, (SKIN, 700.0), {}), (ti.molar_extinction, ("HbO2", 700.0), {}),
         (ti.absorption, ("water", 700.0), {}),
         (fl.disc_escape_fraction, (1.0, 2.0, 0.1, 10.0, 1.4), {}), (fl.photons_per_s_per_mw, (700.0,), {}),
-        (fl.depth_profile, ("skin", probe), dict(optics_kw, exposure_s=0.1, depth_mm=[1.0, 2.0], target_size_mm=2.0,
+        (fl.depth_profile, (SKIN, probe), dict(optics_kw, exposure_s=0.1, depth_mm=[1.0, 2.0], target_size_mm=2.0,
                                                  concentration_uM=1.0, uptake_ratio=5.0)),
-        (fl.probe_rate_e_per_s, ("skin", probe), dict(optics_kw, depth_mm=2.0, target_size_mm=2.0, concentration_uM=1.0)),
-        (fl.background_rates, ("skin", probes), dict(optics_kw, background_concentration_uM=[0.1, 0.1])),
-        (ch.channel_report, ("skin", probes, chans), dict(irradiance_mw_per_cm2=10.0, depth_mm=[2.0], target_size_mm=2.0,
+        (fl.probe_rate_e_per_s, (SKIN, probe), dict(optics_kw, depth_mm=2.0, target_size_mm=2.0, concentration_uM=1.0)),
+        (fl.background_rates, (SKIN, probes), dict(optics_kw, background_concentration_uM=[0.1, 0.1])),
+        (ch.channel_report, (SKIN, probes, chans), dict(irradiance_mw_per_cm2=10.0, depth_mm=[2.0], target_size_mm=2.0,
                                                           concentration_uM=1.0, uptake_ratio=5.0)),
-        (ch.response_matrix, ("skin", probes, chans), dict(irradiance_mw_per_cm2=10.0, depth_mm=2.0, target_size_mm=2.0)),
-        (ch.reference_spectra, ("skin", probes, chans), dict(irradiance_mw_per_cm2=10.0, depth_mm=2.0,
+        (ch.response_matrix, (SKIN, probes, chans), dict(irradiance_mw_per_cm2=10.0, depth_mm=2.0, target_size_mm=2.0)),
+        (refs.reference_spectra, (SKIN, probes, chans), dict(irradiance_mw_per_cm2=10.0, depth_mm=2.0,
                                                              target_size_mm=2.0, gain_e_per_count=1.0)),
         (ch.crosstalk, (response,), {}), (ch.condition_number, (response,), {}),
         (ch.noise_amplification, (response, noise_var), {}), (ch.unmixed_snr, (response, noise_var, 1.0), {}),

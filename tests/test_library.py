@@ -6,10 +6,10 @@ import json
 
 import pytest
 
-from probeplan.catalog import library
-from probeplan.model import tissue
+from probeplan.catalog import library, resolve
 from probeplan.cli.main import main
 from probeplan.errors import InputError
+from probeplan.model import tissue
 
 
 def test_shipped_entries_carry_sources():
@@ -39,9 +39,9 @@ def test_user_tissue_and_spectra(_isolated_user_library):
     em = _isolated_user_library / "spectra" / "emission"
     em.mkdir(parents=True)
     (em / "mine.csv").write_text("wavelength_nm,dot 800\n700,0\n800,1\n900,0\n")
-    t = tissue.tissue_preset("flank tumour")
+    t = resolve.tissue("flank tumour")
     assert t.blood_fraction == 0.04
-    assert float(tissue.optical_properties("flank tumour", 500.0)[1]) == pytest.approx(12.0)
+    assert float(tissue.optical_properties(t, 500.0)[1]) == pytest.approx(12.0)
     names = {r.name: r for r in library.entries()}
     assert names["flank tumour"].source == "our own measurement"
     assert names["dot 800"].kind == "emission spectrum"
@@ -53,10 +53,10 @@ def test_bad_user_tissue_names_the_file(_isolated_user_library):
         "blood_fraction = 5\nsaturation = 0.5\nwater_fraction = 0.8\na_per_cm = 12.0\nb = 1.1\n"
     )
     with pytest.raises(InputError, match=r"bad.toml: .*fraction must lie in 0-1"):
-        tissue.tissue_preset("bad")
+        resolve.tissue("bad")
     (_isolated_user_library / "tissues" / "broken.toml").write_text("blood_fraction = = 1\n")
     with pytest.raises(InputError, match=r"broken.toml:1: is not valid TOML"):
-        tissue.tissue_preset("broken")
+        resolve.tissue("broken")
 
 
 def test_cli_library_list_and_show(capsys):

@@ -44,7 +44,7 @@ def _nir2_profile(nir2, **kw):
     args = dict(irradiance_mw_per_cm2=10.0, exposure_s=0.01, depth_mm=[1.0, 3.0, 6.0], target_size_mm=2.0,
                 concentration_uM=1.0, uptake_ratio=5.0, warn=False)
     args.update(kw)
-    tissue = args.pop("tissue", "soft tissue")
+    tissue = args.pop("tissue", tissue_preset("soft tissue"))
     return depth_profile(tissue, nir2["probe"], source=nir2["source"], emission_filter=nir2["emission_filter"],
                          camera=nir2["camera"], lens=nir2["lens"], **args)
 
@@ -142,7 +142,7 @@ def test_binned_full_well_digital_and_charge():
 def test_saturation_uses_the_binned_pixel(nir2):
     cam = optics.camera("si-back").with_binning(4)
     probe = dots.make_probe("CdTe", 700.0)
-    p = depth_profile("soft tissue", probe, source=optics.Laser(640.0), irradiance_mw_per_cm2=100.0,
+    p = depth_profile(tissue_preset("soft tissue"), probe, source=optics.Laser(640.0), irradiance_mw_per_cm2=100.0,
                       emission_filter=optics.parse_filter("700/30"), camera=cam, lens=optics.Lens(4.0, 0.1),
                       exposure_s=1.0, depth_mm=[0.5, 2.0, 8.0], warn=False)
     assert p.full_well_e == 16 * cam.full_well_e

@@ -360,7 +360,7 @@ def test_route_spellings_and_did_you_mean():
         max_injection_volume_ml("mose", "iv", 20.0)
     with pytest.raises(InputError, match="route: unknown route 'iv_slw'; did you mean 'iv_slow'"):
         max_injection_volume_ml("mouse", "iv_slw", 20.0)
-    with pytest.raises(InputError, match="unknown species 'hamster'; use one of 'mouse', 'rat'"):
+    with pytest.raises(InputError, match="unknown species 'hamster'; valid: 'mouse', 'rat'"):
         max_injection_volume_ml("hamster", "iv", 100.0)
 
 

@@ -77,19 +77,19 @@ def test_melanosome_formula():
     ],
 )
 def test_scattering_check_values(preset, wl, expected):
-    _, mu_sp = tissue.optical_properties(preset, wl)
+    _, mu_sp = tissue.optical_properties(tissue.tissue_preset(preset), wl)
     assert float(mu_sp) == pytest.approx(expected, abs=0.006)
 
 
 def test_rayleigh_mie_form_matches_definition():
     # Jacques 2013 eq. 3 with Table 2 skin parameters a'=48.0, f_Ray=0.409, b_Mie=0.702.
-    _, mu_sp = tissue.optical_properties("skin", 800.0, scattering_model="rayleigh_mie")
+    _, mu_sp = tissue.optical_properties(tissue.tissue_preset("skin"), 800.0, scattering_model="rayleigh_mie")
     x = 800.0 / 500.0
     assert float(mu_sp) == pytest.approx(48.0 * (0.409 * x**-4 + 0.591 * x**-0.702), rel=1e-12)
     with pytest.raises(InputError, match="Rayleigh"):
-        tissue.optical_properties("mouse muscle", 800.0, scattering_model="rayleigh_mie")
+        tissue.optical_properties(tissue.tissue_preset("mouse muscle"), 800.0, scattering_model="rayleigh_mie")
     with pytest.raises(InputError, match="did you mean 'power'"):
-        tissue.optical_properties("skin", 800.0, scattering_model="powr")
+        tissue.optical_properties(tissue.tissue_preset("skin"), 800.0, scattering_model="powr")
 
 
 def test_seven_table2_classes_and_mouse_organs_are_presets():
@@ -171,7 +171,9 @@ def test_fat_allowed_with_a_user_table():
 
 def test_unknown_tissue_did_you_mean():
     with pytest.raises(InputError, match="did you mean 'skin'"):
-        tissue.optical_properties("skn", 800.0)
+        tissue.tissue_preset("skn")
+    with pytest.raises(TypeError, match=r"probeplan\.tissue\('skin'\)"):
+        tissue.optical_properties("skin", 800.0)  # model functions take objects; names resolve at the edges
     with pytest.raises(InputError, match="did you mean 'water'"):
         tissue.absorption("watr", 800.0)
     with pytest.raises(InputError, match="did you mean 'HbO2'"):
@@ -180,11 +182,11 @@ def test_unknown_tissue_did_you_mean():
 
 def test_nan_wavelength_refused():
     with pytest.raises(InputError, match="NaN"):
-        tissue.optical_properties("skin", [800.0, float("nan")])
+        tissue.optical_properties(tissue.tissue_preset("skin"), [800.0, float("nan")])
 
 
 @settings(max_examples=50, deadline=None)
 @given(st.lists(st.floats(400, 1000), min_size=1, max_size=20))
 def test_properties_positive_and_finite(wls):
-    mu_a, mu_sp = tissue.optical_properties("soft tissue", wls)
+    mu_a, mu_sp = tissue.optical_properties(tissue.tissue_preset("soft tissue"), wls)
     assert np.all(np.isfinite(mu_a)) and np.all(mu_a > 0) and np.all(mu_sp > 0)

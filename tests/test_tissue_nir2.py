@@ -97,7 +97,7 @@ def test_fat_beyond_its_published_table_is_refused_not_held():
     with pytest.raises(InputError, match="fat absorption asked at 1300 nm, outside 429-1098 nm.*spectra/absorption"):
         tissue.absorption("fat", 1300.0)
     with pytest.raises(InputError, match="subcutaneous fat.*outside 429-1098 nm"):
-        tissue.optical_properties("subcutaneous fat", [800.0, 1300.0])
+        tissue.optical_properties(tissue.tissue_preset("subcutaneous fat"), [800.0, 1300.0])
 
 
 def test_fat_fraction_works_in_presets_and_compositions():
@@ -154,7 +154,7 @@ def test_mouse_muscle_at_1300nm_follows_the_stated_rule():
     edge = 9.8 * (900.0 / 500.0) ** -2.82
     expected = edge * (1300.0 / 900.0) ** -1.091
     with pytest.warns(tissue.ScatteringRangeWarning, match="outside the 500-900 nm its source measured") as rec:
-        _, mu_sp = tissue.optical_properties("mouse muscle", 1300.0)
+        _, mu_sp = tissue.optical_properties(tissue.tissue_preset("mouse muscle"), 1300.0)
     assert float(mu_sp) == pytest.approx(expected, rel=1e-12)
     assert float(mu_sp) > 1.0
     assert rec[0].filename == __file__  # stacklevel points at the caller
@@ -165,7 +165,7 @@ def test_inside_the_range_the_published_law_holds_without_warning():
 
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        _, mu_sp = tissue.optical_properties("skin", [650.0, 800.0])
+        _, mu_sp = tissue.optical_properties(tissue.tissue_preset("skin"), [650.0, 800.0])
     # [J13] worked values: skin mu_s'(800 nm) = 23.59 cm^-1
     assert float(mu_sp[1]) == pytest.approx(23.59, abs=0.01)
 

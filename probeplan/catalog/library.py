@@ -24,13 +24,12 @@ validation as the command line (:func:`probeplan.model.spectra.read_spectra_csv`
 
 from __future__ import annotations
 
-import difflib
 import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from probeplan.errors import InputError, input_error
+from probeplan.errors import InputError, did_you_mean, input_error
 
 __all__ = [
     "LibraryEntry",
@@ -74,25 +73,6 @@ class LibraryEntry:
         }
 
 
-def did_you_mean(name: str, choices) -> str:
-    """The fix part of an unknown-name message: the closest choice, then the valid ones.
-
-    Examples
-    --------
-    >>> did_you_mean("skn", ["skin", "brain"])
-    "did you mean 'skin'? valid: 'skin', 'brain'"
-    """
-    choices = list(choices)
-    close = difflib.get_close_matches(name, choices, n=1, cutoff=0.5)
-    if not close:
-        lowered = {str(c).lower(): c for c in choices}
-        if str(name).lower() in lowered:
-            close = [lowered[str(name).lower()]]
-    hint = f"did you mean {close[0]!r}? " if close else ""
-    shown = ", ".join(repr(c) for c in choices[:30]) + (", ..." if len(choices) > 30 else "")
-    return f"{hint}valid: {shown}"
-
-
 def user_library_dir() -> Path:
     """The user library folder (it need not exist)."""
     env = os.environ.get(LIBRARY_ENV)
@@ -129,7 +109,7 @@ def user_tissue(name: str):
         When there is no such file, or its content fails the tissue validation
         (the message names the file).
     """
-    from probeplan.model.tissue import _tissue_from_mapping
+    from probeplan.model.tissue import tissue_from_mapping
 
     path = user_library_dir() / "tissues" / f"{name}.toml"
     if name not in user_tissue_names():
@@ -139,7 +119,7 @@ def user_tissue(name: str):
     if entry.get("fat_fraction", 0):
         fat = user_spectra("absorption").get("fat")
     try:
-        tissue = _tissue_from_mapping(name, entry)
+        tissue = tissue_from_mapping(name, entry)
         if fat is not None:
             tissue = tissue.with_composition(fat_absorption=fat)
         return tissue

@@ -1,152 +1,240 @@
-"""Shared command-line options for the model commands (depth, channels, design) and their parsing.
+"""The one builder of an imaging set-up from plain values: tissue, probes, source, channels, camera, lens.
 
-Probes are written ``MATERIAL:PEAK`` (e.g. ``CdTe:700``), optionally
-``MATERIAL:PEAK:QY``, or ``MATERIAL:PEAK@FILE.csv`` to take the emission
-spectrum from the first column of a spectra CSV.  Filters are trade notation
-(``700/30``, ``LP 1000``) or the name of a filter in the user library.
+The command line (``depth``, ``channels``), the plan evaluation
+(:func:`probeplan.study.evaluate.plan_model`) and the page all call
+:func:`build_setup`, so one set-up written three ways gives one set of objects
+and the same numbers.  Names are resolved by :mod:`probeplan.catalog.resolve`.
+
+An error raised while building carries the key of the offending value
+(``InputError.key``, e.g. ``("probes", 1, "material")`` or ``("filters", 0)``)
+so that each surface can point at its own field: the plan at its file line, the
+command line at its flag, the page at its control.
+
+Skin exposure is not decided here: :func:`probeplan.study.safety.setup_skin_exposure`
+applies the one rule to a built set-up.
 """
 
 from __future__ import annotations
 
-import argparse
+import contextlib
+import re
+from collections.abc import Iterator, Mapping, Sequence
+from dataclasses import dataclass, field
 from typing import Any
 
-from probeplan.errors import input_error
-from probeplan.model.fluorescence import DEFAULT_CONCENTRATION_UM
+from probeplan.catalog import resolve
+from probeplan.errors import InputError, input_error
+from probeplan.io.tomlsource import format_path
+from probeplan.model import dots, optics
 
-__all__ = ["add_model_options", "add_optics_options", "add_target_options", "probes_from_args", "parse_probe",
-           "make_filter", "make_camera", "make_source", "make_lens", "tissue_from_args", "channels_from_args"]
+__all__ = ["ImagingSetup", "build_setup", "keyed", "DEFAULT_TISSUE", "DEFAULT_CAMERA"]
 
+#: Tissue and camera of a set-up when none is named (the command line's defaults).
+DEFAULT_TISSUE = "soft tissue"
+DEFAULT_CAMERA = "si-deep-depletion"
 
-def add_model_options(parser: argparse.ArgumentParser, *, probes_required: bool = True) -> None:
-    """Add the options shared by depth, channels and design."""
-    g = parser.add_argument_group("tissue and probes")
-    g.add_argument("--tissue", default="soft tissue", help="tissue preset or user tissue (default: 'soft tissue')")
-    g.add_argument("--probe", action="append", required=probes_required, metavar="MATERIAL:PEAK",
-                   help="a probe, e.g. CdTe:700 or InAs:880:0.2 (QY) or CdTeSe:780@emission.csv; repeat per probe")
-    g.add_argument("--extinction", action="append", type=float, metavar="PER_M_CM",
-                   help="measured extinction at the excitation wavelength (M^-1 cm^-1), one per --probe, in order")
-    g = parser.add_argument_group("excitation")
-    g.add_argument("--excitation-nm", type=float, default=640.0, help="laser wavelength in nm (default 640)")
-    g.add_argument("--linewidth-nm", type=float, default=1.0, help="laser linewidth FWHM in nm (default 1)")
-    g.add_argument("--led-fwhm-nm", type=float, help="use an LED of this FWHM (nm) centred on --excitation-nm")
-    g.add_argument("--irradiance", type=float, default=10.0, metavar="MW_PER_CM2",
-                   help="excitation irradiance on the skin in mW/cm^2 (default 10)")
-    g = parser.add_argument_group("detection")
-    g.add_argument("--filter", action="append", metavar="FILTER",
-                   help="emission filter, e.g. 700/30 or 'LP 1000'; repeat, one per channel")
-    g.add_argument("--camera", default="si-deep-depletion", help="camera name (default si-deep-depletion)")
-    add_optics_options(g)
-    add_target_options(parser.add_argument_group("target"))
+_WHERE_PREFIX = re.compile(r"^[A-Za-z_][A-Za-z0-9_ /]*: ")
+#: Probe settings a mapping may carry besides material and emission peak.
+_PROBE_SETTINGS = ("name", "quantum_yield", "fwhm_nm", "extinction_at_excitation_per_M_cm")
 
 
-def add_optics_options(group) -> None:
-    """Binning, lens and exposure options (shared by depth, channels and design)."""
-    group.add_argument("--binning", type=int, default=1, help="pixels binned per side (default 1)")
-    group.add_argument("--f-number", type=float, default=2.0, help="lens f-number (default 2)")
-    group.add_argument("--magnification", type=float, default=0.1, help="lens magnification (default 0.1)")
-    group.add_argument("--exposure-s", type=float, default=0.05, help="exposure per channel in s (default 0.05)")
+@dataclass
+class ImagingSetup:
+    """The optical objects of one imaging set-up, built and checked.
+
+    Attributes
+    ----------
+    probes : list of Probe
+    source : Laser or LED
+    channels : list of Channel
+        One per emission filter, sharing source, camera and lens.
+    camera, lens, tissue
+    irradiance_mw_per_cm2 : float
+        Irradiance used by the fluorescence model, mW/cm².
+    skin_irradiance_mw_per_cm2 : float
+        Irradiance compared with the skin limit (averaged over the limiting
+        aperture; the model's irradiance when no other is given), mW/cm².
+    autofluorescence : Autofluorescence or None
+        The autofluorescence assumption (None: the model's default).
+    """
+
+    probes: list
+    source: Any
+    channels: list
+    camera: Any
+    lens: Any
+    tissue: Any
+    irradiance_mw_per_cm2: float
+    skin_irradiance_mw_per_cm2: float
+    autofluorescence: Any = field(default=None)
+
+    @property
+    def exposures_s(self) -> list[float]:
+        """Each channel's exposure (s), in channel order."""
+        return [float(ch.exposure_s) for ch in self.channels]
 
 
-def add_target_options(group) -> None:
-    """Target inclusion, uptake and autofluorescence options (shared by depth, channels and design)."""
-    group.add_argument("--size-mm", type=float, default=2.0, help="target inclusion diameter in mm (default 2)")
-    group.add_argument("--concentration-uM", type=float, default=DEFAULT_CONCENTRATION_UM,
-                       help=f"probe concentration in the target, µM (default {DEFAULT_CONCENTRATION_UM:g})")
-    group.add_argument("--uptake-ratio", type=float, default=5.0, help="target-to-background uptake ratio (default 5)")
-    group.add_argument("--af-yield", type=float, default=None,
-                       help="autofluorescence yield (cm^-1 at 650 nm excitation; an assumption; 0 switches it off)")
-
-
-def parse_probe(spec: str, extinction: float | None = None):
-    """A probe from ``MATERIAL:PEAK[:QY][@FILE.csv]``."""
-    from probeplan.model import dots
-    from probeplan.model.spectra import read_spectra_csv
-
-    text, _, csv_path = spec.partition("@")
-    parts = text.split(":")
-    if len(parts) not in (2, 3):
-        raise input_error("--probe", f"cannot read {spec!r}", "write MATERIAL:PEAK such as CdTe:700 (QY optional: CdTe:700:0.4)")
+@contextlib.contextmanager
+def keyed(*key: Any) -> Iterator[None]:
+    """Re-raise an InputError as ``KEY: problem; fix`` with ``.key`` set to ``key`` (the innermost key wins)."""
     try:
-        peak = float(parts[1])
-        qy = float(parts[2]) if len(parts) == 3 else None
-    except ValueError:
-        raise input_error("--probe", f"{spec!r}: peak and QY must be numbers", "write e.g. CdTe:700:0.4") from None
-    overrides: dict[str, Any] = {}
-    if qy is not None:
-        overrides["quantum_yield"] = qy
-    if extinction is not None:
-        overrides["extinction_at_excitation_per_M_cm"] = extinction
-    if csv_path:
-        spectra = read_spectra_csv(csv_path, kind="emission")
-        overrides["emission"] = next(iter(spectra.values()))
-    return dots.make_probe(parts[0], peak, **overrides)
+        yield
+    except InputError as exc:
+        if getattr(exc, "key", None) is not None:
+            raise
+        detail = _WHERE_PREFIX.sub("", str(exc), count=1)
+        err = InputError(f"{format_path(key)}: {detail}")
+        err.key = key  # type: ignore[attr-defined]
+        err.detail = detail  # type: ignore[attr-defined]
+        raise err from None
 
 
-def probes_from_args(args: argparse.Namespace) -> list:
-    """The --probe list as Probe objects."""
-    specs = args.probe or []
-    ext = args.extinction or []
-    if ext and len(ext) != len(specs):
-        raise input_error("--extinction", f"{len(ext)} values for {len(specs)} probes", "give one per --probe, in order")
-    return [parse_probe(s, ext[i] if ext else None) for i, s in enumerate(specs)]
+def _probe(i: int, spec: Any, extinction: float | None):
+    if isinstance(spec, Mapping):
+        with keyed("probes", i, "material"):
+            material = resolve.material(spec["material"])
+        settings = {k: spec[k] for k in _PROBE_SETTINGS if spec.get(k) is not None}
+        if extinction is not None:
+            settings["extinction_at_excitation_per_M_cm"] = extinction
+        with keyed("probes", i, "emission_peak_nm"):
+            return dots.make_probe(material, spec["emission_peak_nm"], **settings)
+    with keyed("probes", i):
+        return resolve.probe(spec, extinction_per_M_cm=extinction)
 
 
-def make_filter(text: str):
-    """A filter from trade notation or a user-library filter name."""
-    from probeplan.catalog import library
-    from probeplan.model import optics
+def build_setup(
+    *,
+    probes: Sequence[Any],
+    filters: Sequence[Any],
+    excitation_nm: float,
+    irradiance_mw_per_cm2: float,
+    tissue: Any = DEFAULT_TISSUE,
+    composition: Mapping[str, float] | None = None,
+    layers: Sequence[tuple[Any, float]] = (),
+    extinction_per_M_cm: Sequence[float] | None = None,
+    channel_names: Sequence[str] | None = None,
+    linewidth_nm: float | None = None,
+    led_fwhm_nm: float | None = None,
+    skin_irradiance_mw_per_cm2: float | None = None,
+    camera: Any = DEFAULT_CAMERA,
+    binning: int = 1,
+    f_number: float = 2.0,
+    magnification: float = 0.1,
+    exposure_s: float | Sequence[float] = 0.05,
+    autofluorescence_yield_per_cm: float | None = None,
+) -> ImagingSetup:
+    """Build an imaging set-up from plain values.
 
-    user = library.user_filters()
-    if text in user:
-        return user[text]
-    return optics.parse_filter(text)
+    Parameters
+    ----------
+    probes : sequence
+        Each a written probe (``"CdTe:700"``, ``"CdTe:700:0.4"``, ``"CdTe:700@em.csv"``), a Probe, or a
+        mapping with ``material`` and ``emission_peak_nm`` (and optionally ``name``, ``quantum_yield``,
+        ``fwhm_nm``, ``extinction_at_excitation_per_M_cm``).
+    filters : sequence
+        One emission filter per channel: trade notation, a user-library filter name or a Filter.
+    excitation_nm : float
+        Source centre wavelength, nm.
+    irradiance_mw_per_cm2 : float
+        Irradiance on the skin used by the fluorescence model, mW/cm².
+    tissue : str or Tissue
+        Preset or user tissue name, or a Tissue.
+    composition : mapping, optional
+        Composition changes (:meth:`Tissue.with_composition`), e.g. ``{"blood_fraction": 0.01}``.
+    layers : sequence of (tissue, thickness_mm)
+        Layers over the target's tissue from the surface down (e.g. ``[("skin", 0.5)]``); each tissue
+        a name or a Tissue. The set-up's tissue is then a
+        :class:`~probeplan.model.layers.LayeredTissue`.
+    extinction_per_M_cm : sequence of float, optional
+        Measured extinction at the excitation wavelength, one per probe (M⁻¹ cm⁻¹).
+    channel_names : sequence of str, optional
+        Channel names (default: the filters as written).
+    linewidth_nm, led_fwhm_nm : float, optional
+        Laser linewidth (typical 1 nm when None), or the FWHM of an LED source.
+    skin_irradiance_mw_per_cm2 : float, optional
+        Irradiance compared with the skin limit (default: ``irradiance_mw_per_cm2``).
+    camera : str or Camera
+        Built-in or user camera name.
+    binning : int
+        Pixels binned per side.
+    f_number, magnification : float
+        The collection lens.
+    exposure_s : float or sequence of float
+        Exposure per channel, s: one for all channels or one per filter.
+    autofluorescence_yield_per_cm : float, optional
+        Autofluorescence yield (an assumption; None: the model's default, 0: off).
 
+    Returns
+    -------
+    ImagingSetup
 
-def make_camera(name: str, binning: int = 1):
-    """A built-in or user-library camera with the binning set."""
-    from probeplan.catalog import library
-    from probeplan.model import optics
+    Raises
+    ------
+    InputError
+        Any name or value the catalog or the model refuses; ``.key`` names the field
+        (``("probes", i)``, ``("probes", i, "material")``, ``("filters", c)``, ``("camera",)``, ...).
 
-    if name in library.user_camera_names():
-        cam = library.user_camera(name)
-    else:
-        cam = optics.camera(name)
-    if isinstance(binning, bool) or not isinstance(binning, int) or binning < 1:
-        raise input_error("--binning", f"got {binning!r}", "give a whole number >= 1")
-    return cam.with_binning(binning)
+    Examples
+    --------
+    >>> s = build_setup(probes=["CdTe:700", "InAs:880"], filters=["700/30", "880/50"], excitation_nm=640.0,
+    ...                 irradiance_mw_per_cm2=10.0)
+    >>> [ch.name for ch in s.channels], s.tissue.name, s.exposures_s
+    (['700/30', '880/50'], 'soft tissue', [0.05, 0.05])
+    """
+    from probeplan.model.fluorescence import Autofluorescence
 
-
-def make_source(args: argparse.Namespace):
-    """The excitation source from the options."""
-    from probeplan.model import optics
-
-    if args.led_fwhm_nm is not None:
-        return optics.LED(args.excitation_nm, args.led_fwhm_nm)
-    return optics.Laser(args.excitation_nm, args.linewidth_nm)
-
-
-def make_lens(args: argparse.Namespace):
-    """The lens from the options."""
-    from probeplan.model import optics
-
-    return optics.Lens(args.f_number, args.magnification)
-
-
-def tissue_from_args(args: argparse.Namespace):
-    """The tissue (preset or user) named by --tissue."""
-    from probeplan.model.tissue import tissue_preset
-
-    return tissue_preset(args.tissue)
-
-
-def channels_from_args(args: argparse.Namespace, n_default: int) -> list:
-    """One channel per --filter (source, camera, lens and exposure shared)."""
-    from probeplan.model import optics
-
-    filters = args.filter or []
+    probes = list(probes)
+    filters = list(filters)
+    ext = None if extinction_per_M_cm is None else list(extinction_per_M_cm)
+    if ext is not None and len(ext) != len(probes):
+        with keyed("extinction_per_M_cm"):
+            raise input_error("extinction_per_M_cm", f"{len(ext)} values for {len(probes)} probes",
+                              "give one per probe, in order")
     if not filters:
-        raise input_error("--filter", "no emission filter given", f"give --filter once per channel (at least {n_default})")
-    source, lens = make_source(args), make_lens(args)
-    cam = make_camera(args.camera, args.binning)
-    return [optics.Channel(f, source, make_filter(f), cam, lens, args.exposure_s) for f in filters]
+        with keyed("filters"):
+            raise input_error("filters", "no emission filter given", "give one emission filter per channel")
+    names = [str(f) for f in filters] if channel_names is None else list(channel_names)
+    if len(names) != len(filters):
+        with keyed("channel_names"):
+            raise input_error("channel_names", f"{len(names)} names for {len(filters)} filters", "give one per filter")
+    exposures = [exposure_s] * len(filters) if not isinstance(exposure_s, Sequence) else list(exposure_s)
+    if len(exposures) != len(filters):
+        with keyed("exposure_s"):
+            raise input_error("exposure_s", f"{len(exposures)} exposures for {len(filters)} filters",
+                              "give one exposure for all channels or one per filter")
+    built_probes = [_probe(i, spec, None if ext is None else ext[i]) for i, spec in enumerate(probes)]
+    with keyed("excitation_nm"):
+        src = resolve.source(excitation_nm, linewidth_nm=linewidth_nm, led_fwhm_nm=led_fwhm_nm)
+    with keyed("binning"):
+        if isinstance(binning, bool) or not isinstance(binning, int) or binning < 1:
+            raise input_error("binning", f"got {binning!r}", "give a whole number >= 1")
+    with keyed("camera"):
+        cam = resolve.camera(camera, binning)
+    with keyed("f_number"):
+        lens = resolve.lens(f_number, magnification)
+    channels = []
+    for c, filt in enumerate(filters):
+        with keyed("filters", c):
+            flt = resolve.emission_filter(filt)
+        with keyed("exposure_s", c) if isinstance(exposure_s, Sequence) else keyed("exposure_s"):
+            channels.append(optics.Channel(names[c], src, flt, cam, lens, exposures[c]))
+    with keyed("tissue"):
+        tis = resolve.tissue(tissue)
+    if composition:
+        with keyed("composition"):
+            tis = tis.with_composition(**dict(composition))
+    if layers:
+        from probeplan.model.layers import Layer, LayeredTissue
+
+        stack = []
+        for i, (layer_tissue, thickness_mm) in enumerate(layers):
+            with keyed("layers", i):
+                stack.append(Layer(resolve.tissue(layer_tissue), thickness_mm))
+        tis = LayeredTissue(tuple(stack), tis)
+    af = None
+    if autofluorescence_yield_per_cm is not None:
+        with keyed("autofluorescence_yield_per_cm"):
+            af = Autofluorescence(yield_per_cm=autofluorescence_yield_per_cm)
+    irradiance = float(irradiance_mw_per_cm2)
+    skin = irradiance if skin_irradiance_mw_per_cm2 is None else float(skin_irradiance_mw_per_cm2)
+    return ImagingSetup(built_probes, src, channels, cam, lens, tis, irradiance, skin, af)

@@ -31,6 +31,7 @@ import io
 import logging
 import os
 import pkgutil
+import re
 import sys
 import warnings
 from collections.abc import Iterator, Sequence
@@ -38,7 +39,7 @@ from collections.abc import Iterator, Sequence
 from probeplan import RESEARCH_USE_CAUTION, __version__
 from probeplan.errors import InputError
 
-__all__ = ["main", "console", "build_parser", "EXIT_OK", "EXIT_PROBLEM", "EXIT_BAD_INPUT"]
+__all__ = ["main", "console", "build_parser", "as_flags", "EXIT_OK", "EXIT_PROBLEM", "EXIT_BAD_INPUT"]
 
 EXIT_OK = 0
 EXIT_PROBLEM = 1
@@ -177,8 +178,34 @@ def build_parser() -> argparse.ArgumentParser:
     for name, module in _command_modules():
         p = sub.add_parser(name, help=module.HELP, description=module.HELP)  # type: ignore[attr-defined]
         module.add_arguments(p)  # type: ignore[attr-defined]
-        p.set_defaults(_run=module.run)  # type: ignore[attr-defined]
+        flags = frozenset(opt for action in p._actions for opt in action.option_strings)
+        p.set_defaults(_run=module.run, _flags=flags)  # type: ignore[attr-defined]
     return parser
+
+
+def as_flags(exc: InputError, flags: frozenset[str] = frozenset()) -> str:
+    """The error's message with the parameter it names replaced by the command's flag for it.
+
+    The library names parameters (``roi``, ``out``, ``probes[1]``); the command line
+    says which of its options to change.  Names the command has no flag for stay.
+
+    Examples
+    --------
+    >>> from probeplan.errors import input_error
+    >>> as_flags(input_error("roi", "'x' is not 'name:x0,y0,x1,y1'", "give e.g. 'a:0,0,5,5'"), frozenset({"--roi"}))
+    "--roi: 'x' is not 'name:x0,y0,x1,y1'; give e.g. 'a:0,0,5,5'"
+    """
+    from probeplan.cli.model_options import FLAGS
+
+    text = str(exc)
+    key = getattr(exc, "key", None)
+    if key:
+        flag = FLAGS.get(str(key[0]))
+        return f"{flag}: {exc.detail}" if flag in flags else text  # type: ignore[attr-defined]
+    match = re.match(r"^([A-Za-z_][A-Za-z0-9_]*): ", text)
+    if match and FLAGS.get(match.group(1)) in flags:
+        return FLAGS[match.group(1)] + text[len(match.group(1)):]
+    return text
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -223,7 +250,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except InputError as exc:
         if debug:
             raise
-        sys.stderr.write(f"{prefix}: error: {_one_line(str(exc))}\n")
+        sys.stderr.write(f"{prefix}: error: {_one_line(as_flags(exc, getattr(args, '_flags', frozenset())))}\n")
         return EXIT_BAD_INPUT
     except KeyboardInterrupt:
         if debug:

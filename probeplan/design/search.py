@@ -59,9 +59,6 @@ from typing import Any
 
 import numpy as np
 
-from probeplan.model import optics
-from probeplan.study import safety
-from probeplan.model.channels import SEPARABLE_CONDITION_LIMIT, condition_number, noise_amplification
 from probeplan.design.branch_bound import (
     DEFAULT_TOP,
     MAX_COMBINATIONS,
@@ -72,8 +69,10 @@ from probeplan.design.branch_bound import (
     exhaustive_search,
 )
 from probeplan.errors import input_error, positive_number
+from probeplan.model import optics, skin_limit
+from probeplan.model.channels import SEPARABLE_CONDITION_LIMIT, condition_number, noise_amplification
 from probeplan.model.fluorescence import DEFAULT_CONCENTRATION_UM, Autofluorescence, background_rates, probe_rate_e_per_s
-from probeplan.model.tissue import Tissue, tissue_preset
+from probeplan.model.tissue import Tissue
 
 __all__ = [
     "DesignCandidate",
@@ -392,7 +391,7 @@ def design(
         Filters per combination, ``k`` by default (``k + 1`` adds a spare channel).
     irradiance_mw_per_cm2 : float or sequence, optional
         Irradiance on the skin per source (mW/cm²); None uses each source's skin MPE
-        (:func:`probeplan.study.safety.skin_mpe_mw_per_cm2`) for ``illumination_s``.
+        (:func:`probeplan.study.skin_limit.skin_mpe_mw_per_cm2`) for ``illumination_s``.
     illumination_s : float, optional
         How long the skin is lit in one session (s), for the MPE; None: every channel's
         exposure plus positioning, taken as at least 10 s (the long-exposure limit).
@@ -446,7 +445,9 @@ def design(
     >>> res.total_combinations, len(res.candidates)
     (18, 2)
     """
-    tissue = tissue_preset(tissue) if isinstance(tissue, str) else tissue
+    from probeplan.catalog import resolve
+
+    tissue = resolve.tissue(tissue)
     probes = list(candidate_probes)
     filters = list(candidate_filters)
     srcs = _sources_checked(sources)
@@ -484,17 +485,17 @@ def design(
         raise input_error("uptake_ratio", f"got {tbr:g}", "the target-to-background uptake ratio must be >= 1")
     positive_number("target_size_mm", target_size_mm)
     if illumination_s is None:
-        lit = max(safety.MPE_LONG_EXPOSURE_S, n_ch * t)
+        lit = max(skin_limit.MPE_LONG_EXPOSURE_S, n_ch * t)
     else:
         lit = positive_number("illumination_s", illumination_s)
-    if lit > safety.MPE_MAX_EXPOSURE_S:
-        raise input_error("illumination_s", f"{lit:g} s is beyond the skin table ({safety.MPE_MAX_EXPOSURE_S:g} s)",
+    if lit > skin_limit.MPE_MAX_EXPOSURE_S:
+        raise input_error("illumination_s", f"{lit:g} s is beyond the skin table ({skin_limit.MPE_MAX_EXPOSURE_S:g} s)",
                           "split the imaging into shorter sessions")
     n_combos = len(srcs) * math.comb(len(probes), k) * math.comb(len(filters), n_ch)
     if n_combos > max_combinations:
         raise input_error("search size", f"{n_combos:.3g} combinations (limit {max_combinations:.3g})",
                           "give fewer candidate probes or filters, or a smaller k")
-    mpe = np.array([float(safety.skin_mpe_mw_per_cm2(float(s.centre_nm), lit)) for s in srcs])
+    mpe = np.array([float(skin_limit.skin_mpe_mw_per_cm2(float(s.centre_nm), lit)) for s in srcs])
     if irradiance_mw_per_cm2 is None:
         irr = mpe.copy()
     else:

@@ -47,7 +47,7 @@ from probeplan.model.fluorescence import (
     probe_mu_a_per_cm,
     probe_rate_e_per_s,
 )
-from probeplan.model.tissue import Tissue, tissue_preset
+from probeplan.model.tissue import Tissue, as_tissue
 
 __all__ = [
     "ChannelReport",
@@ -57,7 +57,6 @@ __all__ = [
     "condition_number",
     "noise_amplification",
     "unmixed_snr",
-    "reference_spectra",
     "SEPARABLE_CONDITION_LIMIT",
 ]
 
@@ -192,7 +191,7 @@ def _probe_absorption_rise(tissue: Tissue, probes, channels, background_uM: floa
 
 
 def response_matrix(
-    tissue: str | Tissue,
+    tissue: Tissue,
     probes,
     channels,
     *,
@@ -207,7 +206,7 @@ def response_matrix(
     ndarray, shape (D, C, K)
         One (C, K) matrix per depth in ``depth_mm``.
     """
-    tissue = tissue_preset(tissue) if isinstance(tissue, str) else tissue
+    tissue = as_tissue(tissue)
     depth = np.atleast_1d(np.asarray(depth_mm, dtype=np.float64))
     out = np.empty((depth.size, len(channels), len(probes)))
     for c, ch in enumerate(channels):
@@ -218,41 +217,6 @@ def response_matrix(
                 target_size_mm=target_size_mm, concentration_uM=1.0,
             )
     return out
-
-
-def reference_spectra(
-    tissue: str | Tissue,
-    probes,
-    channels,
-    *,
-    irradiance_mw_per_cm2: float,
-    depth_mm: float,
-    target_size_mm: float = 2.0,
-    gain_e_per_count: float = 1.0,
-):
-    """Reference spectra predicted by the channel model at one depth, for unmixing.
-
-    Entry (c, k) is the camera counts per µM of probe k in channel c in that
-    channel's exposure (1 s when unset): the response matrix × exposure ÷ gain.
-    Unmixing with these references (not normalised) gives abundances in µM.
-
-    Returns
-    -------
-    probeplan.unmixing.references.ReferenceSpectra
-    """
-    from probeplan.unmixing.references import references_from_matrix
-
-    if not 0 < gain_e_per_count < np.inf:
-        raise input_error("gain_e_per_count", f"got {gain_e_per_count!r}", "give the camera gain in e-/count (> 0)")
-    resp = response_matrix(tissue, probes, channels, irradiance_mw_per_cm2=irradiance_mw_per_cm2,
-                           depth_mm=[float(depth_mm)], target_size_mm=target_size_mm)[0]
-    exposure = np.array([float(getattr(ch, "exposure_s", None) or 1.0) for ch in channels])
-    return references_from_matrix(
-        resp * exposure[:, None] / gain_e_per_count,
-        [str(getattr(p, "name", f"probe {i + 1}")) for i, p in enumerate(probes)],
-        [str(getattr(ch, "name", f"channel {i + 1}")) for i, ch in enumerate(channels)],
-        normalise=None,
-    )
 
 
 @dataclass
@@ -297,7 +261,7 @@ class ChannelReport:
 
 
 def channel_report(
-    tissue: str | Tissue,
+    tissue: Tissue,
     probes,
     channels,
     *,
@@ -322,7 +286,7 @@ def channel_report(
                           "unmixing needs at least as many channels as probes: add channels or drop probes")
     if not 1 <= uptake_ratio < np.inf:
         raise input_error("uptake_ratio", f"got {uptake_ratio!r}", "give a finite target-to-background uptake ratio >= 1")
-    tissue = tissue_preset(tissue) if isinstance(tissue, str) else tissue
+    tissue = as_tissue(tissue)
     depth = np.atleast_1d(np.asarray(depth_mm, dtype=np.float64))
     resp = response_matrix(tissue, probes, channels, irradiance_mw_per_cm2=irradiance_mw_per_cm2, depth_mm=depth,
                            target_size_mm=target_size_mm)

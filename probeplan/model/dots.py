@@ -40,7 +40,7 @@ from typing import Any
 import numpy as np
 from scipy.special import ndtr
 
-from probeplan.errors import AssumptionWarning, ModelValidityWarning, input_error
+from probeplan.errors import AssumptionWarning, ModelValidityWarning, did_you_mean, input_error
 from probeplan.model.spectra import Spectrum, as_wavelengths_nm
 
 __all__ = [
@@ -141,8 +141,6 @@ def _canonical(material: str) -> str:
     lowered = {k.lower(): k for k in table}
     if material.strip().lower() in lowered:
         return lowered[material.strip().lower()]
-    from probeplan.catalog.library import did_you_mean
-
     raise input_error("material", f"unknown material {material!r}", did_you_mean(material, list(table)))
 
 
@@ -868,8 +866,6 @@ def make_probe(material: str, emission_peak_nm: float, **overrides: Any) -> Prob
     name = _canonical(material)
     for key in overrides:
         if key not in _OVERRIDES:
-            from probeplan.catalog.library import did_you_mean
-
             raise input_error("make_probe", f"unknown setting {key!r}", did_you_mean(key, _OVERRIDES))
     peak = float(as_wavelengths_nm(emission_peak_nm, name="emission_peak_nm"))
     lo, hi = emission_range_nm(name)

@@ -75,7 +75,7 @@ import numpy as np
 from probeplan.model import transport
 from probeplan.errors import ProbeAbsorptionWarning, input_error, positive_number
 from probeplan.model.layers import LayeredTissue, layered_coefficients_and_factor
-from probeplan.model.tissue import Tissue, tissue_preset
+from probeplan.model.tissue import Tissue, as_tissue
 
 __all__ = [
     "DEFAULT_CONCENTRATION_UM",
@@ -370,8 +370,8 @@ def emission_grid_nm(probes, *, step_nm: float = 1.0) -> np.ndarray:
     return np.arange(lo, hi + step_nm / 2, step_nm)
 
 
-def _tissue(tissue: str | Tissue | LayeredTissue) -> Tissue | LayeredTissue:
-    return tissue_preset(tissue) if isinstance(tissue, str) else tissue
+def _tissue(tissue: Tissue | LayeredTissue) -> Tissue | LayeredTissue:
+    return tissue if isinstance(tissue, LayeredTissue) else as_tissue(tissue)
 
 
 def _depths(depth_mm) -> np.ndarray:
@@ -490,7 +490,7 @@ class DepthProfile:
 
 
 def probe_rate_e_per_s(
-    tissue: str | Tissue | LayeredTissue,
+    tissue: Tissue | LayeredTissue,
     probe,
     *,
     source,
@@ -623,7 +623,7 @@ def _half_space_integral(tissue, source, irradiance, wl_em, emission_per_nm, yie
 
 
 def background_rates(
-    tissue: str | Tissue | LayeredTissue,
+    tissue: Tissue | LayeredTissue,
     probes,
     *,
     source,
@@ -689,16 +689,17 @@ def background_rates(
 
 
 def depth_profile(
-    tissue: str | Tissue | LayeredTissue,
+    tissue: Tissue | LayeredTissue,
     probe,
+    channel=None,
     *,
-    source,
     irradiance_mw_per_cm2: float,
-    emission_filter,
-    camera,
-    lens,
-    exposure_s: float,
     depth_mm,
+    source=None,
+    emission_filter=None,
+    camera=None,
+    lens=None,
+    exposure_s: float | None = None,
     target_size_mm: float = 2.0,
     concentration_uM: float = DEFAULT_CONCENTRATION_UM,
     uptake_ratio: float = 5.0,
@@ -711,20 +712,25 @@ def depth_profile(
 
     Parameters
     ----------
-    tissue : str or Tissue
-        Preset name or composition.
+    tissue : Tissue
+        The tissue (names are resolved by :func:`probeplan.catalog.resolve.tissue`).
     probe : Probe
         From :func:`probeplan.model.dots.make_probe` (emission, ε at the excitation, QY).
-    source : Source
-        Excitation source (:mod:`probeplan.model.optics`); its spectrum weights the excitation.
+    channel : Channel, optional
+        The channel the probe is read in (:class:`probeplan.model.optics.Channel`, as
+        :func:`probeplan.model.channels.channel_report` takes them): its source, emission
+        filter, camera, lens and exposure.  Without it, give those five one by one.
     irradiance_mw_per_cm2 : float
         Excitation irradiance on the skin (mW/cm²).
-    emission_filter, camera, lens :
-        Detection path (:mod:`probeplan.model.optics`).
-    exposure_s : float
-        Exposure time (s).
     depth_mm : array_like, shape (D,)
         Depths of the inclusion's centre below the surface (mm).
+    source : Source, optional
+        Excitation source (:mod:`probeplan.model.optics`); its spectrum weights the excitation.
+        Overrides the channel's.
+    emission_filter, camera, lens : optional
+        Detection path (:mod:`probeplan.model.optics`); each overrides the channel's.
+    exposure_s : float, optional
+        Exposure time (s); overrides the channel's.
     target_size_mm : float
         Inclusion diameter (mm).
     concentration_uM : float
@@ -749,9 +755,18 @@ def depth_profile(
     DepthProfile
     """
     tissue = _tissue(tissue)
+    parts = {"source": source, "emission_filter": emission_filter, "camera": camera, "lens": lens,
+             "exposure_s": exposure_s}
+    if channel is not None:
+        parts = {k: (getattr(channel, k) if v is None else v) for k, v in parts.items()}
+    missing = [k for k, v in parts.items() if v is None]
+    if missing:
+        raise input_error(", ".join(missing), "not given", "pass a channel, or the source, emission filter, camera, "
+                          "lens and exposure one by one")
+    source, emission_filter, camera, lens = parts["source"], parts["emission_filter"], parts["camera"], parts["lens"]
     depth = _depths(depth_mm)
     irradiance = positive_number("irradiance_mw_per_cm2", irradiance_mw_per_cm2)
-    exposure = positive_number("exposure_s", exposure_s)
+    exposure = positive_number("exposure_s", parts["exposure_s"])
     size = positive_number("target_size_mm", target_size_mm)
     conc = positive_number("concentration_uM", concentration_uM)
     tbr = positive_number("uptake_ratio", uptake_ratio)

@@ -28,7 +28,7 @@ from typing import Any
 
 from scipy.constants import N_A
 
-from probeplan.errors import input_error
+from probeplan.errors import did_you_mean, input_error
 
 __all__ = [
     "HEAVY_METALS",
@@ -66,8 +66,6 @@ def lattice_sources() -> dict[str, str]:
 def _compound(name: str, where: str) -> dict[str, Any]:
     compounds = _table()["compounds"]
     if name not in compounds:
-        from probeplan.catalog.library import did_you_mean
-
         raise input_error(where, f"no lattice density shipped for {name!r}", did_you_mean(name, list(compounds)))
     return compounds[name]
 

@@ -38,7 +38,7 @@ from typing import Any
 import numpy as np
 from scipy.special import expit
 
-from probeplan.errors import input_error
+from probeplan.errors import did_you_mean, input_error
 from probeplan.model.spectra import Spectrum, as_wavelengths_nm
 
 __all__ = [
@@ -810,8 +810,6 @@ def camera(name: str) -> Camera:
     """
     table = _camera_table()
     if name not in table:
-        from probeplan.catalog.library import did_you_mean
-
         raise input_error("camera", f"unknown camera {name!r}", did_you_mean(name, list(table)))
     return camera_from_dict(name, table[name], source=_CAMERA_SOURCE)
 

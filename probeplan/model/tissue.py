@@ -48,7 +48,7 @@ from typing import Any
 
 import numpy as np
 
-from probeplan.errors import ScatteringRangeWarning, input_error
+from probeplan.errors import ScatteringRangeWarning, did_you_mean, input_error
 from probeplan.model.spectra import Spectrum, as_wavelengths_nm
 
 __all__ = [
@@ -57,6 +57,8 @@ __all__ = [
     "molar_extinction",
     "absorption",
     "tissue_preset",
+    "tissue_from_mapping",
+    "as_tissue",
     "preset_names",
     "chromophore_names",
     "load_table",
@@ -171,12 +173,6 @@ def chromophore_names() -> dict[str, tuple[str, str]]:
     return dict(_CHROMOPHORES)
 
 
-def _did_you_mean(name: str, choices) -> str:
-    from probeplan.catalog.library import did_you_mean
-
-    return did_you_mean(name, choices)
-
-
 def molar_extinction(chromophore: str, wavelength_nm) -> np.ndarray:
     """Molar extinction coefficient of haemoglobin (decadic), cm⁻¹ M⁻¹.
 
@@ -209,7 +205,7 @@ def molar_extinction(chromophore: str, wavelength_nm) -> np.ndarray:
     (816.0, 3750.12)
     """
     if chromophore not in ("HbO2", "Hb"):
-        raise input_error("chromophore", f"got {chromophore!r}", _did_you_mean(chromophore, ("HbO2", "Hb")))
+        raise input_error("chromophore", f"got {chromophore!r}", did_you_mean(chromophore, ("HbO2", "Hb")))
     wl = as_wavelengths_nm(wavelength_nm)
     if np.any(wl > _HB_TABLE_END_NM):
         raise input_error(
@@ -302,7 +298,7 @@ def absorption(chromophore: str, wavelength_nm, *, saturation: float = 1.0) -> n
         if np.any((wl < lo) | (wl > hi)):
             raise input_error("wavelength_nm", f"melanosome formula asked outside {lo:g}-{hi:g} nm", "stay in that range")
         return 519.0 * (wl / SCATTERING_REFERENCE_NM) ** -3.0
-    raise input_error("chromophore", f"got {chromophore!r}", _did_you_mean(chromophore, _CHROMOPHORES))
+    raise input_error("chromophore", f"got {chromophore!r}", did_you_mean(chromophore, _CHROMOPHORES))
 
 
 def _fat_per_cm(wl: np.ndarray, user: Spectrum | None, where: str) -> np.ndarray:
@@ -455,7 +451,7 @@ class Tissue:
         valid = {f.name for f in fields(self)}
         for key in changes:
             if key not in valid:
-                raise input_error(f"tissue {self.name!r}", f"unknown field {key!r}", _did_you_mean(key, sorted(valid)))
+                raise input_error(f"tissue {self.name!r}", f"unknown field {key!r}", did_you_mean(key, sorted(valid)))
         return replace(self, **changes)
 
     def mu_a_per_cm(self, wavelength_nm) -> np.ndarray:
@@ -485,7 +481,7 @@ class Tissue:
             model = SCATTERING_MODELS[scattering_model]
         except KeyError:
             raise input_error(
-                "scattering_model", f"got {scattering_model!r}", _did_you_mean(scattering_model, SCATTERING_MODELS)
+                "scattering_model", f"got {scattering_model!r}", did_you_mean(scattering_model, SCATTERING_MODELS)
             ) from None
         mu_sp = model(wl, self)
         outside = self.scattering_outside(wl)
@@ -531,7 +527,11 @@ def preset_names() -> list[str]:
     return list(_presets())
 
 
-def _tissue_from_mapping(name: str, entry: Mapping[str, Any]) -> Tissue:
+def tissue_from_mapping(name: str, entry: Mapping[str, Any]) -> Tissue:
+    """A :class:`Tissue` from the keys of a preset table (``probeplan/data/tissues.toml``) or a user file.
+
+    Keys that are not tissue fields (``source``, ``description`` aside) are ignored.
+    """
     keys = {f.name for f in fields(Tissue)} - {"name", "sources", "fat_absorption", "description"}
     kwargs = {k: entry[k] for k in keys if k in entry}
     sources = {k: str(entry[k]) for k in ("scattering_source", "composition_source", "scattering_range_source")
@@ -544,7 +544,8 @@ def _tissue_from_mapping(name: str, entry: Mapping[str, Any]) -> Tissue:
 def tissue_preset(name: str) -> Tissue:
     """A shipped tissue preset by name (``"skin"``, ``"soft tissue"``, ``"mouse muscle"``, …).
 
-    User tissues from the library folder are found through :func:`probeplan.catalog.library.lookup`.
+    Only the shipped presets: a user's own tissues (the library folder) are
+    resolved by :func:`probeplan.catalog.resolve.tissue`, which also accepts these names.
 
     Raises
     ------
@@ -556,31 +557,41 @@ def tissue_preset(name: str) -> Tissue:
     >>> tissue_preset("skin").a_per_cm
     46.0
     """
-    from probeplan.catalog import library
-
     presets = _presets()
     if name in presets:
-        preset = _tissue_from_mapping(name, presets[name])
-        if preset.fat_fraction > 0:  # a user's fat spectrum (library spectra/absorption, column 'fat') replaces ours
-            fat = library.user_spectra("absorption").get("fat")
-            if fat is not None:
-                preset = preset.with_composition(fat_absorption=fat)
-        return preset
-    user_names = library.user_tissue_names()
-    if name in user_names:
-        return library.user_tissue(name)
-    raise input_error("tissue", f"unknown tissue {name!r}", _did_you_mean(name, [*presets, *user_names]))
+        return tissue_from_mapping(name, presets[name])
+    raise input_error("tissue", f"unknown tissue {name!r}", did_you_mean(name, list(presets)))
+
+
+def as_tissue(tissue: Any) -> Tissue:
+    """``tissue`` itself when it is a :class:`Tissue`; a name is refused with the way to resolve it.
+
+    Model functions take objects: names (presets and the user's own tissues) are
+    resolved at the edges by :func:`probeplan.catalog.resolve.tissue` (``probeplan.tissue``), or by the
+    top-level functions of :mod:`probeplan`, which accept both.
+
+    Raises
+    ------
+    TypeError
+        For a name or anything else that is not a Tissue.
+    """
+    if isinstance(tissue, Tissue):
+        return tissue
+    if isinstance(tissue, str):
+        raise TypeError(f"tissue: expected a Tissue, got the name {tissue!r}; resolve it first with "
+                        f"probeplan.tissue({tissue!r}) (the top-level probeplan functions accept names)")
+    raise TypeError(f"tissue: expected a Tissue, got {type(tissue).__name__}")
 
 
 def optical_properties(
-    tissue: str | Tissue, wavelength_nm, *, scattering_model: str = "power"
+    tissue: Tissue, wavelength_nm, *, scattering_model: str = "power"
 ) -> tuple[np.ndarray, np.ndarray]:
     """Absorption and reduced scattering coefficients of a tissue.
 
     Parameters
     ----------
-    tissue : str or Tissue
-        A preset name (see :func:`preset_names`) or a :class:`Tissue`.
+    tissue : Tissue
+        The tissue (:func:`tissue_preset`; :func:`probeplan.optical_properties` also takes a name).
     wavelength_nm : array_like
         Wavelengths (nm), any shape.
     scattering_model : {"power", "rayleigh_mie"}
@@ -604,14 +615,11 @@ def optical_properties(
 
     Examples
     --------
-    >>> mu_a, mu_sp = optical_properties("skin", [650.0, 800.0])
+    >>> mu_a, mu_sp = optical_properties(tissue_preset("skin"), [650.0, 800.0])
     >>> [round(float(v), 2) for v in mu_sp]
     [31.68, 23.59]
     """
-    if isinstance(tissue, str):
-        tissue = tissue_preset(tissue)
-    elif not isinstance(tissue, Tissue):
-        raise TypeError(f"tissue: expected a preset name or a Tissue, got {type(tissue).__name__}")
+    tissue = as_tissue(tissue)
     mu_a = tissue.mu_a_per_cm(wavelength_nm)
     mu_sp = tissue.mu_s_prime_per_cm(wavelength_nm, scattering_model=scattering_model, warn=False)
     note = tissue.scattering_outside(wavelength_nm)

@@ -21,6 +21,7 @@ from pathlib import Path
 from typing import Any
 
 from probeplan import RESEARCH_USE_CAUTION, __version__
+from probeplan.io.tables import Table
 from probeplan.errors import input_error
 from probeplan.io.atomic import (make_output_folder, output_batch, write_csv_atomic, write_json_atomic,
                                  write_text_atomic)
@@ -68,21 +69,6 @@ LASER_CAUTION = (
     "Laser light can injure skin and eyes. The skin limits here follow the published maximum permissible exposure "
     "rules; eye exposure is not assessed. The laser safety officer approves the set-up, eyewear and controls."
 )
-
-
-@dataclass
-class Table:
-    """A named table: rows of dicts with the same keys; ``columns`` fixes their order."""
-
-    name: str
-    title: str
-    rows: list[dict[str, Any]]
-    columns: list[str] | None = None
-    note: str = ""
-
-    def cols(self) -> list[str]:
-        """The column order."""
-        return self.columns or (list(self.rows[0]) if self.rows else [])
 
 
 @dataclass

@@ -57,11 +57,12 @@ from typing import Any
 
 import numpy as np
 
+from probeplan.catalog.setup import ImagingSetup, build_setup
 from probeplan.errors import AssumptionWarning, InputError, ProbeplanWarning, input_error
-from probeplan.study.plan import Plan
-from probeplan.report.document import Table
-from probeplan.study.rules import RuleCheck, Rules, check_value, default_rules
 from probeplan.io.tomlsource import format_path, line_of
+from probeplan.io.tables import Table
+from probeplan.study.plan import Plan
+from probeplan.study.rules import RuleCheck, Rules, check_value, default_rules
 
 __all__ = [
     "Evaluation",
@@ -111,33 +112,21 @@ SCHEDULE_NOTES = (
 EvaluationTable = Table
 
 
-@dataclass
-class PlanModel:
-    """The optical objects a plan names, built and checked.
+#: The optical objects a plan names: the catalog's one imaging set-up (see :func:`plan_model`).
+PlanModel = ImagingSetup
 
-    Attributes
-    ----------
-    probes : list of Probe
-    source : Laser or LED
-    channels : list of Channel
-        One per ``[[acquisition.channels]]``, sharing source, camera and lens.
-    camera, lens, tissue
-    irradiance_mw_per_cm2 : float
-        Irradiance used by the fluorescence model (the spot's mean, or its
-        peak for a Gaussian beam; or the plan's value).
-    skin_irradiance_mw_per_cm2 : float
-        Irradiance compared with the skin MPE: averaged over the limiting
-        aperture (or the plan's value, taken as already averaged).
-    """
-
-    probes: list
-    source: Any
-    channels: list
-    camera: Any
-    lens: Any
-    tissue: Any
-    irradiance_mw_per_cm2: float
-    skin_irradiance_mw_per_cm2: float
+#: Where each key of the set-up builder is written in a plan.
+_PLAN_KEYS = {
+    "probes": ("probes",),
+    "filters": ("acquisition", "channels"),
+    "exposure_s": ("acquisition", "channels"),
+    "camera": ("acquisition", "camera"),
+    "binning": ("acquisition", "binning"),
+    "f_number": ("acquisition", "f_number"),
+    "excitation_nm": ("acquisition", "wavelength_nm"),
+    "tissue": ("target", "tissue"),
+    "layers": ("tissue", "layers"),
+}
 
 
 @dataclass
@@ -275,45 +264,11 @@ def plan_model(plan: Plan, rules: Rules | None = None) -> PlanModel:
         the material's range, or a lens that cannot exist; the message starts
         with the plan file, line and key path.
     """
-    from probeplan.model import dots
     from probeplan.model import optics
     from probeplan.study import safety
-    from probeplan.catalog.setup import make_camera, make_filter
-    from probeplan.model.layers import Layer, LayeredTissue
-    from probeplan.model.tissue import tissue_preset
 
     rules = default_rules() if rules is None else rules
     acq = plan.acquisition
-    probes = []
-    for i, p in enumerate(plan.probes):
-        overrides = {k: p[k] for k in ("quantum_yield", "fwhm_nm", "extinction_at_excitation_per_M_cm")
-                     if p[k] is not None}
-        with _located(plan, ("probes", i, "material")):
-            dots.material_properties(p["material"])
-        with _located(plan, ("probes", i, "emission_peak_nm")):
-            probes.append(dots.make_probe(p["material"], p["emission_peak_nm"], name=p["name"], **overrides))
-    with _located(plan, ("acquisition", "wavelength_nm")):
-        if acq["source"] == "led":
-            source = optics.LED(acq["wavelength_nm"], acq["linewidth_nm"] or _LED_DEFAULT_FWHM_NM)
-        else:
-            source = optics.Laser(acq["wavelength_nm"], acq["linewidth_nm"] or optics.TYPICAL_LASER_LINEWIDTH_NM)
-    with _located(plan, ("acquisition", "camera")):
-        cam = make_camera(acq["camera"], acq["binning"])
-    with _located(plan, ("acquisition", "f_number")):
-        lens = optics.Lens(acq["f_number"], acq["magnification"])
-    channels = []
-    for c, ch in enumerate(acq["channels"]):
-        with _located(plan, ("acquisition", "channels", c, "filter")):
-            filt = make_filter(ch["filter"])
-        channels.append(optics.Channel(ch["name"], source, filt, cam, lens, ch["exposure_s"]))
-    with _located(plan, ("target", "tissue")):
-        tissue = tissue_preset(plan.target["tissue"])
-    layers = []
-    for i, layer in enumerate(plan.tissue["layers"]):
-        with _located(plan, ("tissue", "layers", i, "tissue")):
-            layers.append(Layer(tissue_preset(layer["tissue"]), layer["thickness_mm"]))
-    if layers:
-        tissue = LayeredTissue(tuple(layers), tissue)
     if acq["irradiance_mw_per_cm2"] is not None:
         irradiance = skin = float(acq["irradiance_mw_per_cm2"])
     else:
@@ -322,7 +277,30 @@ def plan_model(plan: Plan, rules: Rules | None = None) -> PlanModel:
                                                             profile=acq["beam_profile"]))
             skin = float(safety.aperture_averaged_irradiance_mw_per_cm2(
                 acq["power_mw"], acq["spot_diameter_mm"], profile=acq["beam_profile"], rules=rules))
-    return PlanModel(probes, source, channels, cam, lens, tissue, irradiance, skin)
+    if acq["source"] == "led":
+        width = {"led_fwhm_nm": acq["linewidth_nm"] or _LED_DEFAULT_FWHM_NM}
+    else:
+        width = {"linewidth_nm": acq["linewidth_nm"] or optics.TYPICAL_LASER_LINEWIDTH_NM}
+    try:
+        return build_setup(
+            probes=[{k: p[k] for k in ("material", "emission_peak_nm", "name", "quantum_yield", "fwhm_nm",
+                                       "extinction_at_excitation_per_M_cm")} for p in plan.probes],
+            filters=[ch["filter"] for ch in acq["channels"]], channel_names=[ch["name"] for ch in acq["channels"]],
+            exposure_s=[ch["exposure_s"] for ch in acq["channels"]], excitation_nm=acq["wavelength_nm"], **width,
+            irradiance_mw_per_cm2=irradiance, skin_irradiance_mw_per_cm2=skin, camera=acq["camera"],
+            binning=acq["binning"], f_number=acq["f_number"], magnification=acq["magnification"],
+            tissue=plan.target["tissue"],
+            layers=[(layer["tissue"], layer["thickness_mm"]) for layer in plan.tissue["layers"]])
+    except InputError as exc:
+        key = getattr(exc, "key", None)
+        if not key or key[0] not in _PLAN_KEYS:
+            raise
+        path = _PLAN_KEYS[key[0]] + tuple(key[1:])
+        if key[0] in ("filters", "exposure_s") and len(key) > 1:
+            path += ("filter",) if key[0] == "filters" else ("exposure_s",)
+        if key[0] == "layers" and len(key) > 1:
+            path += ("tissue",)
+        raise InputError(f"{_where(plan, path)}: {exc.detail}") from None  # type: ignore[attr-defined]
 
 
 # ---------------------------------------------------------------------------
@@ -334,9 +312,9 @@ def plan_references(plan: Plan, rules: Rules | None = None, *, depth_mm: float |
     """Reference spectra of a plan's probes in its channels, predicted at the target depth (or ``depth_mm``).
 
     Counts per µM in each channel's exposure (gain 1 e⁻/count); see
-    :func:`probeplan.model.channels.reference_spectra`.
+    :func:`probeplan.unmixing.references.reference_spectra`.
     """
-    from probeplan.model.channels import reference_spectra
+    from probeplan.unmixing.references import reference_spectra
 
     m = plan_model(plan, rules)
     depth = plan.target["depth_mm"] if depth_mm is None else depth_mm
@@ -507,10 +485,9 @@ def _light(plan: Plan, rules: Rules, model: PlanModel):
 
     acq = plan.acquisition
     n_sessions, _, _ = _sessions(plan)
-    exposures = [ch["exposure_s"] for ch in acq["channels"]] * acq["positions"]
     wavelength = float(model.source.centre_nm)
     with _located(plan, ("acquisition", "channels")):
-        session = safety.session_exposure_check(wavelength, model.skin_irradiance_mw_per_cm2, exposures, rules=rules)
+        session = safety.setup_skin_exposure(model, positions=acq["positions"], rules=rules)
     with _located(plan, ("acquisition", "wavelength_nm")):
         allowed = float(safety.allowed_irradiance_mw_per_cm2(wavelength, session.total_on_time_s, rules))
     check = check_value(

@@ -39,9 +39,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from probeplan.errors import input_error
+from probeplan.errors import did_you_mean, input_error
 from probeplan.model.fluorescence import DEFAULT_CONCENTRATION_UM
-from probeplan.catalog.library import did_you_mean
 from probeplan.io.tomlsource import format_path, line_of, load_toml, parse_toml_text
 
 __all__ = ["Plan", "load_plan", "parse_plan_text", "SCHEMA", "ROUTES", "SPECIES", "MAX_TABLES"]

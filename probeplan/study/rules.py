@@ -34,7 +34,6 @@ table (strings only: institution, contact, date, ...) is kept with the rules.
 
 from __future__ import annotations
 
-import difflib
 import functools
 import math
 from collections.abc import Iterable, Iterator, Mapping
@@ -44,7 +43,7 @@ from pathlib import Path
 from types import MappingProxyType
 from typing import Any
 
-from probeplan.errors import InputError, input_error
+from probeplan.errors import InputError, did_you_mean, input_error
 from probeplan.io.tomlsource import MAX_TOML_BYTES, line_of, parse_toml_text
 
 __all__ = [
@@ -435,8 +434,7 @@ def check_value(
 
 
 def _unknown_rule(where: str, rule_id: object, known: Iterable[str]) -> InputError:
-    close = difflib.get_close_matches(str(rule_id), list(known), n=3, cutoff=0.6)
-    fix = f"did you mean {' or '.join(repr(c) for c in close)}?" if close else "see default_rules.toml for the rule ids"
+    fix = did_you_mean(rule_id, known, cutoff=0.6, listing="see default_rules.toml for the rule ids")
     return input_error(where, f"unknown rule {str(rule_id)!r}", fix)
 
 

@@ -28,6 +28,7 @@ from probeplan.errors import AssumptionWarning, input_error
 from probeplan.io.atomic import table_to_csv_text, write_text_atomic
 
 __all__ = [
+    "reference_spectra",
     "ReferenceSpectra",
     "NORMALISATIONS",
     "normalise_columns",
@@ -458,3 +459,38 @@ def references_from_control_files(controls: Mapping[str, str | os.PathLike], unl
         refs = ReferenceSpectra(np.hstack([refs.matrix, column[:, None]]), (*refs.component_names, unlabelled_name),
                                 refs.channel_names, refs.source, refs.normalisation)
     return refs
+
+
+def reference_spectra(
+    tissue,
+    probes,
+    channels,
+    *,
+    irradiance_mw_per_cm2: float,
+    depth_mm: float,
+    target_size_mm: float = 2.0,
+    gain_e_per_count: float = 1.0,
+):
+    """Reference spectra predicted by the channel model at one depth, for unmixing.
+
+    Entry (c, k) is the camera counts per µM of probe k in channel c in that
+    channel's exposure (1 s when unset): the response matrix × exposure ÷ gain.
+    Unmixing with these references (not normalised) gives abundances in µM.
+
+    Returns
+    -------
+    ReferenceSpectra
+    """
+    from probeplan.model.channels import response_matrix
+
+    if not 0 < gain_e_per_count < np.inf:
+        raise input_error("gain_e_per_count", f"got {gain_e_per_count!r}", "give the camera gain in e-/count (> 0)")
+    resp = response_matrix(tissue, probes, channels, irradiance_mw_per_cm2=irradiance_mw_per_cm2,
+                           depth_mm=[float(depth_mm)], target_size_mm=target_size_mm)[0]
+    exposure = np.array([float(getattr(ch, "exposure_s", None) or 1.0) for ch in channels])
+    return references_from_matrix(
+        resp * exposure[:, None] / gain_e_per_count,
+        [str(getattr(p, "name", f"probe {i + 1}")) for i, p in enumerate(probes)],
+        [str(getattr(ch, "name", f"channel {i + 1}")) for i, ch in enumerate(channels)],
+        normalise=None,
+    )

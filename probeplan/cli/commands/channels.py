@@ -8,8 +8,8 @@ HELP = "channel responses, crosstalk, condition number and noise amplification o
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    from probeplan.catalog.setup import add_model_options
     from probeplan.cli.common import add_output_options
+    from probeplan.cli.model_options import add_model_options
 
     add_model_options(parser)
     g = parser.add_argument_group("depths and output")
@@ -26,23 +26,21 @@ def run(args: argparse.Namespace) -> int:
     import numpy as np
 
     from probeplan import RESEARCH_USE_CAUTION
-    from probeplan.model.channels import SEPARABLE_CONDITION_LIMIT, channel_report
-    from probeplan.catalog.setup import channels_from_args, probes_from_args, tissue_from_args
     from probeplan.cli.common import model_notes, print_json, print_table
-    from probeplan.model.fluorescence import Autofluorescence
+    from probeplan.cli.model_options import setup_from_args
     from probeplan.io.atomic import check_outputs, refuse_input_paths
+    from probeplan.model.channels import SEPARABLE_CONDITION_LIMIT, channel_report
 
     if args.plot:
         refuse_input_paths([args.plot], [s.partition("@")[2] for s in args.probe if "@" in s], option="--plot")
         check_outputs([args.plot])
-    probes = probes_from_args(args)
-    channels = channels_from_args(args, len(probes))
+    setup = setup_from_args(args)
+    probes, channels = setup.probes, setup.channels
     depths = args.depth_mm or [1.0, 3.0, 5.0]
-    af = None if args.af_yield is None else Autofluorescence(yield_per_cm=args.af_yield)
     with model_notes() as notes:
-        rep = channel_report(tissue_from_args(args), probes, channels, irradiance_mw_per_cm2=args.irradiance,
+        rep = channel_report(setup.tissue, probes, channels, irradiance_mw_per_cm2=setup.irradiance_mw_per_cm2,
                              depth_mm=depths, target_size_mm=args.size_mm, concentration_uM=args.concentration_uM,
-                             uptake_ratio=args.uptake_ratio, autofluorescence=af)
+                             uptake_ratio=args.uptake_ratio, autofluorescence=setup.autofluorescence)
     rep.notes += [n for n in notes if n not in rep.notes]
     if args.plot:
         _write_plot(args.plot, probes, channels, rep)
@@ -75,10 +73,10 @@ def run(args: argparse.Namespace) -> int:
 
 
 def _write_plot(path: str, probes, channels, rep) -> None:
-    from probeplan.model.fluorescence import emission_grid_nm
     from probeplan.io.atomic import write_bytes_atomic
-    from probeplan.report.figures import channels_figure
+    from probeplan.model.fluorescence import emission_grid_nm
     from probeplan.report.document import figure_png_bytes
+    from probeplan.report.figures import channels_figure
 
     fig = channels_figure(emission_grid_nm(probes), probes, channels, rep.crosstalk[0], rep.probe_names,
                           rep.channel_names, depth_mm=float(rep.depth_mm[0]))

@@ -11,8 +11,8 @@ _MAX_DEPTHS = 10_000
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    from probeplan.catalog.setup import add_model_options
     from probeplan.cli.common import add_output_options
+    from probeplan.cli.model_options import add_model_options
 
     add_model_options(parser)
     g = parser.add_argument_group("depths and output")
@@ -35,17 +35,18 @@ def run(args: argparse.Namespace) -> int:
     import numpy as np
 
     from probeplan import RESEARCH_USE_CAUTION
-    from probeplan.study import safety
-    from probeplan.catalog.setup import make_camera, make_filter, make_lens, make_source, probes_from_args, tissue_from_args
     from probeplan.cli.common import model_notes, print_json, print_table
+    from probeplan.cli.model_options import setup_from_args
     from probeplan.errors import input_error
-    from probeplan.model.fluorescence import Autofluorescence, depth_at_threshold, depth_profile
     from probeplan.io.atomic import check_outputs, refuse_input_paths, write_bytes_atomic, write_csv_atomic
+    from probeplan.model.fluorescence import depth_at_threshold, depth_profile
+    from probeplan.study import safety
 
-    probes = probes_from_args(args)
     filters = args.filter or []
-    if len(filters) not in (1, len(probes)):
-        raise input_error("--filter", f"{len(filters)} filters for {len(probes)} probes",
+    if not filters:
+        raise input_error("--filter", "no emission filter given", "give --filter, e.g. 700/30")
+    if len(filters) not in (1, len(args.probe)):
+        raise input_error("--filter", f"{len(filters)} filters for {len(args.probe)} probes",
                           "give one --filter per --probe (or one for all)")
     if not (0 < args.depth_step_mm <= args.depth_max_mm < math.inf):  # also refuses NaN
         raise input_error("--depth-max-mm/--depth-step-mm", f"got {args.depth_max_mm:g}/{args.depth_step_mm:g}",
@@ -57,24 +58,21 @@ def run(args: argparse.Namespace) -> int:
     if n_depths > _MAX_DEPTHS:
         raise input_error("--depth-max-mm/--depth-step-mm", f"{n_depths} depths asked for",
                           f"give at most {_MAX_DEPTHS} (a larger --depth-step-mm)")
-    tissue = tissue_from_args(args)
-    source, lens = make_source(args), make_lens(args)
-    cam = make_camera(args.camera, args.binning)
-    af = None if args.af_yield is None else Autofluorescence(yield_per_cm=args.af_yield)
+    setup = setup_from_args(args)
     depths = np.arange(0.0, args.depth_max_mm + args.depth_step_mm / 2, args.depth_step_mm)
     profiles = []
     with model_notes() as messages:
-        for i, probe in enumerate(probes):
-            filt = make_filter(filters[i] if len(filters) > 1 else filters[0]) if filters else None
-            if filt is None:
-                raise input_error("--filter", "no emission filter given", "give --filter, e.g. 700/30")
+        for i, probe in enumerate(setup.probes):
+            ch = setup.channels[i if len(setup.channels) > 1 else 0]
             profiles.append(depth_profile(
-                tissue, probe, source=source, irradiance_mw_per_cm2=args.irradiance, emission_filter=filt,
-                camera=cam, lens=lens, exposure_s=args.exposure_s, depth_mm=depths, target_size_mm=args.size_mm,
-                concentration_uM=args.concentration_uM, uptake_ratio=args.uptake_ratio, autofluorescence=af,
+                setup.tissue, probe, source=setup.source, irradiance_mw_per_cm2=setup.irradiance_mw_per_cm2,
+                emission_filter=ch.emission_filter, camera=setup.camera, lens=setup.lens, exposure_s=ch.exposure_s,
+                depth_mm=depths, target_size_mm=args.size_mm, concentration_uM=args.concentration_uM,
+                uptake_ratio=args.uptake_ratio, autofluorescence=setup.autofluorescence,
                 transport_model=args.transport_model,
             ))
-    mpe = float(safety.skin_mpe_mw_per_cm2(args.excitation_nm, max(10.0, args.exposure_s)))
+        skin_check = safety.setup_skin_exposure(setup)
+    mpe = skin_check.mpe_mw_per_cm2
     summary = []
     for p in profiles:
         lost = depth_at_threshold(p, args.sbr_threshold)
@@ -85,13 +83,15 @@ def run(args: argparse.Namespace) -> int:
     if args.csv:
         write_csv_atomic(args.csv, rows)
     if args.plot:
-        from probeplan.report.figures import depth_and_spectra_figure
         from probeplan.report.document import figure_png_bytes
+        from probeplan.report.figures import depth_and_spectra_figure
 
         write_bytes_atomic(args.plot, figure_png_bytes(depth_and_spectra_figure(profiles, args.sbr_threshold)))
     notes = sorted({n for p in profiles for n in p.notes}) + messages
     skin = {"wavelength_nm": args.excitation_nm, "irradiance_mw_per_cm2": args.irradiance,
-            "skin_mpe_mw_per_cm2": mpe, "fraction_of_mpe": args.irradiance / mpe}
+            "on_time_per_session_s": skin_check.total_on_time_s, "skin_mpe_mw_per_cm2": mpe,
+            "fraction_of_mpe": skin_check.ratio, "governing_rule": skin_check.governing_rule,
+            "allowed_fraction": skin_check.allowed_fraction}
     from probeplan.model.transport import TRANSPORT_MODELS
 
     transport_model = profiles[0].transport_model if profiles else args.transport_model
@@ -102,9 +102,10 @@ def run(args: argparse.Namespace) -> int:
                     "summary": summary, "rows": rows, "notes": notes})
         return 0
     print(RESEARCH_USE_CAUTION)
-    flag = "  ABOVE THE SKIN LIMIT" if args.irradiance > mpe else ""
-    print(f"excitation {args.excitation_nm:g} nm at {args.irradiance:g} mW/cm^2; skin MPE (>= 10 s) "
-          f"{mpe:.0f} mW/cm^2 ({100 * args.irradiance / mpe:.1f} % of it){flag}")
+    flag = "  ABOVE THE SKIN LIMIT" if skin_check.ratio > 1.0 else ""
+    print(f"excitation {args.excitation_nm:g} nm at {args.irradiance:g} mW/cm^2; skin MPE for one session's "
+          f"{skin_check.total_on_time_s:g} s of light on one site {mpe:.0f} mW/cm^2 "
+          f"({100 * skin_check.ratio:.1f} % of it, {skin_check.governing_rule} rule){flag}")
     print(f"light transport: {transport_model}: {TRANSPORT_MODELS.get(transport_model, '')}\n")
     step = max(1, int(round(1.0 / args.depth_step_mm)))
     shown = [r for p in profiles for r in p.rows()[::step]]

@@ -14,7 +14,7 @@ HELP = "search every probe / filter / source combination for the best worst-prob
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    from probeplan.catalog.setup import add_optics_options, add_target_options
+    from probeplan.cli.model_options import add_optics_options, add_target_options
 
     g = parser.add_argument_group("tissue and candidates")
     g.add_argument("--tissue", default="soft tissue", help="tissue preset or user tissue (default: 'soft tissue')")
@@ -53,7 +53,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def _candidate_probes(specs: list[str]) -> list:
-    from probeplan.catalog.setup import parse_probe
+    from probeplan.catalog.resolve import probe as parse_probe
     from probeplan.design.search import probe_series
     from probeplan.errors import input_error
 
@@ -81,7 +81,7 @@ def _candidate_probes(specs: list[str]) -> list:
 def _candidate_filters(args: argparse.Namespace) -> list:
     import numpy as np
 
-    from probeplan.catalog.setup import make_filter
+    from probeplan.catalog.resolve import emission_filter as make_filter
     from probeplan.design.search import filter_grid
     from probeplan.errors import input_error
 
@@ -109,10 +109,9 @@ def _candidate_filters(args: argparse.Namespace) -> list:
 def run(args: argparse.Namespace) -> int:
     import sys
     import warnings
-    from types import SimpleNamespace
 
     from probeplan import RESEARCH_USE_CAUTION
-    from probeplan.catalog.setup import make_camera, make_lens, make_source, tissue_from_args
+    from probeplan.catalog import resolve
     from probeplan.cli.common import print_json, print_table
     from probeplan.design.search import design
     from probeplan.errors import ProbeplanWarning
@@ -120,11 +119,11 @@ def run(args: argparse.Namespace) -> int:
 
     probes = _candidate_probes(args.candidate_probe)
     filters = _candidate_filters(args)
-    sources = [make_source(SimpleNamespace(excitation_nm=nm, linewidth_nm=args.linewidth_nm, led_fwhm_nm=args.led_fwhm_nm))
+    sources = [resolve.source(nm, linewidth_nm=args.linewidth_nm, led_fwhm_nm=args.led_fwhm_nm)
                for nm in (args.excitation_nm or [640.0])]
-    cameras = [make_camera(name, args.binning) for name in (args.camera or ["si-deep-depletion"])]
-    lens = make_lens(args)
-    tissue = tissue_from_args(args)
+    cameras = [resolve.camera(name, args.binning) for name in (args.camera or ["si-deep-depletion"])]
+    lens = resolve.lens(args.f_number, args.magnification)
+    tissue = resolve.tissue(args.tissue)
     af = None if args.af_yield is None else Autofluorescence(yield_per_cm=args.af_yield)
 
     bar = None
