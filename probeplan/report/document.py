@@ -14,13 +14,13 @@ from __future__ import annotations
 import base64
 import html
 import io
-import math
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from probeplan import RESEARCH_USE_CAUTION, __version__
+from probeplan.format import format_number
 from probeplan.io.tables import Table
 from probeplan.errors import input_error
 from probeplan.io.atomic import (make_output_folder, output_batch, write_csv_atomic, write_json_atomic,
@@ -117,30 +117,6 @@ def _cell(value: Any) -> str:
         return format_number(value)
     return html.escape(str(value))
 
-
-def format_number(value: float, digits: int = 4) -> str:
-    """A number as short text for tables: ``digits`` significant figures, scientific outside 1e-3..1e5.
-
-    Examples
-    --------
-    >>> format_number(0.123456), format_number(1.5e6), format_number(float("inf")), format_number(float("nan"))
-    ('0.1235', '1.500e+06', '∞', '–')
-    >>> format_number(2.4000000000000004), format_number(0.0046, 2), format_number(1500.0, 3), format_number(None)
-    ('2.4', '0.0046', '1500', '–')
-    """
-    if value is None or math.isnan(value):
-        return "–"
-    if math.isinf(value):
-        return "∞" if value > 0 else "−∞"
-    if value != 0 and (abs(value) >= 1e5 or abs(value) < 1e-3):
-        return f"{value:.{digits - 1}e}"
-    if value == 0:
-        return "0"
-    # fixed notation rounded to ``digits`` significant figures, trailing zeros dropped ('g' would switch to
-    # exponents for 1500 at 3 figures)
-    decimals = max(0, digits - 1 - math.floor(math.log10(abs(value))))
-    text = f"{round(value, decimals):.{decimals}f}"
-    return text.rstrip("0").rstrip(".") if "." in text else text
 
 
 _CSS = """

@@ -25,7 +25,7 @@ PALETTE = ("#0072B2", "#E69F00", "#009E73", "#CC79A7", "#D55E00", "#56B4E9", "#0
 
 
 def _number(value: float, digits: int = 3) -> str:
-    from probeplan.report.document import format_number
+    from probeplan.format import format_number
 
     return format_number(float(value), digits)
 
