@@ -10,7 +10,7 @@ from __future__ import annotations
 import math
 from typing import Any
 
-__all__ = ["format_number", "format_value", "MISSING", "DEFAULT_DIGITS"]
+__all__ = ["format_number", "format_value", "column_label", "MISSING", "DEFAULT_DIGITS"]
 
 #: Shown for a missing value (None or NaN).
 MISSING = "–"
@@ -60,3 +60,32 @@ def format_value(value: Any, digits: int = DEFAULT_DIGITS) -> str:
         except (TypeError, ValueError):
             return str(value)
     return str(value)
+
+
+#: Unit suffixes of column names and how a reader writes them (longest first).
+_UNIT_SUFFIXES = (
+    ("_mw_per_cm2", "mW/cm²"), ("_j_per_cm2", "J/cm²"),
+    ("_nmol_per_kg", "nmol/kg"), ("_ml_per_kg", "mL/kg"), ("_e_per_s", "e⁻/s"), ("_per_m_cm", "M⁻¹ cm⁻¹"),
+    ("_per_cm", "cm⁻¹"), ("_ul", "µL"), ("_ml", "mL"), ("_um", "µm"), ("_uM", "µM"), ("_mm", "mm"), ("_nm", "nm"),
+    ("_mw", "mW"), ("_min", "min"), ("_s", "s"), ("_h", "h"), ("_g", "g"), ("_e", "e⁻"),
+)
+_WORDS = {"sbr": "SBR", "snr": "SNR", "tbr": "TBR", "mpe": "MPE", "fwhm": "FWHM", "qc": "QC", "rms": "RMS", "od": "OD"}
+
+
+def column_label(name: str) -> str:
+    """A column name as a reader writes it: words, acronyms in capitals, the unit in brackets.
+
+    Examples
+    --------
+    >>> column_label("volume_ul"), column_label("skin_mpe_mw_per_cm2"), column_label("sbr"), column_label("probe")
+    ('volume (µL)', 'skin MPE (mW/cm²)', 'SBR', 'probe')
+    """
+    if " " in name or not name:
+        return name
+    unit = ""
+    for suffix, text in _UNIT_SUFFIXES:
+        if name.endswith(suffix) and len(name) > len(suffix):
+            name, unit = name[: -len(suffix)], text
+            break
+    words = [_WORDS.get(w, w) for w in name.split("_")]
+    return " ".join(words) + (f" ({unit})" if unit else "")

@@ -20,7 +20,7 @@ from pathlib import Path
 from typing import Any
 
 from probeplan import RESEARCH_USE_CAUTION, __version__
-from probeplan.format import format_number
+from probeplan.format import column_label, format_number
 from probeplan.io.tables import Table
 from probeplan.errors import input_error
 from probeplan.io.atomic import (make_output_folder, output_batch, write_csv_atomic, write_json_atomic,
@@ -28,34 +28,6 @@ from probeplan.io.atomic import (make_output_folder, output_batch, write_csv_ato
 
 __all__ = ["Report", "Table", "write_report", "format_number", "HEAVY_METAL_CAUTION", "LASER_CAUTION",
            "figure_png_bytes", "plan_report", "report_pdf_bytes", "column_label"]
-
-#: Unit suffixes of column names and how a reader writes them (longest first).
-_UNIT_SUFFIXES = (
-    ("_mw_per_cm2", "mW/cm²"), ("_j_per_cm2", "J/cm²"),
-    ("_nmol_per_kg", "nmol/kg"), ("_ml_per_kg", "mL/kg"), ("_e_per_s", "e⁻/s"), ("_per_m_cm", "M⁻¹ cm⁻¹"),
-    ("_per_cm", "cm⁻¹"), ("_ul", "µL"), ("_ml", "mL"), ("_um", "µm"), ("_uM", "µM"), ("_mm", "mm"), ("_nm", "nm"),
-    ("_mw", "mW"), ("_min", "min"), ("_s", "s"), ("_h", "h"), ("_g", "g"), ("_e", "e⁻"),
-)
-_WORDS = {"sbr": "SBR", "snr": "SNR", "tbr": "TBR", "mpe": "MPE", "fwhm": "FWHM", "qc": "QC", "rms": "RMS", "od": "OD"}
-
-
-def column_label(name: str) -> str:
-    """A column name as a reader writes it: words, acronyms in capitals, the unit in brackets.
-
-    Examples
-    --------
-    >>> column_label("volume_ul"), column_label("skin_mpe_mw_per_cm2"), column_label("sbr"), column_label("probe")
-    ('volume (µL)', 'skin MPE (mW/cm²)', 'SBR', 'probe')
-    """
-    if " " in name or not name:
-        return name
-    unit = ""
-    for suffix, text in _UNIT_SUFFIXES:
-        if name.endswith(suffix) and len(name) > len(suffix):
-            name, unit = name[: -len(suffix)], text
-            break
-    words = [_WORDS.get(w, w) for w in name.split("_")]
-    return " ".join(words) + (f" ({unit})" if unit else "")
 
 #: Shown whenever a plan uses a Cd- or Pb-containing probe.
 HEAVY_METAL_CAUTION = (

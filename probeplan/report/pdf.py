@@ -71,7 +71,7 @@ def _esc(text: Any) -> str:
 
 def _cell_text(value: Any) -> tuple[str, bool]:
     """(text, is_number) of one cell."""
-    from probeplan.report.document import format_number
+    from probeplan.format import format_number
 
     if value is None:
         return "–", False
@@ -88,11 +88,11 @@ def _table_flowables(table, styles, width: float) -> list:
     from reportlab.platypus import Table as PdfTable
     from reportlab.platypus import TableStyle
 
-    from probeplan.report.document import column_label
+    from probeplan.format import column_label
 
     cols = table.cols()
     if len(table.rows) == 1 and len(cols) > MAX_COLUMNS:  # one wide row reads better as quantity | value
-        from probeplan.report.document import Table
+        from probeplan.io.tables import Table
 
         row = table.rows[0]
         table = Table(table.name, table.title, [{"quantity": column_label(c), "value": row.get(c)} for c in cols],

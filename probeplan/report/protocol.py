@@ -18,7 +18,7 @@ import re
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 
-from probeplan.report.document import format_number
+from probeplan.format import format_number
 
 __all__ = ["Section", "PLACEHOLDER", "protocol_sections", "plain_assumptions"]
 
