@@ -20,16 +20,20 @@ DEFAULT_DIGITS = 4
 _SMALL, _LARGE = 1e-3, 1e5
 
 
-def format_number(value: float, digits: int = DEFAULT_DIGITS) -> str:
+def format_number(value: float | None, digits: int = DEFAULT_DIGITS) -> str:
     """A number as short text for tables: ``digits`` significant figures, scientific outside 1e-3..1e5.
 
     Examples
     --------
     >>> format_number(0.123456), format_number(1.5e6), format_number(float("inf")), format_number(float("nan"))
     ('0.1235', '1.500e+06', '∞', '–')
-    >>> format_number(-float("inf")), format_number(0.0), format_number(2.5e-4, 3)
-    ('−∞', '0', '2.50e-04')
+    >>> format_number(-float("inf")), format_number(0.0), format_number(2.5e-4, 3), format_number(1500.0, 3)
+    ('−∞', '0', '2.50e-04', '1500')
+    >>> format_number(2.4000000000000004), format_number(0.0046, 2), format_number(None)
+    ('2.4', '0.0046', '–')
     """
+    if value is None:
+        return MISSING
     value = float(value)
     if math.isnan(value):
         return MISSING
@@ -37,7 +41,13 @@ def format_number(value: float, digits: int = DEFAULT_DIGITS) -> str:
         return "∞" if value > 0 else "−∞"
     if value != 0 and (abs(value) >= _LARGE or abs(value) < _SMALL):
         return f"{value:.{digits - 1}e}"
-    return f"{value:.{digits}g}"
+    if value == 0:
+        return "0"
+    # fixed notation rounded to ``digits`` significant figures, trailing zeros dropped ('g' would switch to
+    # exponents for 1500 at 3 figures)
+    decimals = max(0, digits - 1 - math.floor(math.log10(abs(value))))
+    text = f"{round(value, decimals):.{decimals}f}"
+    return text.rstrip("0").rstrip(".") if "." in text else text
 
 
 def format_value(value: Any, digits: int = DEFAULT_DIGITS) -> str:

@@ -7,7 +7,7 @@ import inspect
 import sys
 from pathlib import Path
 
-from probeplan.catalog.setup import add_target_options
+from probeplan.cli.model_options import add_target_options
 from probeplan.design.search import design
 from probeplan.model.channels import channel_report
 from probeplan.model.fluorescence import DEFAULT_CONCENTRATION_UM, depth_profile, probe_rate_e_per_s

@@ -181,7 +181,9 @@ def test_a_users_fat_spectrum_extends_the_fat_presets(_isolated_user_library):
     folder = _isolated_user_library / "spectra" / "absorption"
     folder.mkdir(parents=True)
     (folder / "fat.csv").write_text("# my lab's lard measurement (example)\nwavelength_nm,fat\n400,0.1\n1800,0.3\n")
-    t = tissue.tissue_preset("subcutaneous fat")
+    from probeplan.catalog import resolve
+
+    t = resolve.tissue("subcutaneous fat")  # the catalog applies the library's fat spectrum to the preset
     lean = t.with_composition(fat_fraction=0.0)
     expected = t.fat_fraction * (0.1 + 0.2 * (1300.0 - 400.0) / 1400.0)
     assert float(t.mu_a_per_cm(1300.0) - lean.mu_a_per_cm(1300.0)) == pytest.approx(expected)

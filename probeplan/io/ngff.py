@@ -52,7 +52,7 @@ def _open_group(path: Path, mode="r"):
 
 def inspect_ome_zarr(path, channel_axis: int | None = None):
     """The :class:`~probeplan.io.stacks.StackInfo` of an OME-Zarr image and its full-resolution array."""
-    from probeplan.io.stacks import StackInfo
+    from probeplan.io.stackinfo import StackInfo
 
     path = Path(path)
     where = str(path)

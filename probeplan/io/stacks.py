@@ -30,6 +30,7 @@ import numpy as np
 
 from probeplan.errors import InputError, input_error
 from probeplan.io.atomic import atomic_path, write_error
+from probeplan.io.stackinfo import StackInfo
 
 __all__ = [
     "StackInfo",
@@ -45,58 +46,6 @@ __all__ = [
 UM_PER_UNIT = {"µm": 1.0, "um": 1.0, "micron": 1.0, "nm": 1e-3, "mm": 1e3, "cm": 1e4, "m": 1e6, "Å": 1e-4}
 
 _FIX_TIFF = "check the file is a complete TIFF or OME-TIFF stack (re-export it from the acquisition software)"
-
-
-@dataclass(frozen=True)
-class StackInfo:
-    """What is known about a stack file.
-
-    Attributes
-    ----------
-    path : Path
-    shape : tuple of int
-        Shape in the file's axis order.
-    dtype : numpy.dtype
-        Native-byte-order dtype of the samples.
-    axes : str
-        One letter per axis (tifffile's codes: C channel, Z, T, Y, X, S samples, Q unknown).
-    channel_axis : int
-    channel_axis_source : str
-        ``"file"``, ``"argument"`` or ``"channel-first convention"``.
-    row_axis : int
-        The axis read in chunks (Y).
-    channel_names : tuple of str or None
-    pixel_size_um : tuple of float (y, x) or None
-    """
-
-    path: Path
-    shape: tuple[int, ...]
-    dtype: np.dtype
-    axes: str
-    channel_axis: int
-    channel_axis_source: str
-    row_axis: int
-    channel_names: tuple[str, ...] | None = None
-    pixel_size_um: tuple[float, float] | None = None
-    data_offset: int | None = field(default=None, repr=False)
-    file_dtype: np.dtype | None = field(default=None, repr=False)
-
-    @property
-    def n_channels(self) -> int:
-        return self.shape[self.channel_axis]
-
-    @property
-    def spatial_shape(self) -> tuple[int, ...]:
-        """Shape without the channel axis."""
-        return tuple(n for i, n in enumerate(self.shape) if i != self.channel_axis)
-
-    @property
-    def spatial_axes(self) -> str:
-        return "".join(a for i, a in enumerate(self.axes) if i != self.channel_axis)
-
-    @property
-    def n_rows(self) -> int:
-        return self.shape[self.row_axis]
 
 
 def _ome_details(ome_xml: str) -> tuple[tuple[str, ...] | None, tuple[float, float] | None]:
