@@ -13,7 +13,6 @@ import contextlib
 import re
 import shutil
 import tempfile
-import warnings
 import weakref
 from collections.abc import Iterator
 from pathlib import Path
@@ -21,7 +20,8 @@ from typing import Any
 
 import streamlit as st
 
-from probeplan.errors import InputError, ProbeplanWarning
+from probeplan.io.shipped import shipped_folder
+from probeplan.errors import InputError
 
 __all__ = [
     "REPO_ROOT",
@@ -38,10 +38,10 @@ __all__ = [
     "ProbeSpec",
 ]
 
-#: The repository root (the page lives in ``<root>/app``).
+#: The folder holding the page (``app/`` in the source tree, ``probeplan/app`` when installed).
 REPO_ROOT = Path(__file__).resolve().parents[1]
-#: The invented demo study shipped with the repository.
-DEMO_DIR = REPO_ROOT / "demo_tissue"
+#: The invented demo study shipped with the package (found through importlib.resources).
+DEMO_DIR = shipped_folder("demo_tissue")
 #: Resolution of the figures shown on the page (dots per inch).
 FIGURE_DPI = 100
 
@@ -147,15 +147,11 @@ def _one_line(text: str) -> str:
 
 @contextlib.contextmanager
 def captured_warnings(notes: list[str]) -> Iterator[None]:
-    """Collect probeplan's warnings into ``notes`` (shown as notes instead of raised)."""
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", ProbeplanWarning)
+    """Collect probeplan's warnings into ``notes`` (shown as notes instead of raised): probeplan.notes.collect_notes."""
+    from probeplan.notes import collect_notes
+
+    with collect_notes(notes):
         yield
-    for w in caught:
-        if issubclass(w.category, ProbeplanWarning):
-            text = str(w.message)
-            if text not in notes:
-                notes.append(text)
 
 
 def show_notes(notes: list[str], *, title: str = "Model notes and assumptions") -> None:
@@ -169,15 +165,9 @@ def show_notes(notes: list[str], *, title: str = "Model notes and assumptions") 
 
 def fmt(value: Any, digits: int = 3) -> str:
     """A number as short text for tables (∞ and – for infinite and missing values)."""
-    if value is None:
-        return "–"
-    if isinstance(value, bool):
-        return "yes" if value else "no"
-    if isinstance(value, (int, float)):
-        from probeplan.report.document import format_number
+    from probeplan.format import format_value
 
-        return format_number(float(value), digits)
-    return str(value)
+    return format_value(float(value) if isinstance(value, int) and not isinstance(value, bool) else value, digits)
 
 
 #: One probe as plain values: (material, emission peak nm, QY or None, extinction M^-1 cm^-1 or None).

@@ -27,6 +27,7 @@ __all__ = [
     "channel_results",
     "channels_png",
     "skin_mpe",
+    "skin_exposure",
     "material_ranges",
     "camera_names",
 ]
@@ -189,6 +190,23 @@ def channels_png(setup: Setup) -> bytes:
         fig = channels_figure(emission_grid_nm(probes), probes, channels, rep.crosstalk[0], rep.probe_names,
                               rep.channel_names, depth_mm=float(rep.depth_mm[0]))
     return figure_png_bytes(fig, dpi=FIGURE_DPI)
+
+
+@st.cache_data(max_entries=64, show_spinner=False)
+def skin_exposure(setup: Setup):
+    """The skin check of one session of the set-up, by the library's one rule, and any note it gave.
+
+    :func:`probeplan.study.safety.setup_skin_exposure`: every channel's exposure once, the source
+    on only while the camera exposes, all on one skin site (as the command line and the plan).
+    """
+    from probeplan.study import safety
+
+    notes: list[str] = []
+    with captured_warnings(notes):
+        check = safety.setup_skin_exposure(build(setup))
+    return {"share_of_mpe": check.ratio, "skin_mpe_mw_per_cm2": check.mpe_mw_per_cm2,
+            "on_time_s": check.total_on_time_s, "governing_rule": check.governing_rule,
+            "allowed_fraction": check.allowed_fraction}, notes
 
 
 @st.cache_data(max_entries=256, show_spinner=False)

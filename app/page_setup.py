@@ -141,8 +141,9 @@ def setup_sidebar() -> dict:
     sb.number_input("irradiance on the skin (mW/cm²)", min_value=0.001, max_value=10000.0, step=1.0,
                     format="%.3f", persist_state="session", key="w_irradiance")
     sb.number_input("continuous illumination of one site (s)", min_value=0.001, max_value=30000.0, step=10.0,
-
-                    persist_state="session", key="w_illumination_s", help="Sets the skin exposure limit (longer illumination, lower limit).")
+                    persist_state="session", key="w_illumination_s",
+                    help="For a source left on between frames, and for the design search at the skin limit. The "
+                         "depth and channels views judge one session's exposures, source off between frames.")
     mpe, mpe_notes = None, []
     try:
         mpe, mpe_notes = skin_mpe(float(st.session_state["w_excitation_nm"]), float(st.session_state["w_illumination_s"]))
@@ -150,7 +151,7 @@ def setup_sidebar() -> dict:
         sb.error(f"skin limit: {exc}")
     if mpe is not None:
         share = 100.0 * float(st.session_state["w_irradiance"]) / mpe
-        sb.metric("skin MPE at this wavelength and time", f"{fmt(mpe)} mW/cm²")
+        sb.metric("skin MPE for this long, continuous light", f"{fmt(mpe)} mW/cm²")
         if share <= 100:
             sb.caption(f"The irradiance is {share:.1f} % of the skin MPE (written for human skin; the laser safety "
                        "officer decides).")

@@ -6,7 +6,7 @@ import math
 
 import streamlit as st
 from app.page_common import captured_warnings, fmt, guard, show_notes
-from app.page_model import Setup, build_probes, channel_results, channels_png, depth_png, depth_profiles
+from app.page_model import Setup, build_probes, channel_results, channels_png, depth_png, depth_profiles, skin_exposure
 
 __all__ = ["depth_page", "channels_page", "depth_view", "channels_view", "irradiance_check"]
 
@@ -52,12 +52,32 @@ def channels_page() -> None:
 
 
 def irradiance_check(setup: Setup, mpe: float | None) -> None:
-    """A clear error above the plots when the irradiance exceeds the skin MPE."""
-    if mpe is not None and setup.irradiance_mw_per_cm2 > mpe:
+    """The skin check of one session (the library's one rule), and a clear error above the plots when it fails.
+
+    ``mpe`` is the sidebar's limit for a site lit continuously (a source left on): exceeding it is
+    shown as a warning beside the session check.
+    """
+    try:
+        skin, _ = skin_exposure(setup)
+    except ValueError:
+        return
+    share = skin["share_of_mpe"]
+    if share > skin["allowed_fraction"]:
         st.error(
-            f"The irradiance {setup.irradiance_mw_per_cm2:g} mW/cm² is ABOVE the skin maximum permissible exposure "
-            f"{fmt(mpe)} mW/cm² at {setup.excitation_nm:g} nm for {st.session_state['w_illumination_s']:g} s of "
-            "illumination. Lower the irradiance or shorten the illumination; the laser safety officer decides.",
+            f"One session ({skin['on_time_s']:g} s of light on one site, {skin['governing_rule']} rule) uses "
+            f"{fmt(100 * share)} % of the skin maximum permissible exposure: ABOVE the allowed "
+            f"{fmt(100 * skin['allowed_fraction'])} %. Lower the irradiance or shorten the exposures; the laser "
+            "safety officer decides.",
+            icon="⚠️",
+        )
+    else:
+        st.caption(f"Skin: one session ({skin['on_time_s']:g} s of light on one site, source off between frames) "
+                   f"uses {fmt(100 * share)} % of the skin MPE ({skin['governing_rule']} rule).")
+    if mpe is not None and setup.irradiance_mw_per_cm2 > mpe:
+        st.warning(
+            f"If the source stays on, {setup.irradiance_mw_per_cm2:g} mW/cm² is above the skin MPE "
+            f"{fmt(mpe)} mW/cm² for {st.session_state['w_illumination_s']:g} s of continuous light: shutter the "
+            "source between frames.",
             icon="⚠️",
         )
 

@@ -18,7 +18,6 @@ from pathlib import Path
 
 import numpy as np
 
-import probeplan
 from probeplan.errors import AssumptionWarning, input_error
 from probeplan.io.atomic import make_output_folder, output_batch, readable_path
 
@@ -57,11 +56,12 @@ class DemoResult:
 
 
 def demo_folder() -> Path:
-    """The ``demo_tissue`` folder next to the package (present in a source checkout)."""
-    folder = Path(probeplan.__file__).resolve().parents[1] / "demo_tissue"
+    """The ``demo_tissue`` folder: inside the installed package, or beside it in a source checkout."""
+    from probeplan.io.shipped import shipped_folder
+
+    folder = shipped_folder("demo_tissue")
     if not (folder / "plan.toml").is_file():
-        raise input_error("demo_tissue", f"not found at {folder}",
-                          "run probeplan from a source checkout installed with 'pip install -e .'")
+        raise input_error("demo_tissue", f"no plan.toml in {folder}", "reinstall probeplan (pip install probeplan)")
     return folder
 
 

@@ -21,7 +21,6 @@ import pytest
 pytest.importorskip("streamlit")
 from streamlit.testing.v1 import AppTest  # noqa: E402
 
-import probeplan  # noqa: E402
 from probeplan import RESEARCH_USE_CAUTION  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -113,10 +112,21 @@ def test_sbr_threshold_moves_the_lost_depth():
 
 
 def test_irradiance_above_the_skin_limit_is_flagged_above_the_plots():
+    # one session of the default set-up: two 0.05 s exposures on one site (the library's one rule);
+    # 10 W/cm^2 breaks the N^-1/4 rule for repeated short exposures (ANSI Z136.1 / IEC 60825-1)
+    at = _app()
+    at.sidebar.number_input(key="w_irradiance").set_value(10000.0).run()
+    _clean(at)
+    assert any("of the skin maximum permissible exposure: ABOVE the allowed" in e for e in _errors(at))
+
+
+def test_a_source_left_on_is_warned_beside_the_session_check():
+    # 500 mW/cm^2 passes one shuttered session but not 600 s of continuous light (0.2 W/cm^2 at 650 nm)
     at = _app()
     at.sidebar.number_input(key="w_irradiance").set_value(500.0).run()
     _clean(at)
-    assert any("ABOVE the skin maximum permissible exposure" in e for e in _errors(at))
+    assert not any("ABOVE the allowed" in e for e in _errors(at))
+    assert any("If the source stays on" in w.value for w in at.warning)
 
 
 def test_bad_filter_text_is_one_error_line():
@@ -544,14 +554,16 @@ def test_app_command_without_the_page(monkeypatch, tmp_path, capsys):
     from probeplan.cli.main import main
     from probeplan.cli.commands import app as app_cmd
 
-    fake = tmp_path / "site-packages" / "probeplan" / "__init__.py"
-    fake.parent.mkdir(parents=True)
-    fake.write_text("")
-    monkeypatch.setattr(probeplan, "__file__", str(fake))
+    from probeplan.io import shipped
+
+    # an installation whose page folder is there but empty (damaged): refused, nothing started
+    empty = tmp_path / "site-packages" / "probeplan" / "app"
+    empty.mkdir(parents=True)
+    monkeypatch.setattr(shipped, "shipped_folder", lambda name: empty)
     monkeypatch.setattr(app_cmd, "_launch", lambda cmd: pytest.fail("must not start"))
     assert main(["app"]) == 2
     err = capsys.readouterr().err
-    assert "is missing" in err and "pip install -e" in err
+    assert "is missing" in err and "reinstall probeplan" in err
 
 
 

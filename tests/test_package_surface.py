@@ -1,4 +1,4 @@
-"""The stable interfaces exist, every module declares its public names, and they resolve."""
+"""The stable top-level interface exists, every module declares its public names, and they resolve."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""Reference spectra from CSV (the documented format), from control stacks, and from a matrix."""
+"""Reference spectra from CSV (the documented format: a channel column, then one column per component), from control stacks, and from a matrix."""
 
 import numpy as np
 import pytest

@@ -1,6 +1,6 @@
 """Tests of probeplan.model.transport against published values, independent numerics and iadpython.
 
-Sources are named beside each check.  "docs/sources.md" values are the project's
+Sources are named beside each check.  The values in docs/sources.md are the project's
 collected check values (Haskell et al. 1994; Groenhuis et al. 1983; Farrell et al. 1992).
 """
 

@@ -15,7 +15,6 @@ import argparse
 import contextlib
 import math
 import sys
-import warnings
 from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -153,16 +152,10 @@ def add_output_options(parser: argparse.ArgumentParser) -> None:
 
 
 def format_value(value: Any) -> str:
-    """A short human-readable rendering of one table cell."""
-    if isinstance(value, bool):
-        return "yes" if value else "no"
-    if isinstance(value, float):
-        if math.isnan(value):
-            return "-"
-        if value != 0 and (abs(value) >= 1e5 or abs(value) < 1e-3):
-            return f"{value:.3e}"
-        return f"{value:.4g}"
-    return str(value)
+    """One table cell as text: the package's one formatter (:func:`probeplan.format.format_value`)."""
+    from probeplan.format import format_value as _format
+
+    return _format(value)
 
 
 def print_json(obj: Any) -> None:
@@ -195,13 +188,9 @@ def model_notes() -> Iterator[list[str]]:
 
     The list is filled when the block ends.
     """
-    from probeplan.errors import ProbeplanWarning
+    from probeplan.notes import collect_notes
 
     notes: list[str] = []
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", ProbeplanWarning)
+    with collect_notes() as collected:
         yield notes
-    notes += sorted({str(w.message) for w in caught if issubclass(w.category, ProbeplanWarning)})
-    for w in caught:
-        if not issubclass(w.category, ProbeplanWarning):
-            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    notes += sorted(collected)

@@ -241,6 +241,29 @@ class ChannelReport:
         """Whether the set can be unmixed at each depth (condition number below the limit)."""
         return self.condition_number < SEPARABLE_CONDITION_LIMIT
 
+    def to_frame(self):
+        """The report as a long :class:`pandas.DataFrame`: one row per depth, channel and probe.
+
+        Columns ``depth_mm, channel, probe, response_e_per_s_per_uM, crosstalk, background_e_per_s,
+        condition_number, noise_amplification, unmixed_snr`` (the last three per depth and probe).
+        """
+        import pandas as pd
+
+        rows = []
+        for d, depth in enumerate(self.depth_mm):
+            for c, channel in enumerate(self.channel_names):
+                for k, probe in enumerate(self.probe_names):
+                    rows.append({
+                        "depth_mm": float(depth), "channel": channel, "probe": probe,
+                        "response_e_per_s_per_uM": float(self.response_e_per_s_per_uM[d, c, k]),
+                        "crosstalk": float(self.crosstalk[d, c, k]),
+                        "background_e_per_s": float(self.background_e_per_s[c]),
+                        "condition_number": float(self.condition_number[d]),
+                        "noise_amplification": float(self.noise_amplification[d, k]),
+                        "unmixed_snr": float(self.unmixed_snr[d, k]),
+                    })
+        return pd.DataFrame.from_records(rows)
+
     def as_dict(self) -> dict[str, Any]:
         """JSON-ready summary."""
         return {

@@ -41,6 +41,11 @@ import numpy as np
 from scipy.special import ndtr
 
 from probeplan.errors import AssumptionWarning, ModelValidityWarning, did_you_mean, input_error
+from probeplan.units import G_PER_KG, MEV_PER_EV, UL_PER_ML, UM_PER_M  # noqa: F401
+
+#: h c in eV nm as the sizing curves and the shipped demo data use it (CODATA 2018 rounded to 1e-6;
+#: probeplan.units.HC_EV_NM is the unrounded scipy.constants value, 2.7e-10 apart).
+HC_EV_NM = 1239.841984
 from probeplan.model.spectra import Spectrum, as_wavelengths_nm
 
 __all__ = [
@@ -64,16 +69,6 @@ __all__ = [
     "molar_extinction_at",
 ]
 
-#: Planck constant times speed of light, eV nm (CODATA 2018: 1239.841984 eV nm).
-HC_EV_NM = 1239.841984
-#: meV per eV.
-MEV_PER_EV = 1000.0
-#: uM per M (also M^-1 per uM^-1).
-UM_PER_M = 1.0e6
-#: g per kg.
-G_PER_KG = 1000.0
-#: uL per mL.
-UL_PER_ML = 1000.0
 #: Wavelength (nm) of the lead-chalcogenide high-energy extinction reference.
 LEAD_REFERENCE_WAVELENGTH_NM = 400.0
 #: Excitation closer than this to the first exciton (eV) is warned: the exciton peak shape matters there.

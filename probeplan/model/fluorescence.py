@@ -75,6 +75,7 @@ import numpy as np
 from probeplan.model import transport
 from probeplan.errors import ProbeAbsorptionWarning, input_error, positive_number
 from probeplan.model.layers import LayeredTissue, layered_coefficients_and_factor
+from probeplan.units import LIGHT_SPEED_M_PER_S, M_PER_NM, M_PER_UM, MM_PER_CM, PLANCK_J_S, W_PER_MW  # noqa: F401
 from probeplan.model.tissue import Tissue, as_tissue
 
 __all__ = [
@@ -100,16 +101,8 @@ __all__ = [
 #: study's own value).
 DEFAULT_CONCENTRATION_UM = 0.01
 
-#: Millimetres per centimetre.
-MM_PER_CM = 10.0
-#: Planck constant (J s) and speed of light (m/s), CODATA exact values.
-PLANCK_J_S = 6.62607015e-34
-LIGHT_SPEED_M_PER_S = 299792458.0
-#: Metres per nanometre; watts per milliwatt; litres per cubic centimetre; molar per micromolar.
-M_PER_NM = 1e-9
-W_PER_MW = 1e-3
+#: Litres per cubic centimetre.
 L_PER_CM3 = 1e-3
-M_PER_UM = 1e-6
 #: Cubic millimetres per cubic centimetre.
 MM3_PER_CM3 = 1000.0
 #: Wavelength step (nm) at which the tissue transport of the target's light is evaluated before
@@ -483,6 +476,16 @@ class DepthProfile:
                 self.escaped_peak_nm, self._shift(), self.diffusion_valid, strict=True,
             )
         ]
+
+    def to_frame(self):
+        """The profile as a :class:`pandas.DataFrame`, one row per depth; units in the column names.
+
+        The columns of :meth:`rows` (``depth_mm``, ``signal_e``, ``background_e``, ``sbr``, ``contrast``,
+        ``snr``, ``blur_fwhm_mm``, ``escaped_peak_nm``, ``spectral_shift_nm``, ``diffusion_valid``).
+        """
+        import pandas as pd
+
+        return pd.DataFrame.from_records(self.rows())
 
     def _shift(self) -> np.ndarray:
         return self.spectral_shift_nm if self.spectral_shift_nm.size == self.depth_mm.size else np.full(

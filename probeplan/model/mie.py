@@ -44,6 +44,7 @@ import numpy as np
 from scipy.special import spherical_jn, spherical_yn
 
 from probeplan.errors import ModelValidityWarning, input_error, positive_number
+from probeplan.units import NM_PER_UM, UM_PER_CM  # noqa: F401
 
 __all__ = [
     "mie_efficiencies",
@@ -54,9 +55,6 @@ __all__ = [
     "DEPENDENT_SCATTERING_FRACTION",
 ]
 
-#: Micrometres per centimetre; nanometres per micrometre.
-UM_PER_CM = 1e4
-NM_PER_UM = 1e3
 #: Volume fraction above which independent scattering overestimates μs′ (common practice).
 DEPENDENT_SCATTERING_FRACTION = 0.1
 

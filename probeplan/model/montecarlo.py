@@ -45,6 +45,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from probeplan.errors import input_error
+from probeplan.units import MM_PER_CM  # noqa: F401
 
 __all__ = [
     "MM_PER_CM",
@@ -58,8 +59,6 @@ __all__ = [
     "simulate_point_source",
 ]
 
-#: Millimetres per centimetre (coefficients cm⁻¹ → mm⁻¹ inside the simulation).
-MM_PER_CM = 10.0
 #: The available engines (``engine=``).
 ENGINES: tuple[str, ...] = ("numpy", "numba", "python")
 #: Number of batches used for the standard errors (fewer if there are fewer packets).

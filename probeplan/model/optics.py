@@ -39,6 +39,7 @@ import numpy as np
 from scipy.special import expit
 
 from probeplan.errors import did_you_mean, input_error
+from probeplan.units import UM_PER_MM  # noqa: F401
 from probeplan.model.spectra import Spectrum, as_wavelengths_nm
 
 __all__ = [
@@ -76,8 +77,6 @@ _LOGISTIC_10_90 = 2.0 * math.log(9.0)
 _FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * math.log(2.0))
 #: Typical linewidth (nm, FWHM) of a multimode diode laser (typical assumption).
 TYPICAL_LASER_LINEWIDTH_NM = 1.0
-#: um per mm.
-UM_PER_MM = 1000.0
 #: Transmission columns whose largest value is at most this, but above 1, may be optical density.
 _OD_SUSPECT_MAX = 12.0
 

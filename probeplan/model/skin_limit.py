@@ -20,6 +20,7 @@ import warnings
 import numpy as np
 
 from probeplan.errors import AssumptionWarning, input_error
+from probeplan.units import MW_PER_W  # noqa: F401
 
 __all__ = [
     "MPE_MIN_WAVELENGTH_NM",
@@ -34,7 +35,6 @@ __all__ = [
     "max_exposure_time_s",
 ]
 
-MW_PER_W = 1000.0
 
 # -- validity of the skin MPE -------------------------------------------------
 #: Shortest wavelength (nm) covered: below it the ultraviolet limits apply, which probeplan does not implement.

@@ -43,6 +43,7 @@ import warnings
 import numpy as np
 
 from probeplan.errors import ModelValidityWarning, input_error
+from probeplan.units import MM_PER_CM  # noqa: F401
 
 __all__ = [
     "MM_PER_CM",
@@ -68,8 +69,6 @@ __all__ = [
     "resolve_model",
 ]
 
-#: Millimetres per centimetre: user-facing distances are mm, coefficients cm⁻¹.
-MM_PER_CM = 10.0
 #: Square millimetres per square centimetre (per-cm² densities → per-mm²).
 MM2_PER_CM2 = MM_PER_CM**2
 #: Depths shallower than this many transport mean free paths are flagged invalid.

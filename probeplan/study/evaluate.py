@@ -58,9 +58,11 @@ from typing import Any
 import numpy as np
 
 from probeplan.catalog.setup import ImagingSetup, build_setup
-from probeplan.errors import AssumptionWarning, InputError, ProbeplanWarning, input_error
+from probeplan.errors import AssumptionWarning, InputError, input_error
+from probeplan.units import G_PER_KG, S_PER_MIN, UL_PER_ML  # noqa: F401
 from probeplan.io.tomlsource import format_path, line_of
 from probeplan.io.tables import Table
+from probeplan.notes import collect_notes
 from probeplan.study.plan import Plan
 from probeplan.study.rules import RuleCheck, Rules, check_value, default_rules
 
@@ -78,10 +80,6 @@ __all__ = [
     "G_PER_KG",
 ]
 
-#: Seconds per minute; microlitres per millilitre; grams per kilogram.
-S_PER_MIN = 60.0
-UL_PER_ML = 1000.0
-G_PER_KG = 1000.0
 #: Depth step (mm) of the predicted profiles, and how far beyond the target they reach.
 _DEPTH_STEP_MM = 0.25
 _DEPTH_BEYOND_TARGET_MM = 3.0
@@ -370,8 +368,7 @@ def evaluate_plan(plan: Plan, rules: Rules | None = None) -> Evaluation:
     if not isinstance(rules, Rules):
         raise TypeError(f"rules: expected Rules, got {type(rules).__name__}")
     assumptions: list[str] = []
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", ProbeplanWarning)
+    with collect_notes(assumptions, with_category=True):
         model = plan_model(plan, rules)
         checks: list[RuleCheck] = []
         tables: list[EvaluationTable] = []
@@ -388,11 +385,6 @@ def evaluate_plan(plan: Plan, rules: Rules | None = None) -> Evaluation:
         checks += animal_checks
         tables += predictions["tables"] + animal_tables
         notes += animal_notes
-    for w in caught:
-        if issubclass(w.category, ProbeplanWarning):
-            assumptions.append(str(w.message))
-        else:
-            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     assumptions = list(dict.fromkeys([*SCHEDULE_NOTES, *notes, *predictions["notes"], *assumptions]))
     heavy = sorted({p.heavy_metal for p in model.probes if p.heavy_metal})
     return Evaluation(plan, rules, checks, tables, assumptions, [*problems, *predictions["warnings"]], heavy, model,

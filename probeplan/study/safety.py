@@ -19,6 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from probeplan.errors import did_you_mean, input_error
+from probeplan.units import G_PER_KG, MM_PER_CM, MW_PER_W, PERCENT  # noqa: F401
 from probeplan.model.skin_limit import (  # re-exported: the skin table lives with the model
     _TIME_EXPONENT,
     LIMITING_APERTURE_MM,
@@ -62,11 +63,6 @@ __all__ = [
     "max_blood_sample_ml",
 ]
 
-# -- named unit conversions -------------------------------------------------
-MM_PER_CM = 10.0
-MW_PER_W = 1000.0
-G_PER_KG = 1000.0
-PERCENT = 100.0
 
 #: Species with published injection and blood tables.
 SPECIES: tuple[str, ...] = ("mouse", "rat")

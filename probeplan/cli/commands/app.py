@@ -31,17 +31,14 @@ def app_script():
     Raises
     ------
     InputError
-        When the page is not there (e.g. an installation that is not editable).
+        When the page is not there (a damaged installation).
     """
-    from pathlib import Path
-
-    import probeplan
     from probeplan.errors import input_error
+    from probeplan.io.shipped import shipped_folder
 
-    path = Path(probeplan.__file__).resolve().parents[1] / "app" / "main.py"
+    path = shipped_folder("app") / "main.py"
     if not path.is_file():
-        raise input_error("probeplan app", f"the page {path} is missing",
-                          "install probeplan from a source checkout with 'pip install -e .' (the page lives in app/)")
+        raise input_error("probeplan app", f"the page {path} is missing", "reinstall probeplan (pip install probeplan)")
     return path
 
 
