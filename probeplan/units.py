@@ -18,13 +18,14 @@ from __future__ import annotations
 from scipy import constants as _c
 
 __all__ = [
-    "MM_PER_CM", "UM_PER_MM", "UM_PER_CM", "NM_PER_UM", "M_PER_NM", "M_PER_UM", "UM_PER_M",
+    "MM_PER_CM", "CM_PER_M", "UM_PER_MM", "UM_PER_CM", "NM_PER_UM", "M_PER_NM", "M_PER_UM", "UM_PER_M",
     "MW_PER_W", "W_PER_MW", "MEV_PER_EV", "G_PER_KG", "MG_PER_G", "UL_PER_ML", "S_PER_MIN", "PERCENT",
     "PLANCK_J_S", "LIGHT_SPEED_M_PER_S", "HC_EV_NM",
 ]
 
 # lengths
 MM_PER_CM = 10.0
+CM_PER_M = 100.0
 UM_PER_MM = 1000.0
 UM_PER_CM = 1.0e4
 NM_PER_UM = 1000.0

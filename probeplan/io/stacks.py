@@ -23,7 +23,6 @@ import math
 import os
 import xml.etree.ElementTree as ET
 from collections.abc import Iterator, Sequence
-from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np

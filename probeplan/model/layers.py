@@ -42,12 +42,11 @@ from dataclasses import dataclass
 import numpy as np
 
 from probeplan.errors import input_error
+from probeplan.units import MM_PER_CM
 
 __all__ = ["Layer", "LayeredTissue", "effective_coefficients", "planar_escape_diffusion",
            "layered_coefficients_and_factor", "MAX_LAYERS"]
 
-#: Millimetres per centimetre (depths in mm, coefficients in cm⁻¹).
-MM_PER_CM = 10.0
 #: Layers above the target's tissue that a stack may hold.
 MAX_LAYERS = 4
 

@@ -50,6 +50,7 @@ import numpy as np
 
 from probeplan.errors import ScatteringRangeWarning, did_you_mean, input_error
 from probeplan.model.spectra import Spectrum, as_wavelengths_nm
+from probeplan.units import CM_PER_M, MM_PER_CM
 
 __all__ = [
     "Tissue",
@@ -84,10 +85,6 @@ _HB_TABLE_END_NM = 1000.0
 #: Water volume fraction of whole blood, added to haemoglobin below 1000 nm (about 80 %: common
 #: practice, plasma is about 92 % water and red cells about 65-70 %; from memory, not a measured table).
 BLOOD_WATER_FRACTION = 0.80
-#: Millimetres per centimetre (the whole-blood table is published in mm^-1).
-_MM_PER_CM = 10.0
-#: Centimetres per metre (the fat table is published in 1/m).
-_CM_PER_M = 100.0
 #: Range over which the melanosome formula is used (nm).
 _MELANOSOME_RANGE_NM = (350.0, 1300.0)
 
@@ -146,11 +143,11 @@ def _chromophore_spectra() -> dict[str, Spectrum]:
     b_cols, blood, b_prov = _read_tsv("blood_absorption.tsv")
     f_cols, fat, f_prov = _read_tsv("fat_absorption.tsv")
     return {
-        "blood_oxy": Spectrum(blood[:, 0], blood[:, b_cols.index("mu_a_oxy_per_mm")] * _MM_PER_CM,
+        "blood_oxy": Spectrum(blood[:, 0], blood[:, b_cols.index("mu_a_oxy_per_mm")] * MM_PER_CM,
                               "whole blood, oxygenated", "cm^-1", "material", b_prov),
-        "blood_deoxy": Spectrum(blood[:, 0], blood[:, b_cols.index("mu_a_deoxy_per_mm")] * _MM_PER_CM,
+        "blood_deoxy": Spectrum(blood[:, 0], blood[:, b_cols.index("mu_a_deoxy_per_mm")] * MM_PER_CM,
                                 "whole blood, deoxygenated", "cm^-1", "material", b_prov),
-        "fat": Spectrum(fat[:, 0], fat[:, f_cols.index("mu_a_per_m")] / _CM_PER_M, "fat", "cm^-1", "material", f_prov),
+        "fat": Spectrum(fat[:, 0], fat[:, f_cols.index("mu_a_per_m")] / CM_PER_M, "fat", "cm^-1", "material", f_prov),
         "HbO2": Spectrum(hb[:, 0], hb[:, hb_cols.index("HbO2")], "HbO2", "cm^-1 M^-1", "material", hb_prov),
         "Hb": Spectrum(hb[:, 0], hb[:, hb_cols.index("Hb")], "Hb", "cm^-1 M^-1", "material", hb_prov),
         "water": Spectrum(water[:, 0], water[:, 1], "water", "cm^-1", "material", w_prov),

@@ -368,7 +368,7 @@ def evaluate_plan(plan: Plan, rules: Rules | None = None) -> Evaluation:
     if not isinstance(rules, Rules):
         raise TypeError(f"rules: expected Rules, got {type(rules).__name__}")
     assumptions: list[str] = []
-    with collect_notes(assumptions, with_category=True):
+    with collect_notes(assumptions):
         model = plan_model(plan, rules)
         checks: list[RuleCheck] = []
         tables: list[EvaluationTable] = []
