@@ -424,5 +424,5 @@ def _flat_qc(qc: dict) -> dict:
 def _prepare(out_dir: Path) -> Path:
     out_dir = Path(out_dir)
     if out_dir.exists() and not out_dir.is_dir():
-        raise input_error("--out", f"{str(out_dir)!r} is a file", "give a folder path")
+        raise input_error("out", f"{str(out_dir)!r} is a file", "give a folder path")
     return make_output_folder(out_dir)

@@ -47,7 +47,7 @@ def test_plain_tiff_channel_axis_rules(tmp_path):
     with open_stack(tmp_path / "p3.tif") as r:
         assert r.info.channel_axis == 0 and r.info.channel_axis_source == "channel-first convention"
     tifffile.imwrite(tmp_path / "p4.tif", np.zeros((2, 5, 4, 3), np.uint16), photometric="minisblack")
-    with pytest.raises(InputError, match="channel-axis"):
+    with pytest.raises(InputError, match="channel_axis"):
         open_stack(tmp_path / "p4.tif")
     with open_stack(tmp_path / "p4.tif", channel_axis=1) as r:
         assert r.info.n_channels == 5 and r.info.channel_axis_source == "argument"

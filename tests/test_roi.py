@@ -10,7 +10,7 @@ from probeplan.unmixing.roi import RoiAccumulator, parse_rectangle, roi_statisti
 def test_rectangle_parsing():
     assert parse_rectangle(" tumour : 1, 2, 3, 4 ").rect == (1, 2, 3, 4)
     for bad in ("tumour", "t:1,2,3", "t:3,0,1,5", "t:-1,0,2,2"):
-        with pytest.raises(InputError, match="--roi"):
+        with pytest.raises(InputError, match="^roi: "):
             parse_rectangle(bad)
     with pytest.raises(InputError, match="past the image"):
         parse_rectangle("t:0,0,10,10", shape=(5, 5))
@@ -96,7 +96,7 @@ def test_bad_roi_specs_and_files(tmp_path):
     from probeplan.unmixing.roi import parse_roi, read_roi_file
 
     for spec in ("x:ellipse:1,2,3", "x:ellipse:1,2,0,3", "x:polygon:1,2,3,4", "x:polygon:a,b,c,d,e,f"):
-        with pytest.raises(InputError, match="--roi"):
+        with pytest.raises(InputError, match="^roi: "):
             parse_roi(spec)
     with pytest.raises(InputError, match="covers no pixel"):
         parse_roi("x:ellipse:500,500,3,3", shape=(20, 20))

@@ -201,11 +201,15 @@ def as_flags(exc: InputError, flags: frozenset[str] = frozenset()) -> str:
     key = getattr(exc, "key", None)
     if key:
         flag = FLAGS.get(str(key[0]))
-        return f"{flag}: {exc.detail}" if flag in flags else text  # type: ignore[attr-defined]
-    match = re.match(r"^([A-Za-z_][A-Za-z0-9_]*): ", text)
-    if match and FLAGS.get(match.group(1)) in flags:
-        return FLAGS[match.group(1)] + text[len(match.group(1)):]
-    return text
+        if flag in flags:
+            text = f"{flag}: {exc.detail}"  # type: ignore[attr-defined]
+    else:
+        match = re.match(r"^([A-Za-z_][A-Za-z0-9_]*): ", text)
+        if match and FLAGS.get(match.group(1)) in flags:
+            text = FLAGS[match.group(1)] + text[len(match.group(1)):]
+    # a fix that says "give channel_axis=2" becomes "give --channel-axis 2"
+    return re.sub(r"\b([a-z_]+)=(\S+)",
+                  lambda m: f"{FLAGS[m.group(1)]} {m.group(2)}" if FLAGS.get(m.group(1)) in flags else m.group(0), text)
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -242,7 +246,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         with _quiet_third_party(debug):
             check_option_ranges(args, _subparser(parser, args.command))
-            with output_policy(overwrite=bool(getattr(args, "overwrite", False))), output_batch():
+            with output_policy(overwrite=bool(getattr(args, "overwrite", False)), option="--overwrite"), output_batch():
                 code = int(args._run(args))
         for message in dict.fromkeys(r.getMessage() for r in held.records):
             sys.stderr.write(f"{prefix}: tifffile: {message}\n")

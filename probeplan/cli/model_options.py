@@ -44,6 +44,13 @@ FLAGS = {
     "out": "--out",
     "out_dir": "--out",
     "scheduler": "--scheduler",
+    "auto_rois": "--auto-roi",
+    "roi_file": "--rois",
+    "dark_path": "--dark",
+    "flat_path": "--flat",
+    "labels_path": "--roi",
+    "overwrite": "--overwrite",
+    "channel_axis": "--channel-axis",
 }
 
 

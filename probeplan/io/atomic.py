@@ -127,7 +127,7 @@ class OutputPolicy:
     overwrite: bool = False
     replaceable: set[Path] = field(default_factory=set)
     written: set[Path] = field(default_factory=set)
-    option: str = "--overwrite"
+    option: str = "overwrite=True"
 
     def may_replace(self, target: Path) -> bool:
         key = _key(target)
@@ -157,7 +157,7 @@ def _key(path: str | Path) -> Path:
 
 @contextlib.contextmanager
 def output_policy(*, overwrite: bool = False, replaceable: Iterable[str | Path] = (),
-                  option: str = "--overwrite") -> Iterator[OutputPolicy]:
+                  option: str = "overwrite=True") -> Iterator[OutputPolicy]:
     """Refuse, inside the block, to replace any existing file this run did not write.
 
     Without an active policy (plain library use) the ``write_*`` helpers replace existing
@@ -356,13 +356,13 @@ def _move_into_place(staged: Path, target: Path, *, may_replace: bool) -> None:
             os.link(staged, target)  # fails if the target appeared meanwhile: never replaced silently
         except FileExistsError:
             raise input_error(str(target), "appeared while this run was writing (another run?)",
-                              "choose another output path, or give --overwrite") from None
+                              "choose another output path, or allow overwriting") from None
         except OSError as exc:
             if exc.errno not in (errno.EPERM, errno.ENOTSUP, errno.EOPNOTSUPP, errno.EXDEV, errno.EMLINK):
                 raise
             if target.exists():  # a file system without hard links: check, then rename
                 raise input_error(str(target), "appeared while this run was writing (another run?)",
-                                  "choose another output path, or give --overwrite") from None
+                                  "choose another output path, or allow overwriting") from None
             os.replace(staged, target)
             return
         staged.unlink()
@@ -459,7 +459,7 @@ def atomic_path(target: str | Path, *, suffix: str | None = None) -> Iterator[Pa
     folder = target.parent if str(target.parent) else Path(".")
     batch = _BATCH.get()
     if not folder.is_dir():
-        raise input_error(str(target), f"folder {str(folder)!r} does not exist", "create it first or choose another --out")
+        raise input_error(str(target), f"folder {str(folder)!r} does not exist", "create it first or choose another output folder")
     policy = _POLICY.get()
     if policy is not None:
         policy.check(target)
@@ -574,7 +574,7 @@ def write_csv_atomic(
     return write_text_atomic(target, table_to_csv_text(rows, columns))
 
 
-def refuse_input_paths(outputs: Iterable[str | Path], inputs: Iterable[str | Path], *, option: str = "--out") -> None:
+def refuse_input_paths(outputs: Iterable[str | Path], inputs: Iterable[str | Path], *, option: str = "out") -> None:
     """Raise if any output path is one of the inputs (compared after resolving links).
 
     Raises

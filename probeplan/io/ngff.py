@@ -80,7 +80,7 @@ def inspect_ome_zarr(path, channel_axis: int | None = None):
         source = "file"
         if channel_axis is not None and channel_axis % len(shape) != c_axis:
             raise input_error("channel_axis", f"{channel_axis} contradicts {where}, whose axes put channels on axis "
-                              f"{c_axis}", "omit --channel-axis for files that name their axes")
+                              f"{c_axis}", "give no channel_axis for files that name their axes")
     else:
         raise input_error(where, f"axes {names} have no channel axis", "give an image with a 'c' (channel) axis")
     if "y" not in names or "x" not in names:

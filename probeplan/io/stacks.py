@@ -183,7 +183,7 @@ def _inspect(path: Path, channel_axis: int | None, *, allow_plane: bool = False)
         if channel_axis is not None and channel_axis != file_axis:
             raise input_error(
                 "channel_axis", f"{channel_axis} contradicts {where}, whose axes {axes!r} put channels on axis {file_axis}",
-                "omit --channel-axis for files that name their axes",
+                "give no channel_axis for files that name their axes",
             )
         c_axis, source = file_axis, "file"
     elif channel_axis is not None:
@@ -192,7 +192,7 @@ def _inspect(path: Path, channel_axis: int | None, *, allow_plane: bool = False)
         c_axis, source = 0, "channel-first convention"
     else:
         raise input_error(
-            where, f"axes {axes!r} do not say which axis holds the channels", "pass --channel-axis N (channel_axis=N)"
+            where, f"axes {axes!r} do not say which axis holds the channels", "give channel_axis=N"
         )
     if source == "argument":
         # The file does not name its axes (tifffile reports e.g. 'QYX' for any 3-D array): the two

@@ -180,7 +180,7 @@ def write_report(report: Report, out_dir: str | Path) -> dict[str, Path]:
     """
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
-        raise input_error("--out", f"{str(out)!r} is a file", "give a folder for the report")
+        raise input_error("out", f"{str(out)!r} is a file", "give a folder for the report")
     with output_batch():  # every file of the report appears together, or none does
         make_output_folder(out)
         return _write_report_files(report, out)

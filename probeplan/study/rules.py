@@ -316,7 +316,7 @@ def load_rules(path: str | Path | None = None) -> Rules:
     if not any(line.strip() and not line.lstrip().startswith("#") for line in text.splitlines()):
         # an empty copy must not pass silently for the institution's rules
         raise input_error(str(path), "holds no rules (empty or only comments)",
-                          "write the institution's limits in it (see demo_tissue/rules.toml), or omit --rules")
+                          "write the institution's limits in it (see demo_tissue/rules.toml), or use the default rules")
     return parse_rules_text(text, filename=str(path))
 
 

@@ -222,7 +222,7 @@ def _rois(settings: StudySettings, shape_yx):
         file_rois, file_labels = read_roi_file(settings.roi_file)
         if file_labels is not None:
             if labels is not None:
-                raise input_error(str(settings.roi_file), "uses a label image and another was given with --roi",
+                raise input_error(str(settings.roi_file), "uses a label image and another label image was given",
                                   "give one label image")
             if file_labels.shape != tuple(shape_yx):
                 raise input_error(str(settings.roi_file), f"its label image is {file_labels.shape}, images are "
@@ -233,11 +233,11 @@ def _rois(settings: StudySettings, shape_yx):
         out.append(parse_roi(spec, shape=tuple(shape_yx)))
     names = [r.name for r in out] + [a.split("=", 1)[0].strip() for a in settings.auto_rois]
     if not names:
-        raise input_error("--roi", "no region of interest given", "give --roi 'name:x0,y0,x1,y1' (and one named "
-                          f"{settings.roi_background!r} for the TBR), a label TIFF, --rois FILE or --auto-roi")
+        raise input_error("rois", "no region of interest given", "give an ROI 'name:x0,y0,x1,y1' (and one named "
+                          f"{settings.roi_background!r} for the TBR), a label TIFF, an ROI file or an automatic ROI")
     repeated = sorted({n for n in names if names.count(n) > 1})
     if repeated:
-        raise input_error("--roi", f"ROI name(s) {repeated} given twice", "give each ROI its own name")
+        raise input_error("rois", f"ROI name(s) {repeated} given twice", "give each ROI its own name")
     return out, labels
 
 
@@ -247,9 +247,9 @@ def _auto_specs(settings: StudySettings, comps) -> list[tuple[str, str]]:
         name, sep, comp = a.partition("=")
         name, comp = name.strip(), comp.strip()
         if not sep or not name or not comp:
-            raise input_error("--auto-roi", f"{a!r} is not NAME=COMPONENT", "give e.g. --auto-roi 'tumour=probe A'")
+            raise input_error("auto_rois", f"{a!r} is not NAME=COMPONENT", "give e.g. 'tumour=probe A'")
         if comp not in comps:
-            raise input_error("--auto-roi", f"component {comp!r} is not in the references ({', '.join(comps)})",
+            raise input_error("auto_rois", f"component {comp!r} is not in the references ({', '.join(comps)})",
                               "name a component of the references")
         specs.append((name, comp))
     return specs
@@ -513,7 +513,7 @@ def _check_acquisition(acq: Acquisition, refs, settings: StudySettings):
     elif n != refs.n_channels:
         raise input_error(acq.where, f"{n} channels but the references have {refs.n_channels} rows",
                           "give one reference row per channel (a plain 3-D TIFF is read channels-first; "
-                          "pass --channel-axis 2 for channels last)")
+                          "give channel_axis=2 for channels last)")
     _rois(settings, shapes[0][-2:])
     _auto_specs(settings, list(refs.component_names))
     return shapes[0][-2:]
@@ -587,10 +587,10 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
 
     if settings.method not in METHODS:
         raise input_error("method", f"{settings.method!r} is not known", f"choose one of {', '.join(METHODS)}")
-    for what, p in (("--dark", settings.dark_path), ("--flat", settings.flat_path), ("--roi", settings.labels_path),
-                    ("--rois", settings.roi_file)):
+    for what, p in (("dark_path", settings.dark_path), ("flat_path", settings.flat_path), ("labels_path", settings.labels_path),
+                    ("roi_file", settings.roi_file)):
         if p is not None and not Path(p).is_file():
-            raise input_error(str(p), "file not found", f"give an existing TIFF to {what}")
+            raise input_error(str(p), "file not found", f"give an existing file as {what}")
     refs = load_references(references, unit=unit)
     unit_text = abundance_unit(refs, unit)
     acqs = read_study_table(study_csv)
@@ -605,7 +605,7 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
         from probeplan.io.atomic import refuse_input_paths
 
         if out.exists() and not out.is_dir():
-            raise input_error("--out", f"{str(out)!r} is a file", "give a folder for the study's outputs")
+            raise input_error("out", f"{str(out)!r} is a file", "give a folder for the study's outputs")
         inputs = [Path(study_csv), *(f for a in acqs for f in a.files)]
         inputs += [p for p in (settings.dark_path, settings.flat_path, settings.labels_path, settings.roi_file)
                    if p is not None]
@@ -613,9 +613,9 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
             inputs.append(Path(references))
         if any(Path(p).resolve().parent == out.resolve() / "acquisitions" for p in inputs) or any(
                 Path(p).resolve() == out.resolve() for p in inputs):
-            raise input_error("--out", f"{str(out)!r} holds input files", "give a separate output folder")
+            raise input_error("out", f"{str(out)!r} holds input files", "give a separate output folder")
         refuse_input_paths([out / n for n in ("measurements.csv", "groups.csv", "kinetics.csv", "report.html")],
-                           inputs, option="--out")
+                           inputs, option="out")
         maps_dir = out / "acquisitions"
         make_output_folder(maps_dir)
         mpath = out / MANIFEST_NAME

@@ -145,7 +145,7 @@ def design_matrix(references, *, n_channels: int | None = None, offset: bool = F
                           "give one reference row per stack channel (check --channel-axis)")
     if offset:
         if OFFSET_NAME in names:
-            raise input_error(where, f"a component is already named {OFFSET_NAME!r}", "rename it or drop --offset")
+            raise input_error(where, f"a component is already named {OFFSET_NAME!r}", "rename it or leave out the offset component")
         M = np.hstack([M, np.ones((M.shape[0], 1))])
         names.append(OFFSET_NAME)
     check_references(M, names, where=where)
@@ -763,7 +763,7 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     src = getattr(references, "source", None)
     if src and Path(str(src)).is_file():
         inputs.append(src)
-    refuse_input_paths(paths.values(), inputs, option="--out")
+    refuse_input_paths(paths.values(), inputs, option="out")
     check_outputs(paths.values())  # an existing output not ours is refused before any work
     sat = default_saturation(info.dtype) if saturation is None else float(saturation)
     params = _Params(M, method, sat, float(gain_e_per_count), float(read_noise_e), float(variance_floor_counts),
@@ -855,12 +855,12 @@ def _run_on_cluster(address, chunks, handle, reader, dark_r, flat_r, params, win
     try:
         from distributed import Client
     except ImportError:  # pragma: no cover - dependency of the package
-        raise input_error("--scheduler", "dask.distributed is not installed", "install dask[distributed]") from None
+        raise input_error("scheduler", "dask.distributed is not installed", "install dask[distributed]") from None
     try:
         client = Client(address, timeout="10s", set_as_default=False)
     except (OSError, TimeoutError, ValueError) as exc:
-        raise input_error("--scheduler", f"cannot connect to {address!r} ({exc})",
-                          "start the cluster first or omit --scheduler") from None
+        raise input_error("scheduler", f"cannot connect to {address!r} ({exc})",
+                          "start the cluster first or run without a scheduler") from None
     try:
         pending = []
         for r0, r1 in chunks:

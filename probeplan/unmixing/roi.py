@@ -100,23 +100,23 @@ def _shaped(spec: str, shape) -> Roi:
     try:
         values = [float(v) for v in rest.split(",")]
     except ValueError:
-        raise input_error("--roi", f"{spec!r}: coordinates are not numbers",
+        raise input_error("roi", f"{spec!r}: coordinates are not numbers",
                           f"give e.g. 'node:{kind}:" + ("40,30,8,6'" if kind == "ellipse" else "10,10,40,12,25,40'")
                           ) from None
     if not all(np.isfinite(values)):
-        raise input_error("--roi", f"{spec!r} has a non-finite coordinate", "give finite pixel coordinates")
+        raise input_error("roi", f"{spec!r} has a non-finite coordinate", "give finite pixel coordinates")
     if kind == "ellipse":
         if len(values) != 4 or values[2] <= 0 or values[3] <= 0:
-            raise input_error("--roi", f"{spec!r} is not 'name:ellipse:cx,cy,rx,ry' with radii > 0",
+            raise input_error("roi", f"{spec!r} is not 'name:ellipse:cx,cy,rx,ry' with radii > 0",
                               "give the centre and the two radii in pixels, e.g. 'node:ellipse:40,30,8,6'")
         roi = Roi(name, ellipse=tuple(values))
     else:
         if len(values) < 6 or len(values) % 2:
-            raise input_error("--roi", f"{spec!r} is not 'name:polygon:x1,y1,x2,y2,x3,y3,...'",
+            raise input_error("roi", f"{spec!r} is not 'name:polygon:x1,y1,x2,y2,x3,y3,...'",
                               "give at least three x,y vertices in pixels")
         roi = Roi(name, polygon=tuple(zip(values[0::2], values[1::2], strict=True)))
     if shape is not None and not roi.mask(shape).any():
-        raise input_error("--roi", f"{spec!r} covers no pixel of the image ({shape[1]} x {shape[0]} pixels)",
+        raise input_error("roi", f"{spec!r} covers no pixel of the image ({shape[1]} x {shape[0]} pixels)",
                           "keep the shape inside the image")
     return roi
 
@@ -147,13 +147,13 @@ def parse_rectangle(spec: str, *, shape: tuple[int, int] | None = None) -> Roi:
     """
     m = _RECT.match(spec)
     if not m:
-        raise input_error("--roi", f"{spec!r} is not 'name:x0,y0,x1,y1'", "give e.g. 'tumour:10,20,60,80'")
+        raise input_error("roi", f"{spec!r} is not 'name:x0,y0,x1,y1'", "give e.g. 'tumour:10,20,60,80'")
     name = m.group(1)
     x0, y0, x1, y1 = (int(g) for g in m.groups()[1:])
     if x0 < 0 or y0 < 0 or x1 <= x0 or y1 <= y0:
-        raise input_error("--roi", f"{spec!r} is empty or negative", "give 0 <= x0 < x1 and 0 <= y0 < y1")
+        raise input_error("roi", f"{spec!r} is empty or negative", "give 0 <= x0 < x1 and 0 <= y0 < y1")
     if shape is not None and (y1 > shape[0] or x1 > shape[1]):
-        raise input_error("--roi", f"{spec!r} extends past the image ({shape[1]} x {shape[0]} pixels)",
+        raise input_error("roi", f"{spec!r} extends past the image ({shape[1]} x {shape[0]} pixels)",
                           "keep the rectangle inside the image")
     return Roi(name, rect=(x0, y0, x1, y1))
 
