@@ -5,6 +5,7 @@ each of which can be applied to the set-up in one click.
 from __future__ import annotations
 
 import streamlit as st
+
 from app.page_common import captured_warnings, fmt, guard, show_notes
 from app.page_model import Setup, autofluorescence, build_tissue
 from app.page_setup import MAX_PROBES, apply_probe_set
@@ -52,11 +53,11 @@ def _widths(text: str) -> list[float]:
 
 def _run_search(setup: Setup, materials: list[str]) -> None:
     """Build the candidates, run probeplan.design.search.design with a progress bar, keep the result."""
-    import numpy as np
 
     from probeplan.catalog import resolve
     from probeplan.design import search as design_mod
     from probeplan.model import optics
+    from probeplan.model.spectra import grid_nm
 
     ss = st.session_state
     notes: list[str] = []
@@ -73,8 +74,8 @@ def _run_search(setup: Setup, materials: list[str]) -> None:
             for p in series:
                 specs[p.name] = (p.material, p.emission_peak_nm, None, eps)
             probes += series
-        centres = np.arange(float(ss["w_ds_centre_from"]), float(ss["w_ds_centre_to"]) + 1e-9,
-                            max(float(ss["w_ds_centre_step"]), 1e-3))
+        centres = grid_nm(float(ss["w_ds_centre_from"]), float(ss["w_ds_centre_to"]),
+                          max(float(ss["w_ds_centre_step"]), 1e-3))
         filters = design_mod.filter_grid(centres, _widths(str(ss["w_ds_widths"])))
         bar = st.progress(0.0, text="searching…")
 

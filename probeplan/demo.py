@@ -83,8 +83,8 @@ class DemoModel:
 def demo_model(plan) -> DemoModel:
     """Probes, channels and responses of a plan at its target depth (the forward model of the demo stacks)."""
     from probeplan.model.channels import response_matrix
-    from probeplan.study.evaluate import plan_model
     from probeplan.model.fluorescence import background_rates
+    from probeplan.study.evaluate import plan_model
 
     m = plan_model(plan)
     tgt = plan.target
@@ -102,8 +102,8 @@ def demo_model(plan) -> DemoModel:
 
 def generate_demo_files(folder: str | Path, plan=None) -> list[Path]:
     """Write the demo's reference spectra and stacks into ``folder`` (seeded: the same bytes every time)."""
-    from probeplan.io.stacks import write_stack
     from probeplan.io.atomic import write_csv_atomic
+    from probeplan.io.stacks import write_stack
     from probeplan.study.plan import load_plan
     from probeplan.unmixing.synthetic import DEMO_SEED, demo_scene, simulate_counts
 
@@ -264,13 +264,13 @@ def run_demo(out_dir: str | Path = DEFAULT_DEMO_OUT) -> DemoResult:
 
 
 def _run_demo(out_dir: Path) -> DemoResult:
-    from probeplan.study.evaluate import evaluate_plan
     from probeplan.io.stacks import read_stack
-    from probeplan.study.plan import load_plan
-    from probeplan.unmixing.references import read_references_csv
     from probeplan.report.document import plan_report, write_report
+    from probeplan.study.evaluate import evaluate_plan
+    from probeplan.study.plan import load_plan
     from probeplan.study.rules import load_rules
     from probeplan.unmixing.pipeline import unmix_file
+    from probeplan.unmixing.references import read_references_csv
 
     folder = demo_folder()
     missing = [f for f in DEMO_FILES if not (folder / f).is_file()]

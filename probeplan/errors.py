@@ -11,7 +11,10 @@ from __future__ import annotations
 
 import difflib
 import math
+import sys
+import warnings
 from collections.abc import Iterable
+from pathlib import Path
 from typing import Any
 
 __all__ = [
@@ -24,7 +27,11 @@ __all__ = [
     "input_error",
     "did_you_mean",
     "positive_number",
+    "warn_at_caller",
 ]
+
+#: The package's own folder: frames inside it are skipped when a warning is attributed.
+_PACKAGE_DIR = str(Path(__file__).resolve().parent)
 
 
 class InputError(ValueError):
@@ -141,3 +148,28 @@ def did_you_mean(name: Any, choices: Iterable[Any], *, cutoff: float = 0.5, list
         return f"{hint}{listing}"
     shown = ", ".join(repr(c) for c in choices[:30]) + (", ..." if len(choices) > 30 else "")
     return f"{hint}valid: {shown}"
+
+
+def warn_at_caller(message: str | Warning, category: type[Warning] = ProbeplanWarning) -> None:
+    """Warn, attributing the warning to the first line outside the package (the caller's own code).
+
+    A fixed ``stacklevel`` points at the right line only for one call depth; the package's
+    functions call each other, so the level is counted here: every frame whose file lies inside
+    the package is skipped.  (Python 3.12's ``skip_file_prefixes`` does the same; the package
+    supports 3.11.)
+
+    Examples
+    --------
+    >>> import warnings
+    >>> with warnings.catch_warnings(record=True) as caught:
+    ...     warnings.simplefilter("always")
+    ...     warn_at_caller("held at the 1000 nm value", AssumptionWarning)
+    >>> caught[0].category.__name__, caught[0].filename.startswith("<doctest")  # this example's own line
+    ('AssumptionWarning', True)
+    """
+    level = 2  # 1 is this function, 2 its caller; then one more per frame inside the package
+    frame = sys._getframe(1)
+    while frame is not None and str(Path(frame.f_code.co_filename).resolve()).startswith(_PACKAGE_DIR):
+        frame = frame.f_back
+        level += 1
+    warnings.warn(message, category, stacklevel=level)

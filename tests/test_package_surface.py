@@ -121,3 +121,15 @@ def test_top_level_positional_order(name, leading):
     params = [p.name for p in inspect.signature(getattr(probeplan, name)).parameters.values()
               if p.kind in (p.POSITIONAL_ONLY, p.POSITIONAL_OR_KEYWORD)]
     assert params[: len(leading)] == leading
+
+
+def test_warnings_point_at_the_callers_line():
+    # however deep inside the package a warning starts, it is attributed to the calling code (this file)
+    from probeplan.errors import ProbeplanWarning
+
+    with pytest.warns(ProbeplanWarning) as caught:
+        probeplan.optical_properties("mouse muscle", 1300.0)  # beyond the measured scattering range
+    assert caught[0].filename == __file__
+    with pytest.warns(ProbeplanWarning) as caught:
+        probeplan.concentration_uM("CdSe", 550.0, 2.5)  # absorbance above the linear range
+    assert {w.filename for w in caught} == {__file__}

@@ -68,10 +68,11 @@ from probeplan.design.branch_bound import (
     check_count,
     exhaustive_search,
 )
-from probeplan.errors import input_error, positive_number
+from probeplan.errors import input_error, positive_number, warn_at_caller
 from probeplan.model import optics, skin_limit
 from probeplan.model.channels import SEPARABLE_CONDITION_LIMIT, condition_number, noise_amplification
 from probeplan.model.fluorescence import DEFAULT_CONCENTRATION_UM, Autofluorescence, background_rates, probe_rate_e_per_s
+from probeplan.model.spectra import grid_nm
 from probeplan.model.tissue import Tissue
 
 __all__ = [
@@ -94,7 +95,7 @@ ROSE_SNR = 5.0
 #: Relative difference in worst SNR reported as a tie in the explanation.
 _TIE_FRACTION = 1e-3
 #: Wavelength grid for the camera assignment rule (nm).
-_ASSIGN_GRID_NM = np.arange(300.0, 2000.5, 1.0)
+_ASSIGN_GRID_NM = grid_nm(300.0, 2000.0, 1.0)
 #: Excitation counted as beyond a probe's absorption edge within this margin (nm).
 _EDGE_MARGIN_NM = 0.01
 
@@ -130,7 +131,7 @@ def probe_series(material: str, start_nm: float, stop_nm: float, step_nm: float,
     if not (math.isfinite(step) and step > 0) or not (math.isfinite(start) and math.isfinite(stop)) or stop < start:
         raise input_error("probe series", f"{material}:{start:g}-{stop:g}:{step:g}",
                           "give START-STOP:STEP in nm with STOP >= START and STEP > 0, e.g. CdTeSe:660-840:20")
-    peaks = start + step * np.arange(int(math.floor((stop - start) / step + 1e-9)) + 1)
+    peaks = grid_nm(start, stop, step)
     return [dots.make_probe(material, float(round(p, 6)), **overrides) for p in peaks]
 
 
@@ -253,6 +254,29 @@ class DesignResult:
     def best(self) -> DesignCandidate | None:
         """The winner, or None when there was nothing to rank."""
         return self.candidates[0] if self.candidates else None
+
+    def to_frame(self):
+        """The ranked candidates as a :class:`pandas.DataFrame`, one row each, units in the column names.
+
+        Probes, filters, cameras and the per-probe figures are joined with `` + `` in probe (or
+        channel) order; an infinite condition number is NaN.
+        """
+        import pandas as pd
+
+        rows = []
+        for c in self.candidates:
+            rows.append({
+                "rank": c.rank, "source": c.source, "source_nm": c.source_nm,
+                "irradiance_mw_per_cm2": c.irradiance_mw_per_cm2, "probes": " + ".join(c.probes),
+                "filters": " + ".join(c.filters), "cameras": " + ".join(c.cameras),
+                "worst_snr": c.worst_snr, "limiting_probe": c.limiting_probe,
+                "snr_per_probe": " + ".join(f"{v:.4g}" for v in c.snr),
+                "condition_number": c.condition_number if math.isfinite(c.condition_number) else math.nan,
+                "noise_amplification_per_probe": " + ".join(f"{v:.4g}" for v in c.noise_amplification),
+                "separable": c.separable, "saturated": c.saturated,
+                "depth_mm": self.depth_mm, "exposure_s": self.exposure_s, "concentration_uM": self.concentration_uM,
+            })
+        return pd.DataFrame.from_records(rows, columns=list(rows[0]) if rows else ["rank"])
 
     def explanation(self) -> str:
         """Plain-text account of why the winner wins, against each runner-up."""
@@ -545,7 +569,7 @@ def design(
         if key not in seen:
             seen.add(key)
             notes.append(str(w.message))
-            warnings.warn(str(w.message), w.category, stacklevel=2)
+            warn_at_caller(str(w.message), w.category)
     read = np.array([cm.read_noise_per_binned_px_e for cm in filter_cams])
     precompute_s = time.perf_counter() - start
 

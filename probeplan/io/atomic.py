@@ -24,9 +24,7 @@ from __future__ import annotations
 
 import contextlib
 import contextvars
-import csv
 import errno
-import io
 import json
 import math
 import os
@@ -557,14 +555,25 @@ def _json_default(obj: Any) -> Any:
 
 
 def table_to_csv_text(rows: Sequence[Mapping[str, Any]], columns: Sequence[str] | None = None) -> str:
-    """Render a list of row dicts as CSV text (columns from the first row unless given)."""
+    """Render a list of row dicts as CSV text (columns from the first row unless given), with pandas.
+
+    Keys outside ``columns`` are left out; a missing key or None is an empty cell, a NaN is ``nan``;
+    numbers are written at full precision (their ``str``), as Python's csv module would.
+
+    Examples
+    --------
+    >>> print(table_to_csv_text([{"a": 1, "b": None}, {"a": 2.5, "b": float("nan"), "c": "x"}], ["a", "b"]), end="")
+    a,b
+    1,
+    2.5,nan
+    """
+    import pandas as pd
+
     cols = list(columns) if columns is not None else (list(rows[0].keys()) if rows else [])
-    buf = io.StringIO()
-    writer = csv.DictWriter(buf, fieldnames=cols, extrasaction="ignore", lineterminator="\n")
-    writer.writeheader()
-    for row in rows:
-        writer.writerow(row)
-    return buf.getvalue()
+    # object dtype keeps each value as given (no int -> float promotion of a column with gaps)
+    cells = [["" if row.get(c) is None else row.get(c) for c in cols] for row in rows]
+    frame = pd.DataFrame(cells, columns=cols, dtype=object)
+    return frame.to_csv(index=False, lineterminator="\n", na_rep="nan")
 
 
 def write_csv_atomic(

@@ -32,7 +32,6 @@ import copy
 import functools
 import math
 import tomllib
-import warnings
 from dataclasses import dataclass
 from importlib import resources
 from typing import Any
@@ -40,7 +39,7 @@ from typing import Any
 import numpy as np
 from scipy.special import ndtr
 
-from probeplan.errors import AssumptionWarning, ModelValidityWarning, did_you_mean, input_error
+from probeplan.errors import AssumptionWarning, ModelValidityWarning, did_you_mean, input_error, warn_at_caller
 from probeplan.units import G_PER_KG, MEV_PER_EV, UL_PER_ML, UM_PER_M  # noqa: F401
 
 #: h c in eV nm as the sizing curves and the shipped demo data use it (CODATA 2018 rounded to 1e-6;
@@ -229,12 +228,10 @@ def _check_lead_diameter(entry: dict[str, Any], material: str, d_nm: np.ndarray,
     vlo, vhi = _value(entry, "valid_diameter_nm")
     bad = (d_nm < vlo) | (d_nm > vhi)
     if np.any(bad):
-        warnings.warn(
+        warn_at_caller(
             f"{where}: {material} diameter {d_nm[bad].flat[0]:.3g} nm lies outside the measured "
             f"{vlo:g}-{vhi:g} nm of the sizing curve; the result is an extrapolation",
-            ModelValidityWarning,
-            stacklevel=3,
-        )
+            ModelValidityWarning)
 
 
 def _yu_diameter_range(entry: dict[str, Any]) -> tuple[float, float]:
@@ -476,12 +473,10 @@ def concentration_uM(material: str, exciton_peak_nm, absorbance, path_cm=1.0):
         raise input_error("absorbance", f"got {np.asarray(absorbance)!r}", "give a finite absorbance >= 0")
     path = _as_positive(path_cm, "path_cm")
     if np.any(a > MAX_LINEAR_ABSORBANCE):
-        warnings.warn(
+        warn_at_caller(
             f"absorbance {a.max():g} is above {MAX_LINEAR_ABSORBANCE:g}, where Beer-Lambert is often not linear; "
             "dilute the sample and measure again",
-            ModelValidityWarning,
-            stacklevel=2,
-        )
+            ModelValidityWarning)
     eps = extinction_coefficient(material, diameter_nm(material, exciton_peak_nm))
     return _out(a / (np.asarray(eps) * path) * UM_PER_M)
 
@@ -574,12 +569,10 @@ def molar_extinction_at(material: str, diameter_nm, wavelength_nm):
     e_gap = HC_EV_NM / peak
     e = HC_EV_NM / lam
     if np.any(e - e_gap < NEAR_GAP_EV):
-        warnings.warn(
+        warn_at_caller(
             f"excitation at {lam.max():g} nm is within {NEAR_GAP_EV} eV of the {name} first exciton; "
             "the smooth absorption model ignores the exciton peak there",
-            ModelValidityWarning,
-            stacklevel=2,
-        )
+            ModelValidityWarning)
     if entry["sizing_model"] == "lead_chalcogenide_gap":
         e_hi = HC_EV_NM / LEAD_REFERENCE_WAVELENGTH_NM
         eps_hi = _value(entry, "eps_400_prefactor_per_uM_cm") * d**3 * UM_PER_M
@@ -815,12 +808,10 @@ class Probe:
                               f"absorption edge (about {peak:.0f} nm)",
                               "excite at a shorter wavelength, or pass extinction_at_excitation_per_M_cm")
         eps = _value(_entry(self.material), "typical_extinction_per_M_cm")
-        warnings.warn(
+        warn_at_caller(
             f"{self.name}: {self.material} has no sizing; using a typical epsilon of {eps:.3g} M^-1 cm^-1 "
             "(order of magnitude); pass extinction_at_excitation_per_M_cm measured for your probe",
-            AssumptionWarning,
-            stacklevel=2,
-        )
+            AssumptionWarning)
         return _out(np.full(lam.shape, float(eps)))
 
     def brightness(self, excitation_wavelength_nm):

@@ -72,11 +72,12 @@ from typing import Any
 
 import numpy as np
 
+from probeplan.errors import ProbeAbsorptionWarning, input_error, positive_number, warn_at_caller
 from probeplan.model import transport
-from probeplan.errors import ProbeAbsorptionWarning, input_error, positive_number
 from probeplan.model.layers import LayeredTissue, layered_coefficients_and_factor
-from probeplan.units import LIGHT_SPEED_M_PER_S, M_PER_NM, M_PER_UM, MM_PER_CM, PLANCK_J_S, W_PER_MW  # noqa: F401
+from probeplan.model.spectra import grid_nm
 from probeplan.model.tissue import Tissue, as_tissue
+from probeplan.units import LIGHT_SPEED_M_PER_S, M_PER_NM, M_PER_UM, MM_PER_CM, PLANCK_J_S, W_PER_MW  # noqa: F401
 
 __all__ = [
     "DEFAULT_CONCENTRATION_UM",
@@ -360,7 +361,7 @@ def emission_grid_nm(probes, *, step_nm: float = 1.0) -> np.ndarray:
     lo = min(p.emission_peak_nm - _WINDOW_FWHM * p.fwhm_nm for p in probes)
     hi = max(p.emission_peak_nm + _WINDOW_FWHM * p.fwhm_nm for p in probes)
     lo, hi = max(300.0, math.floor(lo)), min(2000.0, math.ceil(hi))
-    return np.arange(lo, hi + step_nm / 2, step_nm)
+    return grid_nm(lo, hi, step_nm)
 
 
 def _tissue(tissue: Tissue | LayeredTissue) -> Tissue | LayeredTissue:
@@ -673,7 +674,8 @@ def background_rates(
                                         absorbers, model)
         uptake[k] = np.trapezoid(exitance * pixel * emission_filter.transmission(wl) * camera.qe(wl), wl)
     af_rate = 0.0
-    wl_af = np.arange(max(300.0, math.floor(x_nm) + 1), min(2000.0, x_nm + _AF_SPAN_DECAYS * af.decay_nm), 1.0)
+    wl_af = grid_nm(max(300.0, math.floor(x_nm) + 1), min(2000.0, x_nm + _AF_SPAN_DECAYS * af.decay_nm), 1.0,
+                    include_stop=False)
     band = emission_filter.transmission(wl_af) * camera.qe(wl_af)
     inside = np.nonzero(band >= _AF_BAND_FLOOR * max(float(band.max(initial=0.0)), 1e-300))[0]
     wl_af = wl_af[inside[0]: inside[-1] + 1] if inside.size else wl_af[:0]
@@ -817,7 +819,7 @@ def depth_profile(
                 "included in the fluence and the escape")
         notes.append(text)
         if warn:
-            warnings.warn(text, ProbeAbsorptionWarning, stacklevel=2)
+            warn_at_caller(text, ProbeAbsorptionWarning)
 
     # Blur and the escaping spectrum.
     mu_a, mu_sp = optical_properties(tissue, wl, absorbers)

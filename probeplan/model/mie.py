@@ -38,12 +38,11 @@ J. R. DeVore, J. Opt. Soc. Am. 41, 416 (1951), doi:10.1364/JOSA.41.000416.
 from __future__ import annotations
 
 import math
-import warnings
 
 import numpy as np
 from scipy.special import spherical_jn, spherical_yn
 
-from probeplan.errors import ModelValidityWarning, input_error, positive_number
+from probeplan.errors import ModelValidityWarning, input_error, positive_number, warn_at_caller
 from probeplan.units import NM_PER_UM, UM_PER_CM  # noqa: F401
 
 __all__ = [
@@ -107,8 +106,8 @@ def refractive_index(material: str, wavelength_nm) -> np.ndarray:
     if not np.all(np.isfinite(wl)) or np.any(wl <= 0):
         raise input_error("wavelength_nm", f"got {wavelength_nm!r}", "give wavelengths in nm > 0")
     if np.any(wl < lo) or np.any(wl > hi):
-        warnings.warn(f"{key} refractive index extrapolated outside {lo:g}-{hi:g} nm ({source})",
-                      ModelValidityWarning, stacklevel=2)
+        warn_at_caller(f"{key} refractive index extrapolated outside {lo:g}-{hi:g} nm ({source})",
+                      ModelValidityWarning)
     return formula(wl / NM_PER_UM)
 
 
@@ -191,8 +190,8 @@ def sphere_scattering_per_cm(diameter_um, volume_fraction, wavelength_nm, *, n_p
     if f >= 1:
         raise input_error("volume_fraction", f"got {f:g}", "give the spheres' volume fraction, below 1")
     if f > DEPENDENT_SCATTERING_FRACTION:
-        warnings.warn(f"volume fraction {f:g} is above {DEPENDENT_SCATTERING_FRACTION:g}: dependent scattering makes "
-                      "the independent-scattering μs′ too high", ModelValidityWarning, stacklevel=3)
+        warn_at_caller(f"volume fraction {f:g} is above {DEPENDENT_SCATTERING_FRACTION:g}: dependent scattering makes "
+                      "the independent-scattering μs′ too high", ModelValidityWarning)
     n_p = refractive_index(n_particle, wavelength_nm) if isinstance(n_particle, str) else n_particle
     qsca, g = mie_efficiencies(n_p, diameter_um, wavelength_nm, n_medium=n_medium)
     radius_cm = np.asarray(diameter_um, dtype=np.float64) / 2.0 / UM_PER_CM

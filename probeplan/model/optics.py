@@ -39,8 +39,8 @@ import numpy as np
 from scipy.special import expit
 
 from probeplan.errors import did_you_mean, input_error
-from probeplan.units import UM_PER_MM  # noqa: F401
 from probeplan.model.spectra import Spectrum, as_wavelengths_nm
+from probeplan.units import UM_PER_MM  # noqa: F401
 
 __all__ = [
     "Filter",

@@ -52,7 +52,7 @@ from typing import Any
 
 import numpy as np
 
-from probeplan.errors import AssumptionWarning, ModelValidityWarning, input_error, positive_number
+from probeplan.errors import AssumptionWarning, ModelValidityWarning, input_error, positive_number, warn_at_caller
 from probeplan.model.mie import SPHERE_MATERIALS, sphere_reduced_scattering_per_cm
 from probeplan.model.tissue import Tissue, absorption
 
@@ -100,8 +100,8 @@ def intralipid_scattering(wavelength_nm, *, stock: str = "intralipid-10") -> tup
         raise input_error("stock", f"got {stock!r}", "choose intralipid-10 or intralipid-20")
     lo, hi = _INTRALIPID_RANGE_NM
     if np.any(wl < lo) or np.any(wl > hi):
-        warnings.warn(f"Intralipid scattering law (van Staveren 1991) extrapolated outside {lo:g}-{hi:g} nm",
-                      ModelValidityWarning, stacklevel=2)
+        warn_at_caller(f"Intralipid scattering law (van Staveren 1991) extrapolated outside {lo:g}-{hi:g} nm",
+                      ModelValidityWarning)
     mu_s = 2.54e9 * wl**-2.4 * (2.0 if stock == "intralipid-20" else 1.0)
     g = 1.1 - 0.58e-3 * wl
     return mu_s, g
@@ -121,7 +121,7 @@ def _absorption_per_unit(absorber, wl: np.ndarray) -> np.ndarray:
         if absorber.lower() != "india-ink":
             raise input_error("absorber", f"unknown absorber {absorber!r}",
                               "use india-ink or pass a measured stock absorption spectrum (CSV: wavelength_nm, mu_a)")
-        warnings.warn(INK_ASSUMPTION, AssumptionWarning, stacklevel=3)
+        warn_at_caller(INK_ASSUMPTION, AssumptionWarning)
         return _INK_MU_A_700 * (wl / 700.0) ** -1.0
     return np.asarray(absorber.values_at(wl), dtype=np.float64)
 

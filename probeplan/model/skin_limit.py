@@ -15,11 +15,10 @@ Units: wavelength nm, exposure time s, irradiance mW/cm², radiant exposure J/cm
 from __future__ import annotations
 
 import math
-import warnings
 
 import numpy as np
 
-from probeplan.errors import AssumptionWarning, input_error
+from probeplan.errors import AssumptionWarning, input_error, warn_at_caller
 from probeplan.units import MW_PER_W  # noqa: F401
 
 __all__ = [
@@ -160,14 +159,12 @@ def _mpe(wavelength_nm, exposure_s) -> tuple[np.ndarray, np.ndarray, bool]:
     return h, e, bool(np.any(~visible_nir))
 
 
-def _warn_beyond_1400_nm(stacklevel: int) -> None:
-    warnings.warn(
+def _warn_beyond_1400_nm() -> None:
+    warn_at_caller(
         "skin MPE beyond 1400 nm (0.1 W/cm^2 from 10 s; 0.56 t^0.25 J/cm^2 below) is quoted from memory, "
         "not checked against the standard's text, and ignores its finer bands: have the laser safety "
         "officer confirm it",
-        AssumptionWarning,
-        stacklevel=stacklevel + 1,
-    )
+        AssumptionWarning)
 
 
 def skin_mpe_j_per_cm2(wavelength_nm, exposure_s):
@@ -202,7 +199,7 @@ def skin_mpe_j_per_cm2(wavelength_nm, exposure_s):
     """
     h, _, beyond = _mpe(wavelength_nm, exposure_s)
     if beyond:
-        _warn_beyond_1400_nm(stacklevel=2)
+        _warn_beyond_1400_nm()
     return _scalar_or_array(h)
 
 
@@ -284,7 +281,7 @@ def skin_mpe_mw_per_cm2(wavelength_nm, exposure_s):
     """
     _, e, beyond = _mpe(wavelength_nm, exposure_s)
     if beyond:
-        _warn_beyond_1400_nm(stacklevel=2)
+        _warn_beyond_1400_nm()
     return _scalar_or_array(e * MW_PER_W)
 
 

@@ -34,6 +34,7 @@ from probeplan.errors import input_error
 
 __all__ = [
     "WavelengthGrid",
+    "grid_nm",
     "Spectrum",
     "SPECTRUM_KINDS",
     "as_wavelengths_nm",
@@ -153,6 +154,34 @@ class WavelengthGrid:
     def wavelengths_nm(self) -> np.ndarray:
         """The grid points in nm, shape ``(len(self),)``."""
         return np.linspace(self.start_nm, self.stop_nm, len(self))
+
+
+def grid_nm(start_nm: float, stop_nm: float, step_nm: float = 1.0, *, include_stop: bool = True) -> np.ndarray:
+    """The wavelengths ``start_nm``, ``start_nm + step_nm``, ... up to ``stop_nm`` (nm): every regular grid of the package.
+
+    The last point is the last multiple of the step from ``start_nm`` at or below ``stop_nm``
+    (below it when ``include_stop`` is False); a span shorter than one step gives ``start_nm``
+    alone.  The points come from :class:`WavelengthGrid` (``numpy.linspace`` over the point
+    count, so no rounding drift accumulates).
+
+    Examples
+    --------
+    >>> grid_nm(600, 620, 5).tolist(), grid_nm(600, 622.5, 5).tolist(), grid_nm(600, 620, 5, include_stop=False).tolist()
+    ([600.0, 605.0, 610.0, 615.0, 620.0], [600.0, 605.0, 610.0, 615.0, 620.0], [600.0, 605.0, 610.0, 615.0])
+    >>> grid_nm(700, 700, 10).tolist()
+    [700.0]
+    """
+    start, stop, step = float(start_nm), float(stop_nm), float(step_nm)
+    if not (math.isfinite(step) and step > 0):
+        raise input_error("step_nm", f"got {step_nm!r}", "give a positive step in nm")
+    if not (math.isfinite(start) and math.isfinite(stop)) or stop < start:
+        raise input_error("stop_nm", f"got {start_nm!r}-{stop_nm!r}", "give finite wavelengths with stop_nm >= start_nm")
+    n_steps = math.floor((stop - start) / step + 1e-9)
+    if not include_stop and n_steps >= 1 and abs(start + n_steps * step - stop) <= 1e-9 * max(1.0, abs(stop)):
+        n_steps -= 1
+    if n_steps < 1:
+        return np.array([start])
+    return WavelengthGrid(start, start + n_steps * step, step).wavelengths_nm
 
 
 def _check_increasing(wavelength_nm: np.ndarray, where: str) -> None:

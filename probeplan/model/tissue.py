@@ -40,7 +40,6 @@ from __future__ import annotations
 import functools
 import math
 import tomllib
-import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields, replace
 from importlib import resources
@@ -48,7 +47,7 @@ from typing import Any
 
 import numpy as np
 
-from probeplan.errors import ScatteringRangeWarning, did_you_mean, input_error
+from probeplan.errors import ScatteringRangeWarning, did_you_mean, input_error, warn_at_caller
 from probeplan.model.spectra import Spectrum, as_wavelengths_nm
 from probeplan.units import CM_PER_M, MM_PER_CM
 
@@ -490,7 +489,7 @@ class Tissue:
             edge = model(np.array(hi), self)
             mu_sp = np.where(above, edge * (wl / hi) ** (-self.long_wavelength_b()), mu_sp)
         if warn:
-            warnings.warn(outside, ScatteringRangeWarning, stacklevel=2)
+            warn_at_caller(outside, ScatteringRangeWarning)
         return mu_sp
 
     def long_wavelength_b(self) -> float:
@@ -621,5 +620,5 @@ def optical_properties(
     mu_sp = tissue.mu_s_prime_per_cm(wavelength_nm, scattering_model=scattering_model, warn=False)
     note = tissue.scattering_outside(wavelength_nm)
     if note is not None:
-        warnings.warn(note, ScatteringRangeWarning, stacklevel=2)
+        warn_at_caller(note, ScatteringRangeWarning)
     return mu_a, mu_sp

@@ -38,11 +38,10 @@ from __future__ import annotations
 
 import functools
 import math
-import warnings
 
 import numpy as np
 
-from probeplan.errors import ModelValidityWarning, input_error
+from probeplan.errors import ModelValidityWarning, input_error, warn_at_caller
 from probeplan.units import MM_PER_CM  # noqa: F401
 
 __all__ = [
@@ -1212,9 +1211,7 @@ def diffusion_validity(depth_mm, mu_a_per_cm, mu_s_prime_per_cm, *, warn: bool =
             parts.append(f"{int(shallow.sum())} point(s) shallower than {VALIDITY_MIN_DEPTH_MFP:g} transport mean free path")
         if absorbing.any():
             parts.append(f"{int(absorbing.sum())} point(s) with mu_a > {VALIDITY_MAX_ABSORPTION_RATIO:g} mu_s'")
-        warnings.warn(
+        warn_at_caller(
             "diffusion theory is inaccurate here: " + "; ".join(parts) + " (use probeplan.model.montecarlo to check)",
-            ModelValidityWarning,
-            stacklevel=2,
-        )
+            ModelValidityWarning)
     return valid

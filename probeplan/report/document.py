@@ -20,11 +20,10 @@ from pathlib import Path
 from typing import Any
 
 from probeplan import RESEARCH_USE_CAUTION, __version__
-from probeplan.format import column_label, format_number
-from probeplan.io.tables import Table
 from probeplan.errors import input_error
-from probeplan.io.atomic import (make_output_folder, output_batch, write_csv_atomic, write_json_atomic,
-                                 write_text_atomic)
+from probeplan.format import column_label, format_number
+from probeplan.io.atomic import make_output_folder, output_batch, write_csv_atomic, write_json_atomic, write_text_atomic
+from probeplan.io.tables import Table
 
 __all__ = ["Report", "Table", "write_report", "format_number", "HEAVY_METAL_CAUTION", "LASER_CAUTION",
            "figure_png_bytes", "plan_report", "report_pdf_bytes", "column_label"]

@@ -84,9 +84,8 @@ def _cell_text(value: Any) -> tuple[str, bool]:
 
 def _table_flowables(table, styles, width: float) -> list:
     from reportlab.lib import colors
-    from reportlab.platypus import Paragraph, Spacer
+    from reportlab.platypus import Paragraph, Spacer, TableStyle
     from reportlab.platypus import Table as PdfTable
-    from reportlab.platypus import TableStyle
 
     from probeplan.format import column_label
 

@@ -14,8 +14,8 @@ from pathlib import Path
 import numpy as np
 
 from probeplan.report.document import LASER_CAUTION, Report, render_html
-from probeplan.unmixing.pipeline import DEPTH_COMPARISON_CAUTION
 from probeplan.report.figures import colour, new_figure
+from probeplan.unmixing.pipeline import DEPTH_COMPARISON_CAUTION
 
 __all__ = ["study_report", "write_study_report", "ANIMAL_CAUTION", "MAX_PANELS", "group_time_course_figure"]
 

@@ -42,7 +42,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from probeplan.errors import ModelValidityWarning, input_error
+from probeplan.errors import ModelValidityWarning, input_error, warn_at_caller
 
 __all__ = [
     "PHANTOM_COLUMNS",
@@ -366,12 +366,12 @@ def apply_calibration(abundance, standard_error, component_names, calibration: C
                           "calibrate with a phantom of the same probes (names must match the references)")
     phantom_depths = {float(d) for d in calibration.table["phantom_depth_mm"] if np.isfinite(d)}
     if depth_mm is None:
-        warnings.warn("calibration applied without the target's depth: abundances drift with depth, so µM values are "
-                      "only as good as the match between phantom and target depth", ModelValidityWarning, stacklevel=2)
+        warn_at_caller("calibration applied without the target's depth: abundances drift with depth, so µM values are "
+                      "only as good as the match between phantom and target depth", ModelValidityWarning)
     elif any(abs(depth_mm - d) > DEPTH_TOLERANCE_MM for d in phantom_depths):
-        warnings.warn(f"calibration from a phantom at {sorted(phantom_depths)} mm applied at {depth_mm:g} mm: "
+        warn_at_caller(f"calibration from a phantom at {sorted(phantom_depths)} mm applied at {depth_mm:g} mm: "
                       "the escaping light changes with depth, so these µM values are biased; calibrate at the "
-                      "target's depth", ModelValidityWarning, stacklevel=2)
+                      "target's depth", ModelValidityWarning)
     conc, err, flags = [], [], []
     for name in names:
         k = list(component_names).index(name)
@@ -496,7 +496,7 @@ def calibrate_measurements(measurements: pd.DataFrame, calibration: Calibration,
                 out.loc[rows, "sd"] = out.loc[rows, "sd"] / float(calibration.row(name)["slope_counts_per_uM"])
             out.loc[rows, "flag"] = [FLAGS[int(f)] for f in res["flags"][0]]
     for w in {str(w.message): w for w in caught}.values():
-        warnings.warn(w.message, w.category, stacklevel=2)
+        warn_at_caller(w.message, w.category)
     out["unit"] = "uM"
     key = ["animal", "time_h", "component"]
     if "background" in set(out["roi"]):

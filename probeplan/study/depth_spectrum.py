@@ -36,7 +36,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.stats import chi2
 
-from probeplan.errors import AssumptionWarning, input_error
+from probeplan.errors import AssumptionWarning, input_error, warn_at_caller
 
 __all__ = ["DepthEstimate", "channel_depth_curves", "depth_from_spectrum", "depth_from_spectrum_plan",
            "MIN_RATIO_CHANGE", "DEFAULT_DEPTH_GRID_MM"]
@@ -217,9 +217,9 @@ def depth_from_spectrum_plan(signal, plan, probe_name: str, *, signal_se=None, c
                           "name the stack's channels as the plan does")
     channels = [m.channels[plan_names.index(c)] for c in names]
     if getattr(probe, "emission", None) is None:
-        warnings.warn(f"{probe_name}: the emission spectrum is the material's typical shape, not a measurement; "
+        warn_at_caller(f"{probe_name}: the emission spectrum is the material's typical shape, not a measurement; "
                       "the depth rests on it: give a measured emission spectrum for a firmer estimate",
-                      AssumptionWarning, stacklevel=2)
+                      AssumptionWarning)
     curves = channel_depth_curves(m.tissue, probe, channels, source=m.source, irradiance_mw_per_cm2=m.irradiance_mw_per_cm2,
                                   camera=m.camera, lens=m.lens, target_size_mm=plan.target["size_mm"],
                                   depth_mm=depth_grid_mm)

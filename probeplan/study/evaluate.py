@@ -59,12 +59,12 @@ import numpy as np
 
 from probeplan.catalog.setup import ImagingSetup, build_setup
 from probeplan.errors import AssumptionWarning, InputError, input_error
-from probeplan.units import G_PER_KG, S_PER_MIN, UL_PER_ML  # noqa: F401
-from probeplan.io.tomlsource import format_path, line_of
 from probeplan.io.tables import Table
+from probeplan.io.tomlsource import format_path, line_of
 from probeplan.notes import collect_notes
 from probeplan.study.plan import Plan
 from probeplan.study.rules import RuleCheck, Rules, check_value, default_rules
+from probeplan.units import G_PER_KG, S_PER_MIN, UL_PER_ML  # noqa: F401
 
 __all__ = [
     "Evaluation",
@@ -167,6 +167,12 @@ class Evaluation:
     def passed(self) -> bool:
         """True when every checked rule passes."""
         return all(c.passed for c in self.checks)
+
+    def checks_frame(self):
+        """The rule checks as a :class:`pandas.DataFrame` (one row per check; value, limit and unit)."""
+        from probeplan.study.rules import rule_checks_frame
+
+        return rule_checks_frame(self.checks)
 
     @property
     def failed(self) -> list[RuleCheck]:

@@ -13,7 +13,6 @@ from __future__ import annotations
 import io
 import os
 
-
 from probeplan.errors import input_error
 
 __all__ = ["REQUIRED_MEASUREMENT_COLUMNS", "REQUIRED_GROUP_COLUMNS", "REQUIRED_KINETICS_COLUMNS",

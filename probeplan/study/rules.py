@@ -36,7 +36,7 @@ from __future__ import annotations
 
 import functools
 import math
-from collections.abc import Iterable, Iterator, Mapping
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, replace
 from importlib import resources
 from pathlib import Path
@@ -50,6 +50,7 @@ __all__ = [
     "Rule",
     "Rules",
     "RuleCheck",
+    "rule_checks_frame",
     "COMPARISONS",
     "DEFAULT_RULES_FILE",
     "default_rules",
@@ -164,6 +165,21 @@ class RuleCheck:
             "source": self.source,
             "example_only": self.example_only,
         }
+
+
+def rule_checks_frame(checks: Sequence[RuleCheck]):
+    """Rule checks as a :class:`pandas.DataFrame`, one row per check (:meth:`RuleCheck.as_row` columns).
+
+    Examples
+    --------
+    >>> c = RuleCheck("skin", "skin exposure", 0.2, 1.0, "fraction of MPE", True, "ANSI Z136.1")
+    >>> rule_checks_frame([c])[["rule", "value", "passed"]].values.tolist()
+    [['skin', 0.2, True]]
+    """
+    import pandas as pd
+
+    columns = ["rule", "description", "value", "comparison", "limit", "unit", "passed", "source", "example_only"]
+    return pd.DataFrame.from_records([c.as_row() for c in checks], columns=columns)
 
 
 class Rules:

@@ -32,8 +32,7 @@ import numpy as np
 import pandas as pd
 
 from probeplan.errors import input_error
-from probeplan.io.atomic import (check_outputs, current_policy, file_sha256, make_output_folder, output_batch,
-                                 readable_path)
+from probeplan.io.atomic import check_outputs, current_policy, file_sha256, make_output_folder, output_batch, readable_path
 from probeplan.study.table import Acquisition, read_study_table
 from probeplan.unmixing.references import abundance_unit
 

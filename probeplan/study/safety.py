@@ -19,7 +19,6 @@ from dataclasses import dataclass
 import numpy as np
 
 from probeplan.errors import did_you_mean, input_error
-from probeplan.units import G_PER_KG, MM_PER_CM, MW_PER_W, PERCENT  # noqa: F401
 from probeplan.model.skin_limit import (  # re-exported: the skin table lives with the model
     _TIME_EXPONENT,
     LIMITING_APERTURE_MM,
@@ -38,6 +37,7 @@ from probeplan.model.skin_limit import (  # re-exported: the skin table lives wi
     skin_mpe_mw_per_cm2,
 )
 from probeplan.study.rules import Rules, default_rules
+from probeplan.units import G_PER_KG, MM_PER_CM, MW_PER_W, PERCENT  # noqa: F401
 
 __all__ = [
     "MPE_MIN_WAVELENGTH_NM",

@@ -36,7 +36,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from probeplan.errors import ModelValidityWarning, input_error
+from probeplan.errors import ModelValidityWarning, input_error, warn_at_caller
 from probeplan.unmixing.nnls import STATUS_CONSTRAINED, STATUS_NAN, STATUS_SATURATED, lstsq_pixels, nnls_pixels
 
 __all__ = [
@@ -199,8 +199,8 @@ def check_references(matrix, names: Sequence[str] | None = None, *, where: str =
                           "drop or replace one of them; they cannot be separated with these channels")
     cond = float(s[0] / s[-1])
     if cond > CONDITION_WARN:
-        warnings.warn(f"{where}: condition number {cond:.3g} > {CONDITION_WARN:g}: components are nearly collinear "
-                      "and unmixing will amplify noise strongly", ModelValidityWarning, stacklevel=2)
+        warn_at_caller(f"{where}: condition number {cond:.3g} > {CONDITION_WARN:g}: components are nearly collinear "
+                      "and unmixing will amplify noise strongly", ModelValidityWarning)
     return cond
 
 
@@ -705,8 +705,8 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     import tifffile
 
     from probeplan import RESEARCH_USE_CAUTION, __version__
-    from probeplan.io.stacks import StackWriter, open_stack
     from probeplan.io.atomic import check_outputs, refuse_input_paths, write_json_atomic
+    from probeplan.io.stacks import StackWriter, open_stack
     from probeplan.unmixing.overlay import downsample_mean, overlay_factor, write_overlay_png
     from probeplan.unmixing.references import abundance_unit as unit_of_references
     from probeplan.unmixing.roi import Roi, RoiAccumulator, parse_roi, rois_from_labels, write_roi_csv

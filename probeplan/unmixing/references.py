@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from probeplan.errors import AssumptionWarning, input_error
+from probeplan.errors import AssumptionWarning, input_error, warn_at_caller
 from probeplan.io.atomic import table_to_csv_text, write_text_atomic
 
 __all__ = [
@@ -334,12 +334,10 @@ def references_from_controls(
             raise input_error(f"control {name!r}", "has no signal above the unlabelled control",
                               "check the control holds the probe and the unlabelled control matches it")
         if (spectrum < -_NEGATIVE_TOLERANCE * spectrum.max()).any():
-            import warnings
 
-            warnings.warn(
+            warn_at_caller(
                 f"control {name!r}: mean signal below background in channel(s) "
-                f"{np.flatnonzero(spectrum < 0).tolist()}; set to 0", AssumptionWarning, stacklevel=2,
-            )
+                f"{np.flatnonzero(spectrum < 0).tolist()}; set to 0", AssumptionWarning)
         spectrum = np.clip(spectrum, 0.0, None)
         cols.append(spectrum)
     return references_from_matrix(np.stack(cols, axis=1), list(controls), channel_names, normalise=normalise,

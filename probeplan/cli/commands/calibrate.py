@@ -30,14 +30,11 @@ def run(args: argparse.Namespace) -> int:
 
     from probeplan import RESEARCH_USE_CAUTION
     from probeplan.cli.common import model_notes, print_json, print_table
-    from probeplan.errors import input_error
-    from probeplan.io.atomic import (check_outputs, make_output_folder, refuse_input_paths, write_bytes_atomic,
-                                     write_text_atomic)
+    from probeplan.errors import input_error, positive_number
+    from probeplan.io.atomic import check_outputs, make_output_folder, refuse_input_paths, write_bytes_atomic, write_text_atomic
     from probeplan.report.document import figure_png_bytes
     from probeplan.study.calibration import calibrate_phantom, plot_calibration
     from probeplan.unmixing.references import read_references_csv
-
-    from probeplan.errors import positive_number
 
     positive_number("--depth-mm", args.depth_mm, allow_zero=True)
     positive_number("--gain", args.gain)

@@ -79,11 +79,11 @@ def _candidate_probes(specs: list[str]) -> list:
 
 
 def _candidate_filters(args: argparse.Namespace) -> list:
-    import numpy as np
 
     from probeplan.catalog.resolve import emission_filter as make_filter
     from probeplan.design.search import filter_grid
     from probeplan.errors import input_error
+    from probeplan.model.spectra import grid_nm
 
     filters = [make_filter(f) for f in (args.candidate_filter or [])]
     for grid in args.filter_grid or []:
@@ -98,7 +98,7 @@ def _candidate_filters(args: argparse.Namespace) -> list:
                               "write START:STOP:STEP:WIDTHS in nm, e.g. 650:1000:10:20,30,40") from None
         if not (step > 0 and stop >= start and widths):
             raise input_error("--filter-grid", f"{grid!r}", "give STOP >= START, STEP > 0 and at least one width")
-        centres = start + step * np.arange(int(np.floor((stop - start) / step + 1e-9)) + 1)
+        centres = grid_nm(start, stop, step)
         filters += filter_grid(centres, widths)
     if not filters:
         raise input_error("--candidate-filter/--filter-grid", "no candidate filter given",

@@ -52,12 +52,9 @@ def run(args: argparse.Namespace) -> int:
 
     from probeplan import RESEARCH_USE_CAUTION
     from probeplan.cli.common import model_notes, print_json, print_table
-    from probeplan.errors import input_error
-    from probeplan.io.atomic import (check_outputs, make_output_folder, refuse_input_paths, write_bytes_atomic,
-                                     write_csv_atomic)
+    from probeplan.errors import input_error, positive_number
+    from probeplan.io.atomic import check_outputs, make_output_folder, refuse_input_paths, write_bytes_atomic, write_csv_atomic
     from probeplan.study.phantom import PHANTOM_CAUTION
-
-    from probeplan.errors import positive_number
 
     positive_number("--batch-ml", args.batch_ml)
     if args.diameter_um is not None:

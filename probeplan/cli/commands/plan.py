@@ -35,10 +35,10 @@ def run(args: argparse.Namespace) -> int:
     from probeplan import RESEARCH_USE_CAUTION
     from probeplan.cli.common import print_json
     from probeplan.errors import input_error
-    from probeplan.study.evaluate import evaluate_plan
     from probeplan.io.atomic import check_outputs, refuse_input_paths
-    from probeplan.study.plan import load_plan
     from probeplan.report.document import plan_report, report_pdf_bytes, write_report
+    from probeplan.study.evaluate import evaluate_plan
+    from probeplan.study.plan import load_plan
     from probeplan.study.rules import load_rules
 
     out = Path(args.out)

@@ -158,10 +158,10 @@ def run(args: argparse.Namespace) -> int:
     from probeplan import RESEARCH_USE_CAUTION
     from probeplan.cli.common import print_json, print_table
     from probeplan.errors import input_error
-    from probeplan.io.stacks import open_stack
     from probeplan.io.atomic import current_policy, output_batch, readable_path, signals_held
-    from probeplan.unmixing.references import read_references_csv
+    from probeplan.io.stacks import open_stack
     from probeplan.unmixing.pipeline import DEFAULT_MEMORY_MB, unmix_file
+    from probeplan.unmixing.references import read_references_csv
 
     stack = Path(args.stack)
     out = Path(args.out)
