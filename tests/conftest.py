@@ -17,7 +17,11 @@ import pytest  # noqa: E402
 
 @pytest.fixture(autouse=True)
 def _isolated_user_library(tmp_path_factory, monkeypatch):
-    """Point the user library folder at an empty temporary folder for every test."""
+    """Point the user library folder at an empty temporary folder for every test.
+
+    Model functions take objects and never read it; the catalog, the command line and the page
+    resolve names through it, and a developer's own folder must not change what those tests see.
+    """
     folder = tmp_path_factory.mktemp("user_library")
     monkeypatch.setenv("PROBEPLAN_LIBRARY", str(folder))
     yield folder
