@@ -1,11 +1,14 @@
 """The study view: a whole study's results, each animal over time, group comparisons and kinetics.
 
 Two ways in: run a study table on this computer (:func:`probeplan.study.runs.run_study`:
-the study table and the reference spectra by their paths, the regions as rectangles or a
-ROI file), or upload the result tables a study run wrote (``measurements.csv`` and, when
-present, ``groups.csv`` and ``kinetics.csv``, read with :mod:`probeplan.study.results`).
+the study table and the reference spectra by their paths, the regions as text forms or
+an ROI file with rectangles, ellipses and polygons: a path, an upload or the regions drawn in
+the unmix view), or upload the result tables a study run wrote (``measurements.csv`` and,
+when present, ``groups.csv`` and ``kinetics.csv``, read with :mod:`probeplan.study.results`).
 Figures come from :mod:`probeplan.report.study`; the statistics are the study run's, not
-the page's.
+the page's.  With the study plan, the plan's predictions are put beside the measurements
+(:func:`probeplan.study.closure.closure`: the closure table, the fitted unknowns and the
+refined plan to download).
 """
 
 from __future__ import annotations
@@ -14,7 +17,16 @@ from pathlib import Path
 
 import streamlit as st
 
-from app.page_common import FIGURE_DPI, captured_warnings, fmt, guard, safe_name, show_notes
+from app.page_common import (
+    FIGURE_DPI,
+    captured_warnings,
+    fmt,
+    guard,
+    safe_name,
+    save_upload,
+    session_folder,
+    show_notes,
+)
 
 __all__ = ["study_view"]
 
@@ -45,28 +57,90 @@ def _shown(df, columns: dict[str, str]) -> list[dict]:
             for r in df.to_dict("records")]
 
 
-def _rois_from_text(text: str) -> list[str]:
-    """Region lines: ``name:x0,y0,x1,y1`` rectangles, or the path of a ROI file (its rectangles)."""
-    from probeplan.unmixing.shapes import read_roi_file, rectangle_spec
+def _region_inputs(text: str) -> tuple[list[str], Path | None]:
+    """Region lines (``name:x0,y0,x1,y1``, ``name:ellipse:cx,cy,rx,ry``, ``name:polygon:...``), an ROI file's path,
+    an uploaded ROI file, or the regions drawn in the unmix view: (text forms, the one ROI file)."""
+    from probeplan.errors import input_error
+    from probeplan.unmixing.roifile import write_roi_file
 
-    lines = [ln.strip() for ln in text.splitlines() if ln.strip()]
-    out: list[str] = []
-    for line in lines:
+    ss = st.session_state
+    specs: list[str] = []
+    files: list[Path] = []
+    for line in (ln.strip() for ln in text.splitlines()):
         if line.lower().endswith(".json"):
-            shapes, _bg = read_roi_file(Path(line).expanduser())
-            out += [rectangle_spec(s) for s in shapes]
-        else:
-            out.append(line)
-    return out
+            files.append(Path(line).expanduser())
+        elif line:
+            specs.append(line)
+    up = ss.get("up_study_rois")
+    if up is not None:
+        files.append(save_upload(up.getvalue(), up.name or "rois.json", sub="study"))
+    drawn = ss.get("unmix_regions") or []
+    if ss.get("w_study_use_drawn") and drawn:
+        background = ss.get("w_roi_background")
+        names = [r.name for r in drawn]
+        (session_folder() / "study").mkdir(parents=True, exist_ok=True)
+        files.append(write_roi_file(session_folder() / "study" / "drawn_rois.json", drawn,
+                                    background=background if background in names else None))
+    if len(files) > 1:
+        raise input_error("regions", f"{len(files)} ROI files given (a path, an upload or the drawn regions)",
+                          "give one ROI file: it holds every region")
+    return specs, (files[0] if files else None)
+
+
+def _closure(measurements, plan_path: Path, references, background: str, depth_mm: float | None, notes: list):
+    """Predicted beside measured (:func:`probeplan.study.closure.closure`), as ``probeplan study --plan`` writes it."""
+    from probeplan.study.closure import closure
+    from probeplan.study.plan import load_plan
+    from probeplan.study.runs import load_references
+
+    with captured_warnings(notes):
+        plan = load_plan(plan_path)
+        c = closure(measurements, plan, load_references(references), background_roi=background, depth_mm=depth_mm)
+    notes += c.notes
+    return c
+
+
+@st.cache_data(show_spinner=False, max_entries=8)
+def _closure_of_uploads(measurements, plan: bytes, plan_name: str, references: bytes, refs_name: str,
+                        background: str, depth_mm: float | None):
+    """:func:`_closure` of uploaded files (cached: the upload form runs on every rerun); returns (closure, notes)."""
+    import tempfile
+
+    notes: list[str] = []
+    with tempfile.TemporaryDirectory(prefix="probeplan-closure-") as d:
+        plan_path, refs_path = Path(d) / safe_name(plan_name, "plan.toml"), Path(d) / safe_name(refs_name, "refs.csv")
+        plan_path.write_bytes(plan)  # a private temporary copy for the readers, not an output
+        refs_path.write_bytes(references)
+        c = _closure(measurements, plan_path, refs_path, background, depth_mm, notes)
+    return c, notes
+
+
+def _depth() -> float | None:
+    ss = st.session_state
+    return float(ss["w_study_depth"]) if ss.get("w_study_depth_known") else None
+
+
+def _plan_path() -> Path | None:
+    ss = st.session_state
+    up = ss.get("up_study_plan")
+    if up is not None:
+        return save_upload(up.getvalue(), up.name or "plan.toml", sub="study")
+    if str(ss.get("w_study_plan") or "").strip():
+        return Path(str(ss["w_study_plan"]).strip()).expanduser()
+    return None
 
 
 def _run(study_csv: str, references: str, rois_text: str, background: str, method: str) -> None:
     from probeplan.errors import input_error
     from probeplan.study.runs import run_study
+    from probeplan.unmixing.roifile import background_name
 
     if not study_csv.strip() or not references.strip():
         raise input_error("study", "the study table and the reference spectra are both needed",
                           "give the path of each file on this computer")
+    specs, roi_file = _region_inputs(rois_text)
+    background = background_name([roi_file] if roi_file else [], background.strip() or None)
+    plan_path, depth = _plan_path(), _depth()
     notes: list[str] = []
     bar = st.progress(0.0, text="running the study…")
     done = [0]
@@ -75,14 +149,42 @@ def _run(study_csv: str, references: str, rois_text: str, background: str, metho
         done[0] += 1
         bar.progress(min(1.0, done[0] / max(1, done[0] + 1)), text=f"{acq.animal} at {acq.time_h:g} h: {status}")
 
+    refs_path = Path(references.strip()).expanduser()
+    dark = str(st.session_state.get("w_study_dark") or "").strip()
     with captured_warnings(notes):
-        result = run_study(Path(study_csv.strip()).expanduser(), Path(references.strip()).expanduser(),
-                           rois=_rois_from_text(rois_text), roi_background=background.strip() or "background",
-                           method=method, progress=progress)
+        result = run_study(Path(study_csv.strip()).expanduser(), refs_path, rois=specs, roi_file=roi_file,
+                           roi_background=background, method=method, progress=progress,
+                           dark_path=Path(dark).expanduser() if dark else None)
     bar.empty()
-    st.session_state["study_tables"] = {"measurements": result.measurements, "groups": result.groups,
-                                        "kinetics": result.kinetics, "unit": result.unit,
-                                        "notes": [*result.notes, *notes], "source": Path(study_csv).name}
+    tables = {"measurements": result.measurements, "groups": result.groups, "kinetics": result.kinetics,
+              "unit": result.unit, "notes": [*result.notes, *notes], "source": Path(study_csv).name,
+              "background": background}
+    if plan_path is not None:
+        tables["closure"] = _closure(result.measurements, plan_path, refs_path, background, depth, tables["notes"])
+    st.session_state["study_tables"] = tables
+
+
+def _closure_form(*, uploads_references: bool) -> None:
+    """Optional: the study plan (and the target depth when known) for predicted beside measured."""
+    ss = st.session_state
+    with st.expander("Predicted beside measured (optional): give the study plan", expanded=False):
+        st.caption("With the plan, the study's measurements are put beside what the plan predicted for each probe "
+                   "(signal, background, SBR, TBR, noise), the model's unknowns are fitted, and a refined plan for "
+                   "the next study is offered (as 'probeplan study --plan' writes closure.csv and refined_plan.toml).")
+        c = st.columns([2, 2, 1, 1])
+        c[0].text_input("study plan (TOML) on this computer", key="w_study_plan", persist_state="session",
+                        placeholder="/path/to/plan.toml")
+        c[1].file_uploader("or upload the plan (TOML)", type=["toml", "txt"], key="up_study_plan")
+        ss.setdefault("w_study_depth_known", False)
+        ss.setdefault("w_study_depth", 3.0)
+        c[2].checkbox("target depth known", key="w_study_depth_known", persist_state="session",
+                      help="Known from anatomy or from the spectrum: the throughput is then fitted from the signal "
+                           "at that depth; otherwise the depth is fitted.")
+        c[3].number_input("target depth (mm)", min_value=0.0, max_value=50.0, step=0.5, key="w_study_depth",
+                          persist_state="session", disabled=not ss["w_study_depth_known"])
+        if uploads_references:
+            st.file_uploader("reference spectra the images were unmixed with (CSV)", type=["csv", "txt"],
+                             key="up_study_refs")
 
 
 def _run_form() -> None:
@@ -92,12 +194,24 @@ def _run_form() -> None:
                     persist_state="session", placeholder="/path/to/STUDY.csv")
     c[1].text_input("reference spectra (CSV)", key="w_study_refs", persist_state="session",
                     placeholder="/path/to/references.csv")
-    c = st.columns([3, 1, 1])
-    c[0].text_area("regions: one rectangle per line (name:x0,y0,x1,y1, pixels) or the path of a ROI file saved "
-                   "from the unmix view", key="w_study_rois", persist_state="session", height=90)
-    ss.setdefault("w_study_background", "background")
-    c[1].text_input("background region", key="w_study_background", persist_state="session")
+    c = st.columns([3, 2])
+    c[0].text_area("regions, one per line: name:x0,y0,x1,y1 (a rectangle), name:ellipse:cx,cy,rx,ry, "
+                   "name:polygon:x1,y1,x2,y2,x3,y3,… (pixels from the image's top-left corner), or the path of an "
+                   "ROI file (.json)", key="w_study_rois", persist_state="session", height=90)
+    c[1].file_uploader("or an ROI file saved from the unmix view (rectangles, ellipses, polygons)", type=["json"],
+                       key="up_study_rois")
+    n_drawn = len(ss.get("unmix_regions") or [])
+    ss.setdefault("w_study_use_drawn", False)
+    c[1].checkbox(f"use the {n_drawn} regions drawn in the unmix view", key="w_study_use_drawn",
+                  disabled=not n_drawn)
+    c = st.columns([2, 2, 1])
+    ss.setdefault("w_study_background", "")
+    c[0].text_input("background region (empty: the ROI file's, else 'background')", key="w_study_background",
+                    persist_state="session")
+    c[1].text_input("dark frame stack (optional, subtracted)", key="w_study_dark", persist_state="session",
+                    placeholder="/path/to/dark.tif")
     c[2].selectbox("method", ["nnls", "ls", "wls"], key="w_study_method", persist_state="session")
+    _closure_form(uploads_references=False)
     if st.button("Run the study", type="primary", key="btn_study_run"):
         ss.pop("study_tables", None)
         with guard("study"):
@@ -111,6 +225,7 @@ def _upload_form() -> None:
     up_m = c[0].file_uploader("measurements (CSV)", type=["csv"], key="up_study_measurements")
     up_g = c[1].file_uploader("group comparisons (CSV, optional)", type=["csv"], key="up_study_groups")
     up_k = c[2].file_uploader("kinetics (CSV, optional)", type=["csv"], key="up_study_kinetics")
+    _closure_form(uploads_references=True)
     if up_m is None:
         st.info("Upload the study's measurements.csv to see it.")
         ss.pop("study_tables", None)
@@ -126,6 +241,21 @@ def _upload_form() -> None:
         if "unit" in m.columns and m["unit"].notna().any():
             tables["unit"] = str(m["unit"].dropna().iloc[0])
         ss["study_tables"] = tables
+        up_plan, up_refs = ss.get("up_study_plan"), ss.get("up_study_refs")
+        if up_plan is not None:
+            from probeplan.errors import input_error
+
+            if up_refs is None:
+                raise input_error("predicted beside measured", "needs the reference spectra the images were unmixed "
+                                  "with", "upload them beside the plan")
+            if "background" not in set(m["roi"]):
+                raise input_error(tables["source"], "has no region named 'background'",
+                                  "predicted beside measured compares each target with the 'background' region")
+            tables["background"] = "background"
+            tables["closure"], notes = _closure_of_uploads(m, up_plan.getvalue(), up_plan.name or "plan.toml",
+                                                           up_refs.getvalue(), up_refs.name or "references.csv",
+                                                           "background", _depth())
+            tables["notes"] = [*tables["notes"], *notes]
 
 
 def study_view() -> None:
@@ -183,4 +313,36 @@ def study_view() -> None:
             cols = {"animal": "animal", "model": "model", "half_life_h": "half-life (h)", "t_peak_h": "peak at (h)"}
             cols.update({c_: c_.replace("_", " ") for c_ in k.columns if c_.endswith(("_low", "_high"))})
             st.dataframe(_shown(k, cols), hide_index=True, width="stretch")
+        _closure_section(tables)
         show_notes(list(dict.fromkeys(tables.get("notes") or [])), title="How the study was measured")
+
+
+def _closure_section(tables: dict) -> None:
+    """The plan's predictions beside the measurements, the fitted unknowns and the refined plan."""
+    c = tables.get("closure")
+    if c is None:
+        return
+    from probeplan.io.atomic import table_to_csv_text
+    from probeplan.study.closure import CLOSURE_COLUMNS
+
+    st.subheader("Predicted beside measured")
+    st.caption(f"Each probe in its own target region (its highest TBR) against the background region "
+               f"'{tables.get('background', 'background')}'. SBR (the raw channel, what the plan predicts at depth) "
+               "and TBR (the unmixed abundances) are different quantities: each row says what its numbers mean.")
+    rows = c.table.to_dict("records")
+    st.dataframe([{"component": r["component"], "quantity": r["quantity"], "predicted": fmt(r["predicted"]),
+                   "measured": fmt(r["measured"]), "ratio (measured / predicted)": fmt(r["ratio"]),
+                   "what it means": r["meaning"]} for r in rows], hide_index=True, width="stretch",
+                 key="df_closure")
+    if len(c.fits):
+        st.markdown("**The model's unknowns fitted to the images** (mean ± standard error across animals)")
+        st.dataframe([{k: (fmt(v) if isinstance(v, float) else v) for k, v in r.items()}
+                      for r in c.fits.to_dict("records")], hide_index=True, width="stretch", key="df_closure_fits")
+    d = st.columns(3)
+    d[0].download_button("closure.csv", table_to_csv_text(rows, CLOSURE_COLUMNS), file_name="closure.csv",
+                         mime="text/csv", key="dl_closure")
+    d[1].download_button("closure_fits.csv", c.fits.to_csv(index=False), file_name="closure_fits.csv",
+                         mime="text/csv", key="dl_closure_fits")
+    d[2].download_button("Refined plan for the next study (TOML)", c.refined_plan_toml,
+                         file_name="refined_plan.toml", mime="application/toml", key="dl_refined_plan")
+

@@ -4,7 +4,7 @@ Uploads are written only into the session's private temporary folder under sanit
 names; every reading, unmixing, region mask and statistic is a library call
 (:mod:`probeplan.unmixing`).  Regions are drawn on an interactive chart of a map
 (box → rectangle or ellipse, lasso → polygon), named, listed, saved to and loaded
-from the ROI file (:mod:`probeplan.unmixing.shapes`).
+from the ROI file (:mod:`probeplan.unmixing.roifile`).
 """
 
 from __future__ import annotations
@@ -194,11 +194,12 @@ def _draw_chart(result: dict, component: int) -> tuple[dict | None, int]:
     gy, gx = np.mgrid[0:ny:step, 0:nx:step]
     fig.add_trace(go.Scattergl(x=gx.ravel(), y=gy.ravel(), mode="markers", marker={"size": 4, "opacity": 0.0},
                                hoverinfo="skip", showlegend=False))
+    # regions are in pixels from the image's top-left corner; the chart centres its pixel i on i
     for s in _regions():
-        x0, y0, x1, y1 = (v / factor for v in s.box)
+        x0, y0, x1, y1 = (v / factor - 0.5 for v in s.box)
         if s.shape == "polygon":
-            xs = [v / factor for v in (*s.x, s.x[0])]
-            ys = [v / factor for v in (*s.y, s.y[0])]
+            xs = [v / factor - 0.5 for v in (*s.x, s.x[0])]
+            ys = [v / factor - 0.5 for v in (*s.y, s.y[0])]
             fig.add_trace(go.Scatter(x=xs, y=ys, mode="lines", line={"color": "white", "dash": "dash"},
                                      hoverinfo="skip", showlegend=False))
         else:
@@ -223,7 +224,8 @@ def _draw_chart(result: dict, component: int) -> tuple[dict | None, int]:
 def _load_roi_file() -> None:
     """Replace the regions by those of the uploaded ROI file (a callback: runs before the widgets are drawn)."""
     from probeplan.errors import InputError
-    from probeplan.unmixing.shapes import parse_roi_text, shapes_to_rois
+    from probeplan.unmixing.roifile import parse_roi_text
+    from probeplan.unmixing.shapes import shapes_to_rois
 
     ss = st.session_state
     up, result = ss.get("up_rois"), ss.get("unmix_result")
@@ -231,31 +233,34 @@ def _load_roi_file() -> None:
     if up is None or result is None:
         return
     name = safe_name(up.name or "rois.json")
+    ss.pop("unmix_roi_info", None)
     try:
-        shapes, bg = parse_roi_text(up.getvalue().decode("utf-8-sig", errors="replace"), source=name,
-                                    image_size=_image_size(result))
+        roi_file = parse_roi_text(up.getvalue().decode("utf-8-sig", errors="replace"), source=name,
+                                  image_size=_image_size(result))
+        shapes, bg = roi_file.shapes, roi_file.background
         shapes_to_rois(shapes, result["abundances"].shape[-2:])
     except InputError as exc:
         ss["unmix_roi_error"] = f"ROI file: {exc}"
         return
+    skipped = [r.name for r in roi_file.label_regions]
+    if skipped:
+        ss["unmix_roi_info"] = (f"{name}: the label regions {', '.join(skipped)} need their label image and are not "
+                                "drawn here; the command line and the study use them.")
     ss["unmix_regions"] = shapes
     ss["w_roi_background"] = bg if bg in [s.name for s in shapes] else "(none)"
     ss.pop("unmix_roi_rows", None)
 
 
 def _regions_section(result: dict) -> None:
-    from probeplan.unmixing.shapes import (
-        roi_file_text,
-        shape_from_selection,
-        shapes_to_rois,
-        suggest_target_roi,
-    )
+    from probeplan.unmixing.roifile import roi_file_text
+    from probeplan.unmixing.shapes import shape_from_selection, shapes_to_rois, suggest_target_roi
 
     ss = st.session_state
     st.subheader("Regions of interest")
     st.caption("Choose a map, then drag a box on it (a rectangle, or the ellipse inside the box) or pick the lasso "
                "in the chart's toolbar for a freehand polygon; name the region and add it. The regions are saved "
-               "to a ROI file (JSON, pixel coordinates) that loads back here or on the command line.")
+               "to an ROI file (JSON, pixels from the image's top-left corner) that loads back here, in the study "
+               "view, and on the command line (probeplan unmix --roi FILE.json, probeplan study --rois FILE).")
     names = result["names"]
     ss.setdefault("w_roi_component", names[0])
     if ss["w_roi_component"] not in names:
@@ -293,7 +298,7 @@ def _regions_section(result: dict) -> None:
     regions = _regions()
     if regions:
         st.caption("Regions: " + "; ".join(f"{r.name} ({r.shape})" for r in regions))
-        rows = [{"region": r.name, "shape": r.shape, "x from (pixel)": fmt(min(r.x)), "x to": fmt(max(r.x)),
+        rows = [{"region": r.name, "shape": r.shape, "x from (pixel edge)": fmt(min(r.x)), "x to": fmt(max(r.x)),
                  "y from": fmt(min(r.y)), "y to": fmt(max(r.y)),
                  "pixels": int(r.mask(result["abundances"].shape[-2:]).sum())} for r in regions]
         st.dataframe(rows, hide_index=True, width="stretch")
@@ -316,6 +321,8 @@ def _regions_section(result: dict) -> None:
     c[3].file_uploader("load a ROI file", type=["json"], key="up_rois", on_change=_load_roi_file)
     if ss.get("unmix_roi_error"):
         st.error(ss["unmix_roi_error"])
+    if ss.get("unmix_roi_info"):
+        st.info(ss["unmix_roi_info"])
     if st.button("Measure the regions", key="btn_roi_measure", disabled=not regions):
         with guard("regions"):
             from probeplan.unmixing.roi import roi_statistics

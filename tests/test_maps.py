@@ -11,15 +11,12 @@ import pytest
 from probeplan.errors import InputError
 from probeplan.report.document import format_number
 from probeplan.unmixing import overlay
+from probeplan.unmixing.roifile import parse_roi_text, read_roi_file, roi_file_text, write_roi_file
 from probeplan.unmixing.shapes import (
     RoiShape,
-    parse_roi_text,
-    read_roi_file,
-    roi_file_text,
     shape_from_selection,
     shapes_to_rois,
     suggest_target_roi,
-    write_roi_file,
 )
 
 # --------------------------------------------------------------------------- palette and composite
@@ -113,12 +110,14 @@ def test_ellipse_and_polygon_masks_match_their_areas():
     # ellipse area pi*a*b (a = 20, b = 12 pixels): pixel-centre counting is within 2 % at this size
     e = RoiShape("e", "ellipse", (10, 50), (10, 34)).mask((60, 80))
     assert e.sum() == pytest.approx(math.pi * 20 * 12, rel=0.02)
-    # triangle (0,0), (40,0), (0,30): shoelace area 600; counting centres with edges included adds half the
-    # boundary (Pick's theorem: I + B = A + B/2 + 1, with B = 40 + 30 + 10 = 80 lattice points on the edges)
-    t = RoiShape("t", "polygon", (0, 40, 0), (0, 0, 30)).mask((40, 50))
+    # triangle with its corners on pixel centres (i + 0.5): shoelace area 600; counting centres with edges
+    # included adds half the boundary (Pick's theorem: I + B = A + B/2 + 1, with B = 40 + 30 + 10 = 80
+    # centres on the edges)
+    t = RoiShape("t", "polygon", (0.5, 40.5, 0.5), (0.5, 0.5, 30.5)).mask((40, 50))
     assert t.sum() == 600 + 80 / 2 + 1
-    r = RoiShape("r", "rectangle", (2, 5), (1, 3)).mask((10, 10))
-    assert r.sum() == 4 * 3 and r[1, 2] and r[3, 5] and not r[4, 5]
+    # corners (2, 1) and (6, 4): columns 2-5, rows 1-3, as the text rectangle r:2,1,6,4
+    r = RoiShape("r", "rectangle", (2, 6), (1, 4)).mask((10, 10))
+    assert r.sum() == 4 * 3 and r[1, 2] and r[3, 5] and not r[4, 5] and not r[1, 6]
 
 
 def test_regions_measure_through_the_roi_statistics():
@@ -126,8 +125,8 @@ def test_regions_measure_through_the_roi_statistics():
 
     a = np.full((1, 20, 20), 10.0)
     a[0, 5:10, 5:10] = 50.0
-    rois = shapes_to_rois([RoiShape("spot", "rectangle", (5, 9), (5, 9)),
-                           RoiShape("background", "polygon", (12, 19, 19, 12), (12, 12, 19, 19))], (20, 20))
+    rois = shapes_to_rois([RoiShape("spot", "rectangle", (5, 10), (5, 10)),
+                           RoiShape("background", "polygon", (12, 20, 20, 12), (12, 12, 20, 20))], (20, 20))
     rows = roi_statistics(a, rois, ["dot"])
     assert rows[0]["n_pixels"] == 25 and rows[0]["mean"] == 50.0 and rows[0]["tbr"] == 5.0
     with pytest.raises(InputError, match="holds no pixel"):
@@ -141,19 +140,19 @@ def test_roi_file_round_trip_and_refusals(tmp_path):
               RoiShape("liver", "polygon", (60, 80, 75), (50, 52, 70)),
               RoiShape("background", "rectangle", (100, 127), (0, 15))]
     path = write_roi_file(tmp_path / "r.json", shapes, image_size=(128, 96), background="background")
-    back, bg = read_roi_file(path, image_size=(128, 96))
-    assert back == shapes and bg == "background"
+    back = read_roi_file(path, image_size=(128, 96))
+    assert back.regions == shapes and back.background == "background" and back.image_size == (128, 96)
     with pytest.raises(InputError, match="drawn on a 128 x 96 image"):
         read_roi_file(path, image_size=(64, 64))
     text = roi_file_text(shapes)
     for bad, message in [
         ("{", "not JSON"),
-        ("[]", "not a probeplan ROI file"),
-        (text.replace('"version": 1', '"version": 9'), "version 9"),
-        (text.replace('"ellipse"', '"star"'), "shape 'star'"),
-        (text.replace('"x": [60, 80, 75]', '"x": [60, 80]'), "2 x but 3 y"),
-        (text.replace('"name": "liver", ', ""), "has no 'name'"),
-        (text.replace("[100, 127]", '["a", 127]'), "not numbers"),
+        ("[]", "not an ROI file"),
+        (text.replace('"version": 2', '"version": 9'), r"version: 9 is not known"),
+        (text.replace('"ellipse"', '"star"'), r"rois\[0\]\.shape: 'star' is not known"),
+        (text.replace('"x": [60, 80, 75]', '"x": [60, 80]'), r"rois\[1\]\.y: has 3 values but x has 2"),
+        (text.replace('"name": "liver", ', ""), r"rois\[1\]\.name: is missing"),
+        (text.replace("[100, 127]", '["a", 127]'), r"rois\[2\]\.x: .* is not a list of numbers"),
     ]:
         with pytest.raises(InputError, match=message):
             parse_roi_text(bad, source="r.json")
@@ -161,7 +160,8 @@ def test_roi_file_round_trip_and_refusals(tmp_path):
 
 def test_chart_selection_becomes_a_region():
     box = {"box": [{"x": [10.0, 2.0], "y": [3.0, 8.0]}], "lasso": []}
-    assert shape_from_selection(box, "a", scale=2.0) == RoiShape("a", "rectangle", (4.0, 20.0), (6.0, 16.0))
+    # chart pixel i is centred on i and covers image pixels 2i, 2i + 1: corners at (i + 0.5) * 2
+    assert shape_from_selection(box, "a", scale=2.0) == RoiShape("a", "rectangle", (5.0, 21.0), (7.0, 17.0))
     lasso = {"box": [], "lasso": [{"x": [1, 5, 3], "y": [1, 1, 4]}]}
     assert shape_from_selection(lasso, "b").shape == "polygon"
     with pytest.raises(InputError, match="nothing is selected"):
@@ -223,7 +223,7 @@ def test_filter_labels_sit_above_the_emission_curves():
 def test_a_drag_past_the_image_edge_stops_at_the_edge():
     box = {"box": [{"x": [120.0, 140.0], "y": [-5.0, 10.0]}], "lasso": []}
     shape = shape_from_selection(box, "corner", image_size=(128, 96))
-    assert shape.x == (120.0, 127.5) and shape.y == (-0.5, 10.0)
+    assert shape.x == (120.5, 128.0) and shape.y == (0.0, 10.5)
 
 
 def test_a_drawn_rectangle_has_the_text_form_with_the_same_pixels():

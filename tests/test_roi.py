@@ -76,7 +76,8 @@ def test_ellipse_area_close_to_pi_a_b():
 def test_roi_file_round_trip_with_named_labels(tmp_path):
     import tifffile
 
-    from probeplan.unmixing.roi import Roi, parse_roi, read_roi_file, write_roi_file
+    from probeplan.unmixing.roi import Roi, parse_roi
+    from probeplan.unmixing.roifile import read_roi_file, write_roi_file
 
     labels = np.zeros((20, 30), np.uint16)
     labels[2:6, 3:9] = 4
@@ -84,7 +85,8 @@ def test_roi_file_round_trip_with_named_labels(tmp_path):
     rois = [parse_roi("a:1,1,5,5"), parse_roi("b:ellipse:10,10,3,2"), parse_roi("c:polygon:0,0,6,0,3,5"),
             Roi("liver", label=4, labels_file="labels.tif")]
     write_roi_file(tmp_path / "rois.json", rois)
-    back, lab = read_roi_file(tmp_path / "rois.json")
+    f = read_roi_file(tmp_path / "rois.json")
+    back, lab = f.rois, f.labels
     assert [r.name for r in back] == ["a", "b", "c", "liver"]
     for r0, r1 in zip(rois, back, strict=True):
         np.testing.assert_array_equal(r0.mask((20, 30), labels), r1.mask((20, 30), lab))
@@ -93,14 +95,16 @@ def test_roi_file_round_trip_with_named_labels(tmp_path):
 
 def test_bad_roi_specs_and_files(tmp_path):
     from probeplan.errors import InputError
-    from probeplan.unmixing.roi import parse_roi, read_roi_file
+    from probeplan.unmixing.roi import parse_roi
+    from probeplan.unmixing.roifile import read_roi_file
 
     for spec in ("x:ellipse:1,2,3", "x:ellipse:1,2,0,3", "x:polygon:1,2,3,4", "x:polygon:a,b,c,d,e,f"):
         with pytest.raises(InputError, match="^roi: "):
             parse_roi(spec)
     with pytest.raises(InputError, match="covers no pixel"):
         parse_roi("x:ellipse:500,500,3,3", shape=(20, 20))
-    (tmp_path / "r.json").write_text('{"format": "probeplan-rois", "rois": [{"name": "a", "shape": "star"}]}')
+    (tmp_path / "r.json").write_text('{"format": "probeplan-rois", "version": 2, '
+                                     '"rois": [{"name": "a", "shape": "star"}]}')
     with pytest.raises(InputError, match="star"):
         read_roi_file(tmp_path / "r.json")
     (tmp_path / "r.json").write_text('{"rois": []}')

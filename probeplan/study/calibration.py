@@ -434,7 +434,8 @@ def calibrate_outputs(outputs: dict, calibration: Calibration, *, depth_mm: floa
     """
     from probeplan.io.atomic import readable_path, write_csv_atomic
     from probeplan.io.stacks import read_stack, write_stack
-    from probeplan.unmixing.roi import parse_rectangle, roi_statistics
+    from probeplan.unmixing.roi import roi_statistics
+    from probeplan.unmixing.roifile import regions_for_image
 
     abundance, info = read_stack(readable_path(outputs["abundance"]))  # written in this run: maybe still staged
     stderr, _ = read_stack(readable_path(outputs["stderr"]))
@@ -457,8 +458,8 @@ def calibrate_outputs(outputs: dict, calibration: Calibration, *, depth_mm: floa
                 pixel_size_um=info.pixel_size_um, dtype=np.uint8)
     counts = {FLAGS[code]: int(np.sum(res["flags"] == code)) for code in FLAGS}
     if rois:
-        roi_list = [parse_rectangle(r, shape=abundance.shape[-2:]) if isinstance(r, str) else r for r in rois]
-        rows = roi_statistics(res["concentration_uM"], roi_list, cal_names, background=background)
+        roi_list, _drawn, labels = regions_for_image(rois, abundance.shape[-2:])
+        rows = roi_statistics(res["concentration_uM"], roi_list, cal_names, labels=labels, background=background)
         for row in rows:
             line = calibration.row(row["component"])
             mean = row["mean"]

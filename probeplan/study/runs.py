@@ -79,7 +79,8 @@ class StudySettings:
     method : {"nnls", "ls", "wls"}
         Unmixing of the maps written.
     rois : tuple of str
-        Rectangles ``"name:x0,y0,x1,y1"``.
+        Rectangles ``"name:x0,y0,x1,y1"``, ellipses ``"name:ellipse:cx,cy,rx,ry"``, polygons
+        ``"name:polygon:x1,y1,..."`` (:func:`probeplan.unmixing.roi.parse_roi`).
     labels_path : Path or None
         A label TIFF (each non-zero label an ROI).
     roi_background : str
@@ -93,7 +94,8 @@ class StudySettings:
     write_maps : bool
         Write the abundance, standard-error and residual maps of every acquisition.
     roi_file : Path or None
-        An ROI file (:func:`probeplan.unmixing.roi.read_roi_file`), e.g. ``rois.json`` of an earlier run.
+        An ROI file (:mod:`probeplan.unmixing.roifile`: rectangles, ellipses, polygons, label
+        regions), e.g. one saved from the page or ``rois.json`` of an earlier run.
     auto_rois : tuple of str
         ``"NAME=COMPONENT"``: an ROI per acquisition from that component's abundance map by
         Otsu's threshold (:func:`probeplan.unmixing.roi.otsu_roi`).
@@ -201,7 +203,8 @@ def _correction(path, names, data_shape, where, what):
 
 def _rois(settings: StudySettings, shape_yx):
     """The drawn ROIs (rectangles, ellipses, polygons, label images, an ROI file) with their label image."""
-    from probeplan.unmixing.roi import parse_roi, read_roi_file, rois_from_labels
+    from probeplan.unmixing.roi import parse_roi, rois_from_labels
+    from probeplan.unmixing.roifile import read_roi_file
 
     labels = None
     out = []
@@ -218,7 +221,8 @@ def _rois(settings: StudySettings, shape_yx):
                               "give a label image of the stacks' Y x X size")
         out += rois_from_labels(labels)
     if settings.roi_file is not None:
-        file_rois, file_labels = read_roi_file(settings.roi_file)
+        roi_file = read_roi_file(settings.roi_file, image_size=(int(shape_yx[1]), int(shape_yx[0])))
+        file_rois, file_labels = roi_file.rois, roi_file.labels
         if file_labels is not None:
             if labels is not None:
                 raise input_error(str(settings.roi_file), "uses a label image and another label image was given",
@@ -297,7 +301,8 @@ def measure_acquisition(acq: Acquisition, references, settings: StudySettings = 
     if out_dir is not None and settings.write_maps:
         maps = _write_maps(Path(out_dir), acq, data, refs, settings, dark, flat, comps, pixel_size, spatial_axes, unit)
     if autos:
-        from probeplan.unmixing.roi import otsu_roi, write_roi_file
+        from probeplan.unmixing.roi import otsu_roi
+        from probeplan.unmixing.roifile import write_roi_file
 
         if maps is None:
             maps = unmix_stack(data, refs, method=settings.method, dark=dark, flat=flat, errors=False).abundances
@@ -322,7 +327,7 @@ def measure_acquisition(acq: Acquisition, references, settings: StudySettings = 
                     tifffile.imwrite(tmp, lab)
                 saved.append(Roi(roi.name, label=1, labels_file=fname))
             write_roi_file(Path(out_dir) / f"{acq.key}_auto_rois.json", saved,
-                           note=f"automatic ROIs of {acq.key}: Otsu's threshold on a component's abundance map")
+                           image_size=(int(shape_yx[1]), int(shape_yx[0])), note=f"automatic ROIs of {acq.key}: Otsu's threshold on a component's abundance map")
     C = data.shape[0]
     raw = data.reshape(C, -1, *shape_yx).astype(np.float64)
     y = raw - dark.reshape(raw.shape) if dark is not None else raw
@@ -425,7 +430,7 @@ def _write_shared_rois(path: Path, settings: StudySettings, shape_yx) -> Path:
     """The study's drawn ROIs as an ROI file, to reuse with ``--rois`` (automatic ROIs are per acquisition)."""
     from dataclasses import replace
 
-    from probeplan.unmixing.roi import write_roi_file
+    from probeplan.unmixing.roifile import write_roi_file
 
     rois, _ = _rois(replace(settings, auto_rois=()), shape_yx) if (settings.rois or settings.labels_path
                                                                   or settings.roi_file) else ([], None)
@@ -438,7 +443,9 @@ def _write_shared_rois(path: Path, settings: StudySettings, shape_yx) -> Path:
     rois = [replace(r, labels_file=label_file) if r.label is not None else r for r in rois]
     note = "the study's drawn ROIs" + (f"; automatic ROIs ({', '.join(settings.auto_rois)}) are in "
                                        "acquisitions/<acquisition>_auto_rois.json" if settings.auto_rois else "")
-    return write_roi_file(path, rois, note=note)
+    background = settings.roi_background if settings.roi_background in [r.name for r in rois] else None
+    return write_roi_file(path, rois, image_size=(int(shape_yx[1]), int(shape_yx[0])), background=background,
+                          note=note)
 
 
 def _settings_digest(settings: StudySettings, refs, unit: str) -> str:

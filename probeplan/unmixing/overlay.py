@@ -171,14 +171,15 @@ def _draw_rois(ax, shapes, *, colour: str, scale: float = 1.0) -> None:
     from matplotlib.patches import Ellipse, Polygon, Rectangle
 
     halo = [patheffects.withStroke(linewidth=2.6, foreground="black")]  # an outline seen on bright and dark maps
+    # shapes are in pixels from the image's top-left corner; imshow centres pixel i on i: move by half a pixel
     for s in shapes or ():
-        x0, y0, x1, y1 = (v / scale for v in s.box)
+        x0, y0, x1, y1 = (v / scale - 0.5 for v in s.box)
         if s.shape == "rectangle":
-            patch = Rectangle((x0 - 0.5, y0 - 0.5), x1 - x0 + 1, y1 - y0 + 1)
+            patch = Rectangle((x0, y0), x1 - x0, y1 - y0)
         elif s.shape == "ellipse":
-            patch = Ellipse(((x0 + x1) / 2, (y0 + y1) / 2), x1 - x0 + 1, y1 - y0 + 1)
+            patch = Ellipse(((x0 + x1) / 2, (y0 + y1) / 2), x1 - x0, y1 - y0)
         else:
-            patch = Polygon(np.column_stack([s.x, s.y]) / scale, closed=True)
+            patch = Polygon(np.column_stack([s.x, s.y]) / scale - 0.5, closed=True)
         patch.set(fill=False, edgecolor=colour, linewidth=1.2, linestyle="--", path_effects=halo)
         ax.add_patch(patch)
         ax.text(x0, y0 - 1.0, s.name, color=colour, fontsize=7, va="bottom", ha="left",

@@ -30,6 +30,7 @@ stacks, none for float stacks) and pixels with a NaN channel give NaN and are co
 
 from __future__ import annotations
 
+import os
 import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -671,8 +672,9 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     dark_path, flat_path : path-like, optional
         Dark frame and flat field stacks of the same shape as the stack.
     rois : sequence of str, Roi or RoiShape, optional
-        Rectangles ``"name:x0,y0,x1,y1"``, ROI objects, or drawn shapes
-        (:class:`probeplan.unmixing.shapes.RoiShape`: rectangle, ellipse, polygon).
+        Rectangles ``"name:x0,y0,x1,y1"``, ellipses and polygons in their text forms, the path
+        of an ROI file (``.json``, :mod:`probeplan.unmixing.roifile`), ROI objects, or drawn
+        shapes (:class:`probeplan.unmixing.shapes.RoiShape`: rectangle, ellipse, polygon).
     labels_path : path-like, optional
         A label TIFF (Y, X); each non-zero label is an ROI.
     roi_background : str
@@ -709,8 +711,8 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     from probeplan.io.stacks import StackWriter, open_stack
     from probeplan.unmixing.overlay import downsample_mean, overlay_factor, write_overlay_png
     from probeplan.unmixing.references import abundance_unit as unit_of_references
-    from probeplan.unmixing.roi import Roi, RoiAccumulator, parse_roi, rois_from_labels, write_roi_csv
-    from probeplan.unmixing.shapes import RoiShape, rectangle_from_spec, shapes_to_rois
+    from probeplan.unmixing.roi import RoiAccumulator, rois_from_labels, write_roi_csv
+    from probeplan.unmixing.roifile import regions_for_image
 
     if method not in METHODS:
         raise input_error("method", f"{method!r} is not known", f"choose one of {', '.join(METHODS)}")
@@ -746,20 +748,19 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
             raise input_error(str(labels_path), f"shape {labels.shape}, image is {(ny, nx)}",
                               "give a label image of the stack's Y x X size")
         roi_list += rois_from_labels(labels)
-    drawn = []  # outlines for the overlay PNG
-    for spec in rois or ():
-        if isinstance(spec, RoiShape):
-            drawn.append(spec)
-            roi_list += shapes_to_rois([spec], (ny, nx))
-            continue
-        roi = spec if isinstance(spec, Roi) else parse_roi(spec, shape=(ny, nx))
-        roi_list.append(roi)
-        if roi.rect is not None:
-            drawn.append(rectangle_from_spec(roi))
+    # text forms, an ROI file, drawn shapes or ROI objects (probeplan.unmixing.roifile); outlines for the overlay PNG
+    file_rois, drawn, file_labels = regions_for_image(rois or (), (ny, nx))
+    if file_labels is not None:
+        if labels is not None:
+            raise input_error("--roi", "the ROI file uses a label image and another label TIFF was given",
+                              "give one label image")
+        labels = file_labels
+    roi_list += file_rois
     paths = output_paths(out_path, roi=bool(roi_list))
     inputs = [info.path, *(r.info.path for r in aux.values()), *extra_inputs]
     if labels_path is not None:
         inputs.append(labels_path)
+    inputs += [Path(r) for r in rois or () if isinstance(r, (str, os.PathLike)) and str(r).lower().endswith(".json")]
     src = getattr(references, "source", None)
     if src and Path(str(src)).is_file():
         inputs.append(src)

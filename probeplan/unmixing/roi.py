@@ -5,9 +5,9 @@ excluded; x is the column, y the row), ellipses ``"name:ellipse:cx,cy,rx,ry"``, 
 ``"name:polygon:x1,y1,x2,y2,x3,y3[,...]"`` or the non-zero labels of a label image
 (``label_<n>``, or a name per label from an ROI file).  Ellipses and polygons are in pixel
 coordinates with the origin at the image's top-left corner: pixel ``(x, y)`` belongs to the
-ROI when its centre ``(x + 0.5, y + 0.5)`` lies inside (so a polygon tracing a rectangle's
-corners selects exactly that rectangle).  ROIs are saved to and read from an ROI file of our
-own (:func:`write_roi_file`, :func:`read_roi_file`; JSON, described there).  For stacks with
+ROI when its centre ``(x + 0.5, y + 0.5)`` lies inside or on the edge (so a polygon tracing a
+rectangle's corners selects exactly that rectangle); :func:`region_mask` is that one rule.
+ROIs are saved to and read from the ROI file (:mod:`probeplan.unmixing.roifile`).  For stacks with
 leading axes (Z or T), an ROI pools the pixels of all planes.  The target-to-background ratio
 (TBR) of ROI ``r`` for probe ``k`` is ``mean_r,k / mean_background,k`` where the background is
 the ROI named by ``background`` (default ``"background"``; common practice, no source).  NaN pixels (NaN or saturated
@@ -30,10 +30,8 @@ __all__ = [
     "Roi",
     "parse_roi",
     "parse_rectangle",
-    "read_roi_file",
-    "write_roi_file",
+    "region_mask",
     "otsu_roi",
-    "ROI_FILE_FORMAT",
     "rois_from_labels",
     "RoiAccumulator",
     "roi_statistics",
@@ -71,16 +69,12 @@ class Roi:
             if b > a:
                 m[a - r0 : b - r0, x0:x1] = True
             return m
-        if self.ellipse is not None or self.polygon is not None:
-            yy, xx = np.mgrid[r0:r1, 0:width]
-            xc, yc = xx + 0.5, yy + 0.5
-            if self.ellipse is not None:
-                cx, cy, rx, ry = self.ellipse
-                return ((xc - cx) / rx) ** 2 + ((yc - cy) / ry) ** 2 <= 1.0
-            from matplotlib.path import Path as _Path  # point-in-polygon from a maintained library
-
-            inside = _Path(np.asarray(self.polygon)).contains_points(np.column_stack([xc.ravel(), yc.ravel()]))
-            return inside.reshape(xc.shape)
+        if self.ellipse is not None:
+            cx, cy, rx, ry = self.ellipse
+            return region_mask("ellipse", (cx - rx, cx + rx), (cy - ry, cy + ry), r0, r1, width)
+        if self.polygon is not None:
+            xs, ys = zip(*self.polygon, strict=True)
+            return region_mask("polygon", xs, ys, r0, r1, width)
         if labels is None:
             raise input_error(f"ROI {self.name!r}", "is a label ROI but no label image was given",
                               "give the label TIFF with the ROI file")
@@ -89,6 +83,48 @@ class Roi:
     def mask(self, shape: tuple[int, int], labels=None) -> np.ndarray:
         """Boolean mask of the whole image (Y, X)."""
         return self.mask_rows(0, int(shape[0]), int(shape[1]), labels)
+
+
+def region_mask(shape: str, x, y, r0: int, r1: int, width: int) -> np.ndarray:
+    """The one pixel rule for drawn regions: boolean mask of rows ``r0:r1`` (all ``width`` columns).
+
+    Coordinates are pixels with the origin at the top-left corner of the image: pixel
+    ``(i, j)`` (column i, row j) covers ``i <= x < i + 1``, ``j <= y < j + 1``, and it belongs
+    to the region when its centre ``(i + 0.5, j + 0.5)`` lies inside or on the edge.
+
+    Parameters
+    ----------
+    shape : {"rectangle", "ellipse", "polygon"}
+    x, y : sequence of float
+        Two corners of the holding box (rectangle, ellipse: the ellipse inscribed in it) or
+        the polygon's vertices (closed automatically).
+
+    Examples
+    --------
+    >>> region_mask("rectangle", (1, 3), (0, 2), 0, 3, 4).astype(int)
+    array([[0, 1, 1, 0],
+           [0, 1, 1, 0],
+           [0, 0, 0, 0]])
+    """
+    yy, xx = np.mgrid[r0:r1, 0:width]
+    xc, yc = xx + 0.5, yy + 0.5
+    x0, x1, y0, y1 = min(x), max(x), min(y), max(y)
+    if shape == "rectangle":
+        return (xc >= x0) & (xc <= x1) & (yc >= y0) & (yc <= y1)
+    if shape == "ellipse":
+        cx, cy, rx, ry = (x0 + x1) / 2, (y0 + y1) / 2, (x1 - x0) / 2, (y1 - y0) / 2
+        if rx <= 0 or ry <= 0:
+            return np.zeros(xc.shape, bool)
+        return ((xc - cx) / rx) ** 2 + ((yc - cy) / ry) ** 2 <= 1.0 + 1e-12
+    if shape == "polygon":
+        from matplotlib.path import Path as _Path  # point-in-polygon from a maintained library
+
+        path = _Path(np.column_stack([np.asarray(x, float), np.asarray(y, float)]))
+        pts = np.column_stack([xc.ravel(), yc.ravel()])
+        # a small radius of either sign: a centre on the edge counts as inside whatever the vertices' order
+        inside = path.contains_points(pts, radius=1e-9) | path.contains_points(pts, radius=-1e-9)
+        return inside.reshape(xc.shape)
+    raise input_error("ROI", f"shape {shape!r} is not known", "use rectangle, ellipse or polygon")
 
 
 _SHAPED = re.compile(r"^\s*([^:]+?)\s*:\s*(ellipse|polygon)\s*:\s*(.+)$", re.IGNORECASE)
@@ -268,110 +304,6 @@ def roi_statistics(abundances, rois: Sequence[Roi], component_names: Sequence[st
 def write_roi_csv(path: str | os.PathLike, rows: Sequence[dict]):
     """Write ROI statistics rows as CSV (atomic)."""
     return write_csv_atomic(path, rows, ROI_COLUMNS)
-
-
-#: The ``format`` value of our ROI files.
-ROI_FILE_FORMAT = "probeplan-rois"
-
-
-def _roi_entry(roi: Roi) -> dict:
-    if roi.rect is not None:
-        x0, y0, x1, y1 = roi.rect
-        return {"name": roi.name, "shape": "rectangle", "x0": x0, "y0": y0, "x1": x1, "y1": y1}
-    if roi.ellipse is not None:
-        cx, cy, rx, ry = roi.ellipse
-        return {"name": roi.name, "shape": "ellipse", "cx": cx, "cy": cy, "rx": rx, "ry": ry}
-    if roi.polygon is not None:
-        return {"name": roi.name, "shape": "polygon", "points": [list(p) for p in roi.polygon]}
-    return {"name": roi.name, "shape": "label", "file": roi.labels_file, "label": roi.label}
-
-
-def write_roi_file(path: str | os.PathLike, rois: Sequence[Roi], *, note: str = "") -> os.PathLike:
-    """Write ROIs to our JSON ROI file (atomic), readable by :func:`read_roi_file`.
-
-    Layout::
-
-        {"format": "probeplan-rois", "version": 1, "coordinates": "...", "note": "...",
-         "rois": [{"name": "tumour", "shape": "rectangle", "x0": 32, "y0": 37, "x1": 45, "y1": 50},
-                  {"name": "node", "shape": "ellipse", "cx": 95, "cy": 38, "rx": 5, "ry": 5},
-                  {"name": "muscle", "shape": "polygon", "points": [[70, 83], [88, 83], [79, 100]]},
-                  {"name": "liver", "shape": "label", "file": "labels.tif", "label": 3}]}
-
-    Pixel coordinates, origin at the top-left image corner; ``file`` of a label ROI is
-    relative to the ROI file's folder.
-    """
-    from probeplan.io.atomic import write_json_atomic
-
-    return write_json_atomic(path, {
-        "format": ROI_FILE_FORMAT, "version": 1,
-        "coordinates": "pixels; x column, y row; origin at the top-left image corner; rectangles exclude x1, y1; "
-                       "a pixel is inside an ellipse or polygon when its centre (x + 0.5, y + 0.5) is",
-        "note": note, "rois": [_roi_entry(r) for r in rois]})
-
-
-def read_roi_file(path: str | os.PathLike) -> tuple[list[Roi], np.ndarray | None]:
-    """Read our JSON ROI file; returns the ROIs and the label image they use (or None).
-
-    Raises
-    ------
-    InputError
-        Not JSON, not an ROI file, an unknown shape, missing or bad coordinates, label ROIs
-        naming more than one label image, a label image that cannot be read.
-    """
-    import json
-    from pathlib import Path
-
-    from probeplan.io.text import read_text_input
-
-    path = Path(path)
-    where = str(path)
-    try:
-        data = json.loads(read_text_input(path, what="ROI file"))
-    except json.JSONDecodeError as exc:
-        raise input_error(where, f"is not JSON ({exc.msg}, line {exc.lineno})", "give an ROI file written by probeplan") from None
-    if not isinstance(data, dict) or data.get("format") != ROI_FILE_FORMAT or not isinstance(data.get("rois"), list):
-        raise input_error(where, f"is not a {ROI_FILE_FORMAT!r} file with a list 'rois'",
-                          "give an ROI file written by probeplan (e.g. DIR/rois.json of a study)")
-    rois: list[Roi] = []
-    label_files = set()
-    for i, e in enumerate(data["rois"]):
-        loc = f"{where}: rois[{i}]"
-        if not isinstance(e, dict) or not isinstance(e.get("name"), str) or not e["name"]:
-            raise input_error(loc, "has no name", "give each ROI a 'name'")
-        kind = e.get("shape")
-        try:
-            if kind == "rectangle":
-                spec = f"{e['name']}:{int(e['x0'])},{int(e['y0'])},{int(e['x1'])},{int(e['y1'])}"
-                rois.append(parse_rectangle(spec))
-            elif kind == "ellipse":
-                rois.append(_shaped(f"{e['name']}:ellipse:{e['cx']},{e['cy']},{e['rx']},{e['ry']}", None))
-            elif kind == "polygon":
-                pts = ",".join(f"{float(x)},{float(y)}" for x, y in e["points"])
-                rois.append(_shaped(f"{e['name']}:polygon:{pts}", None))
-            elif kind == "label":
-                label_files.add(str(e["file"]))
-                rois.append(Roi(e["name"], label=int(e["label"]), labels_file=str(e["file"])))
-            else:
-                raise input_error(loc, f"shape {kind!r} is not known", "use rectangle, ellipse, polygon or label")
-        except InputError:
-            raise
-        except (KeyError, TypeError, ValueError) as exc:
-            raise input_error(loc, f"misses or mistypes a coordinate ({exc})", "see the ROI file layout") from None
-    labels = None
-    if len(label_files) > 1:
-        raise input_error(where, f"label ROIs use {len(label_files)} label images", "use one label image per ROI file")
-    if label_files:
-        import tifffile
-
-        lf = Path(label_files.pop())
-        lf = lf if lf.is_absolute() else path.parent / lf
-        try:
-            labels = tifffile.imread(lf)
-        except Exception as exc:  # tifffile raises many kinds on damaged or missing files
-            raise input_error(str(lf), f"cannot be read as a label TIFF ({exc})", "give an integer label TIFF") from None
-        if labels.ndim != 2 or not np.issubdtype(labels.dtype, np.integer):
-            raise input_error(str(lf), f"shape {labels.shape}, dtype {labels.dtype}", "give a 2-D integer label TIFF")
-    return rois, labels
 
 
 def otsu_roi(abundance_map, name: str) -> tuple[Roi, np.ndarray]:

@@ -1,47 +1,36 @@
-"""Drawn regions of interest: named rectangles, ellipses and polygons, their pixel masks, and the ROI file.
+"""Drawn regions of interest: named rectangles, ellipses and polygons and their pixel masks.
 
-Coordinates are in pixels of the abundance map: ``x`` is the column, ``y`` the row, and
-pixel ``(x, y)`` is the square centred on integer coordinates (it spans ``x ± 0.5``), as
-matplotlib and plotly draw an image.  A pixel belongs to a shape when its centre lies
-inside (on the edge counts as inside).  A rectangle and an ellipse are given by the box
-that holds them (two corners); a polygon (freehand or clicked) by its vertices, closed
-automatically.
+Coordinates are in pixels of the abundance map with the origin at the top-left corner of
+the image: ``x`` runs along the columns, ``y`` down the rows, and pixel ``(i, j)`` covers
+``i <= x < i + 1``, ``j <= y < j + 1`` (its centre is ``(i + 0.5, j + 0.5)``).  A pixel
+belongs to a shape when its centre lies inside (on the edge counts as inside):
+:func:`probeplan.unmixing.roi.region_mask` is that one rule.  A rectangle and an ellipse are
+given by the box that holds them (two corners), so the text rectangle ``name:x0,y0,x1,y1``
+is the drawn rectangle with corners ``(x0, y0)`` and ``(x1, y1)``; a polygon (freehand or
+clicked) by its vertices, closed automatically.
 
-The ROI file is JSON (an example)::
-
-    {"kind": "probeplan ROIs", "version": 1, "image_size": [128, 96],
-     "background": "background",
-     "rois": [{"name": "tumour", "shape": "ellipse", "x": [20, 44], "y": [18, 40]},
-              {"name": "background", "shape": "rectangle", "x": [100, 127], "y": [0, 15]},
-              {"name": "liver", "shape": "polygon", "x": [60, 80, 75], "y": [50, 52, 70]}]}
-
-``image_size`` (width, height in pixels) is optional; when given, a file drawn on another
-image size is refused instead of silently applied.  The point-in-polygon test is
-matplotlib's :class:`matplotlib.path.Path` (no hand-written geometry).
+Charts and matplotlib draw pixel ``(i, j)`` centred on ``(i, j)``: a chart's coordinates are
+shifted by half a pixel on the way in (:func:`shape_from_selection`) and on the way out
+(:func:`probeplan.unmixing.overlay`).  Regions are saved and read with the ROI file
+(:mod:`probeplan.unmixing.roifile`).
 """
 
 from __future__ import annotations
 
-import json
 import math
-import os
 from collections.abc import Sequence
-from dataclasses import dataclass
-from pathlib import Path
+from dataclasses import dataclass, replace
 
 import numpy as np
 
-from probeplan.errors import InputError, input_error
-from probeplan.io.atomic import write_text_atomic
-from probeplan.unmixing.roi import Roi
+from probeplan.errors import input_error
+from probeplan.unmixing.roi import Roi, region_mask
 
-__all__ = ["SHAPES", "RoiShape", "parse_roi_text", "read_roi_file", "roi_file_text", "write_roi_file",
-           "shapes_to_rois", "rectangle_from_spec", "rectangle_spec", "shape_from_selection", "suggest_target_roi"]
+__all__ = ["SHAPES", "RoiShape", "roi_from_shape", "shape_from_roi", "shapes_to_rois", "rectangle_from_spec",
+           "rectangle_spec", "shape_from_selection", "suggest_target_roi"]
 
 #: The shapes a region can have.
 SHAPES = ("rectangle", "ellipse", "polygon")
-_FILE_KIND = "probeplan ROIs"
-_VERSION = 1
 
 
 @dataclass(frozen=True)
@@ -83,34 +72,19 @@ class RoiShape:
         return min(self.x), min(self.y), max(self.x), max(self.y)
 
     def mask(self, shape_yx: tuple[int, int]) -> np.ndarray:
-        """Boolean mask (Y, X): pixels whose centre lies inside the region.
+        """Boolean mask (Y, X): pixels whose centre lies inside the region (edge included).
 
         Examples
         --------
-        >>> RoiShape("r", "rectangle", (1, 2), (0, 1)).mask((3, 4)).astype(int)
+        >>> RoiShape("r", "rectangle", (1, 3), (0, 2)).mask((3, 4)).astype(int)
         array([[0, 1, 1, 0],
                [0, 1, 1, 0],
                [0, 0, 0, 0]])
-        >>> int(RoiShape("e", "ellipse", (0, 10), (0, 10)).mask((11, 11)).sum())  # a disc of radius 5: 81 centres
+        >>> int(RoiShape("e", "ellipse", (0.5, 10.5), (0.5, 10.5)).mask((11, 11)).sum())  # radius 5 round a centre
         81
         """
         ny, nx = int(shape_yx[0]), int(shape_yx[1])
-        yy, xx = np.mgrid[0:ny, 0:nx]
-        x0, y0, x1, y1 = self.box
-        if self.shape == "rectangle":
-            return (xx >= x0) & (xx <= x1) & (yy >= y0) & (yy <= y1)
-        if self.shape == "ellipse":
-            cx, cy, rx, ry = (x0 + x1) / 2, (y0 + y1) / 2, (x1 - x0) / 2, (y1 - y0) / 2
-            if rx <= 0 or ry <= 0:
-                return np.zeros((ny, nx), bool)
-            return ((xx - cx) / rx) ** 2 + ((yy - cy) / ry) ** 2 <= 1.0 + 1e-12
-        from matplotlib.path import Path as MplPath
-
-        path = MplPath(np.column_stack([self.x, self.y]))
-        pts = np.column_stack([xx.ravel(), yy.ravel()]).astype(float)
-        # a small positive radius counts points on the edge as inside (matplotlib's documented convention)
-        return path.contains_points(pts, radius=1e-9).reshape(ny, nx) | path.contains_points(pts, radius=-1e-9).reshape(
-            ny, nx)
+        return region_mask(self.shape, self.x, self.y, 0, ny, nx)
 
     def as_dict(self) -> dict:
         """The JSON form of one region."""
@@ -124,28 +98,76 @@ def _short(v: float) -> float | int:
 
 
 def rectangle_from_spec(roi: Roi) -> RoiShape:
-    """The drawn form of a text rectangle ``name:x0,y0,x1,y1`` (x1, y1 excluded): corners at the pixel centres."""
+    """The drawn form of a text rectangle ``name:x0,y0,x1,y1``: the same corners, the same pixels."""
     if roi.rect is None:
         raise input_error(f"ROI {roi.name!r}", "is not a rectangle", "give 'name:x0,y0,x1,y1'")
     x0, y0, x1, y1 = roi.rect
-    return RoiShape(roi.name, "rectangle", (x0, x1 - 1), (y0, y1 - 1))
+    return RoiShape(roi.name, "rectangle", (x0, x1), (y0, y1))
 
 
 def rectangle_spec(shape: RoiShape) -> str:
-    """A drawn rectangle as the text form ``name:x0,y0,x1,y1`` (pixels whose centre is inside; x1, y1 excluded).
+    """A drawn rectangle as the text form ``name:x0,y0,x1,y1`` (the pixels whose centre is inside).
 
     Only rectangles have a text form; other shapes are refused with the fix.
 
     Examples
     --------
     >>> rectangle_spec(RoiShape("t", "rectangle", (2.4, 9.6), (3, 7)))
-    't:3,3,10,8'
+    't:2,3,10,7'
     """
     if shape.shape != "rectangle":
         raise input_error(f"ROI {shape.name!r}", f"a {shape.shape} has no 'name:x0,y0,x1,y1' form",
                           "draw it as a rectangle for this use")
     x0, y0, x1, y1 = shape.box
-    return f"{shape.name}:{math.ceil(x0)},{math.ceil(y0)},{math.floor(x1) + 1},{math.floor(y1) + 1}"
+    # first and last pixel whose centre (i + 0.5) lies in [x0, x1]
+    return (f"{shape.name}:{math.ceil(x0 - 0.5)},{math.ceil(y0 - 0.5)},"
+            f"{math.floor(x1 - 0.5) + 1},{math.floor(y1 - 0.5) + 1}")
+
+
+def roi_from_shape(shape: RoiShape) -> Roi:
+    """The :class:`~probeplan.unmixing.roi.Roi` (geometry kept) of a drawn shape: the same pixels.
+
+    A rectangle with whole-pixel corners becomes a text rectangle, one with other corners a
+    four-vertex polygon; an ellipse keeps its centre and radii.
+
+    Examples
+    --------
+    >>> roi_from_shape(RoiShape("t", "rectangle", (2, 9), (3, 7))).rect
+    (2, 3, 9, 7)
+    >>> roi_from_shape(RoiShape("e", "ellipse", (2, 8), (4, 6))).ellipse
+    (5.0, 5.0, 3.0, 1.0)
+    """
+    x0, y0, x1, y1 = (float(v) for v in shape.box)
+    if shape.shape == "rectangle":
+        if all(v.is_integer() for v in (x0, y0, x1, y1)) and x1 > x0 and y1 > y0:
+            return Roi(shape.name, rect=(int(x0), int(y0), int(x1), int(y1)))
+        return Roi(shape.name, polygon=((x0, y0), (x1, y0), (x1, y1), (x0, y1)))
+    if shape.shape == "ellipse":
+        return Roi(shape.name, ellipse=((x0 + x1) / 2, (y0 + y1) / 2, (x1 - x0) / 2, (y1 - y0) / 2))
+    return Roi(shape.name, polygon=tuple(zip((float(v) for v in shape.x), (float(v) for v in shape.y), strict=True)))
+
+
+def shape_from_roi(roi: Roi) -> RoiShape:
+    """The drawn shape of a rectangle, ellipse or polygon :class:`~probeplan.unmixing.roi.Roi`.
+
+    Label ROIs (and masks without geometry) have no shape and are refused with the fix.
+
+    Examples
+    --------
+    >>> from probeplan.unmixing.roi import parse_roi
+    >>> shape_from_roi(parse_roi("node:ellipse:40,30,8,6"))
+    RoiShape(name='node', shape='ellipse', x=(32.0, 48.0), y=(24.0, 36.0))
+    """
+    if roi.rect is not None:
+        return rectangle_from_spec(roi)
+    if roi.ellipse is not None:
+        cx, cy, rx, ry = (float(v) for v in roi.ellipse)
+        return RoiShape(roi.name, "ellipse", (cx - rx, cx + rx), (cy - ry, cy + ry))
+    if roi.polygon is not None:
+        return RoiShape(roi.name, "polygon", tuple(float(p[0]) for p in roi.polygon),
+                        tuple(float(p[1]) for p in roi.polygon))
+    raise input_error(f"ROI {roi.name!r}", "is a label or a mask, not a drawn shape",
+                      "give it as a rectangle, ellipse or polygon")
 
 
 def shapes_to_rois(shapes: Sequence[RoiShape], shape_yx: tuple[int, int]) -> list[Roi]:
@@ -160,84 +182,8 @@ def shapes_to_rois(shapes: Sequence[RoiShape], shape_yx: tuple[int, int]) -> lis
         if not m.any():
             raise input_error(f"ROI {s.name!r}", f"holds no pixel of the {shape_yx[1]} x {shape_yx[0]} image",
                               "draw it over the image")
-        rois.append(Roi(s.name, pixel_mask=m))
+        rois.append(replace(roi_from_shape(s), pixel_mask=m))
     return rois
-
-
-def roi_file_text(shapes: Sequence[RoiShape], *, image_size: tuple[int, int] | None = None,
-                  background: str | None = None) -> str:
-    """The ROI file (JSON) for these regions; ``image_size`` is (width, height) in pixels."""
-    doc: dict = {"kind": _FILE_KIND, "version": _VERSION}
-    if image_size is not None:
-        doc["image_size"] = [int(image_size[0]), int(image_size[1])]
-    if background:
-        doc["background"] = background
-    # one region per line: short enough to read and to compare in version control
-    head = json.dumps(doc, ensure_ascii=False)[:-1]
-    body = ",\n  ".join(json.dumps(s.as_dict(), ensure_ascii=False) for s in shapes)
-    return f'{head}, "rois": [\n  {body}\n]}}\n' if shapes else f'{head}, "rois": []}}\n'
-
-
-def write_roi_file(path: str | os.PathLike, shapes: Sequence[RoiShape], **kwargs) -> Path:
-    """Write the ROI file (atomic); keywords as :func:`roi_file_text`."""
-    return write_text_atomic(path, roi_file_text(shapes, **kwargs))
-
-
-def parse_roi_text(text: str, *, source: str = "ROI file",
-                   image_size: tuple[int, int] | None = None) -> tuple[list[RoiShape], str | None]:
-    """Regions and the background name from the ROI file's text.
-
-    ``image_size`` (width, height) is checked against the file's, when both are known.
-
-    Examples
-    --------
-    >>> shapes, bg = parse_roi_text(roi_file_text([RoiShape("t", "ellipse", (2, 8), (2, 6))], background="t"))
-    >>> shapes[0].shape, shapes[0].x, bg
-    ('ellipse', (2.0, 8.0), 't')
-    """
-    try:
-        doc = json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise input_error(source, f"not JSON (line {exc.lineno}: {exc.msg})", "give a probeplan ROI file") from None
-    if not isinstance(doc, dict) or doc.get("kind") != _FILE_KIND:
-        raise input_error(source, "is not a probeplan ROI file (no \"kind\": \"probeplan ROIs\")",
-                          "save the regions from probeplan, or write the file as documented")
-    if doc.get("version") != _VERSION:
-        raise input_error(source, f"version {doc.get('version')!r} is not known", f"give a version {_VERSION} file")
-    size = doc.get("image_size")
-    if size is not None and image_size is not None and [int(v) for v in size] != [int(v) for v in image_size]:
-        raise input_error(source, f"was drawn on a {size[0]} x {size[1]} image, this one is "
-                          f"{image_size[0]} x {image_size[1]}", "draw the regions on this image")
-    items = doc.get("rois")
-    if not isinstance(items, list):
-        raise input_error(source, "has no list \"rois\"", "give the regions as a list")
-    shapes = []
-    for i, item in enumerate(items):
-        where = f"{source}: rois[{i}]"
-        if not isinstance(item, dict):
-            raise input_error(where, "is not an object", "give name, shape, x and y")
-        try:
-            xs = tuple(float(v) for v in item["x"])
-            ys = tuple(float(v) for v in item["y"])
-            shapes.append(RoiShape(str(item["name"]), str(item["shape"]), xs, ys))
-        except KeyError as exc:
-            raise input_error(where, f"has no {exc.args[0]!r}", "give name, shape, x and y") from None
-        except InputError:
-            raise
-        except (TypeError, ValueError):
-            raise input_error(where, "coordinates are not numbers", "give x and y as lists of numbers") from None
-    background = doc.get("background")
-    return shapes, (str(background) if background is not None else None)
-
-
-def read_roi_file(path: str | os.PathLike, *, image_size: tuple[int, int] | None = None):
-    """Regions and background name from a ROI file (see :func:`parse_roi_text`)."""
-    p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8-sig")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise input_error(str(p), f"cannot be read ({exc.__class__.__name__})", "give a UTF-8 ROI file") from None
-    return parse_roi_text(text, source=str(p), image_size=image_size)
 
 
 def shape_from_selection(selection: dict, name: str, *, shape: str = "rectangle", scale: float = 1.0,
@@ -247,20 +193,23 @@ def shape_from_selection(selection: dict, name: str, *, shape: str = "rectangle"
     ``selection`` holds ``"box"`` and ``"lasso"`` lists whose entries carry ``"x"`` and
     ``"y"`` lists (two box corners, or the lasso's vertices), as Streamlit's plotly chart
     selection gives them; the last drawn entry is used.  A box becomes a rectangle or an
-    ellipse (``shape``); a lasso becomes a polygon.  ``scale`` multiplies the chart's
-    coordinates (a chart of a downsampled map).  With ``image_size`` (width, height) the
-    points are clipped to the image (a drag that runs past its edge stops at the edge).
+    ellipse (``shape``); a lasso becomes a polygon.  The chart draws pixel ``(i, j)``
+    centred on ``(i, j)`` (plotly's and matplotlib's image convention): its coordinates are
+    moved by half a pixel to the file's, whose origin is the image's top-left corner.
+    ``scale`` is the number of image pixels per chart pixel (a chart of a downsampled map).
+    With ``image_size`` (width, height) the points are clipped to the image (a drag that
+    runs past its edge stops at the edge).
 
     Examples
     --------
     >>> shape_from_selection({"box": [{"x": [2.2, 9.8], "y": [7, 3]}], "lasso": []}, "t", shape="ellipse")
-    RoiShape(name='t', shape='ellipse', x=(2.2, 9.8), y=(3.0, 7.0))
+    RoiShape(name='t', shape='ellipse', x=(2.7, 10.3), y=(3.5, 7.5))
     """
     def clip(values, n_px):
-        vals = [float(v) * scale for v in values]
+        vals = [(float(v) + 0.5) * scale for v in values]
         if n_px is None:
             return tuple(vals)
-        return tuple(min(max(v, -0.5), n_px - 0.5) for v in vals)
+        return tuple(min(max(v, 0.0), float(n_px)) for v in vals)
 
     nx, ny = image_size if image_size is not None else (None, None)
     lasso = [s for s in (selection or {}).get("lasso") or [] if s.get("x")]
@@ -317,10 +266,10 @@ def suggest_target_roi(abundance_map, *, name: str = "target", level: float = 0.
     yy, xx = np.nonzero(region)
     if yy.size < 3:
         return None
-    pts = np.column_stack([xx, yy]).astype(float)
+    pts = np.column_stack([xx, yy]).astype(float) + 0.5  # the pixels' centres
     try:
         hull = ConvexHull(pts)
     except QhullError:  # the pixels lie on one line
-        return RoiShape(name, "rectangle", (float(xx.min()), float(xx.max())), (float(yy.min()), float(yy.max())))
+        return RoiShape(name, "rectangle", (float(xx.min()), float(xx.max()) + 1), (float(yy.min()), float(yy.max()) + 1))
     v = pts[hull.vertices]
     return RoiShape(name, "polygon", tuple(v[:, 0]), tuple(v[:, 1]))

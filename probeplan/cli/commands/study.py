@@ -28,11 +28,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="unmixing of the maps written (ROI means are always unconstrained least squares)")
     parser.add_argument("--roi", action="append", default=[],
                         help="ROI 'name:x0,y0,x1,y1' (pixels, end excluded), 'name:ellipse:cx,cy,rx,ry', "
-                             "'name:polygon:x1,y1,x2,y2,...' or a label TIFF; repeatable")
-    parser.add_argument("--roi-background", default="background", help="name of the background ROI (default background)")
+                             "'name:polygon:x1,y1,x2,y2,...', an ROI file (.json) or a label TIFF; repeatable")
+    parser.add_argument("--roi-background", default=None,
+                        help="name of the background ROI (default: the ROI file's background, else background)")
     parser.add_argument("--rois", default=None, metavar="FILE",
-                        help="ROI file (JSON, e.g. DIR/rois.json of an earlier run) with rectangles, ellipses, polygons, "
-                             "named labels")
+                        help="ROI file (JSON: saved from the page, or DIR/rois.json of an earlier run) with rectangles, "
+                             "ellipses, polygons, named labels")
     parser.add_argument("--auto-roi", action="append", default=[], metavar="NAME=COMPONENT",
                         help="an ROI per acquisition: pixels of COMPONENT's map above Otsu's threshold; repeatable")
     parser.add_argument("--dark", help="dark-frame stack, subtracted (channels matched by name)")
@@ -76,10 +77,17 @@ def run(args: argparse.Namespace) -> int:
         v = getattr(args, name)
         if not (math.isfinite(v) and (v > 0 if name == "gain" else v >= 0)):
             raise input_error(f"--{name.replace('_', '-')}", f"got {v}", "give a finite positive value")
+    from probeplan.unmixing.roifile import background_name, read_roi_file
+
     labels = [r for r in args.roi if r.lower().endswith(_LABEL_SUFFIXES)]
-    rects = [r for r in args.roi if not r.lower().endswith(_LABEL_SUFFIXES)]
+    roi_files = [r for r in args.roi if r.lower().endswith(".json")] + ([args.rois] if args.rois else [])
+    rects = [r for r in args.roi if not r.lower().endswith((*_LABEL_SUFFIXES, ".json"))]
     if len(labels) > 1:
         raise input_error("--roi", f"{len(labels)} label images given", "give at most one label TIFF")
+    if len(roi_files) > 1:
+        raise input_error("--rois", f"{len(roi_files)} ROI files given", "give one ROI file (it holds every region)")
+    args.roi_background = background_name(roi_files, args.roi_background)
+    file_names = [r.name for r in read_roi_file(roi_files[0]).regions] if roi_files else []
     planned = None
     if args.plan:
         from probeplan.study.plan import load_plan
@@ -106,7 +114,7 @@ def run(args: argparse.Namespace) -> int:
             if missing:
                 raise input_error(args.references, f"no column for the plan's probe(s) {missing}",
                                   "name the reference columns as the plan names its probes")
-            if args.roi_background not in [r.split(":")[0].strip() for r in rects] and not labels:
+            if args.roi_background not in [r.split(":")[0].strip() for r in rects] + file_names and not labels:
                 raise input_error("--roi", f"no background ROI {args.roi_background!r}",
                                   "the closure with --plan compares target and background ROIs: add one")
     settings = StudySettings(
@@ -114,7 +122,7 @@ def run(args: argparse.Namespace) -> int:
         roi_background=args.roi_background, dark_path=Path(args.dark) if args.dark else None,
         flat_path=Path(args.flat) if args.flat else None, channel_axis=args.channel_axis,
         gain_e_per_count=args.gain, read_noise_e=args.read_noise, write_maps=not args.no_maps,
-        roi_file=Path(args.rois) if args.rois else None, auto_rois=tuple(args.auto_roi),
+        roi_file=Path(roi_files[0]) if roi_files else None, auto_rois=tuple(args.auto_roi),
     )
     references = args.references
     if args.control:

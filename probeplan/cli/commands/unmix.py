@@ -44,8 +44,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--read-noise", type=float, default=0.0, help="camera read noise, e- rms (default 0)")
     parser.add_argument("--roi", action="append", default=[],
                         help="ROI 'name:x0,y0,x1,y1' (pixels, end excluded), 'name:ellipse:cx,cy,rx,ry', "
-                             "'name:polygon:x1,y1,x2,y2,...' or a label TIFF; repeatable")
-    parser.add_argument("--roi-background", default="background", help="name of the background ROI (default background)")
+                             "'name:polygon:x1,y1,x2,y2,...', an ROI file (.json, e.g. saved from the page) or a "
+                             "label TIFF; repeatable")
+    parser.add_argument("--roi-background", default=None,
+                        help="name of the background ROI (default: the ROI file's background, else background)")
     parser.add_argument("--memory-mb", type=float, default=None, help="working-memory bound in MiB (default 256)")
     parser.add_argument("--scheduler", default=None, help="address of a running dask.distributed scheduler")
     parser.add_argument("--resume", action="store_true",
@@ -81,6 +83,7 @@ def _settings_digest(args, refs) -> str:
     settings = {
         "method": args.method, "channel_axis": args.channel_axis, "offset": args.offset,
         "saturation": args.saturation, "gain": args.gain, "read_noise": args.read_noise, "roi": args.roi,
+        "roi_files": {r: _sha256(r) for r in args.roi if r.lower().endswith(".json")},
         "roi_background": args.roi_background, "components": list(refs.component_names),
         "channels": list(refs.channel_names or []), "matrix": refs.matrix.tolist(),
         "dark": _sha256(args.dark) if args.dark else None, "flat": _sha256(args.flat) if args.flat else None,
@@ -194,6 +197,9 @@ def run(args: argparse.Namespace) -> int:
                               f"references' components {list(refs.component_names)}",
                               "use the calibration made with these probes (the names must match)")
     rect_rois = [r for r in args.roi if not r.lower().endswith(_STACK_SUFFIXES)]
+    from probeplan.unmixing.roifile import background_name
+
+    args.roi_background = background_name(rect_rois, args.roi_background)
     label_files = [r for r in args.roi if r.lower().endswith(_STACK_SUFFIXES)]
     if len(label_files) > 1:
         raise input_error("--roi", f"{len(label_files)} label images given", "give at most one label TIFF")
