@@ -83,6 +83,8 @@ _LAZY = {
     "read_references_csv": "probeplan.unmixing.references",
     "reference_spectra": "probeplan.unmixing.references",
     "roi_statistics": "probeplan.unmixing.roi",
+    "read_roi_file": "probeplan.unmixing.roifile",
+    "write_roi_file": "probeplan.unmixing.roifile",
     "read_stack": "probeplan.io.stacks",
     "write_stack": "probeplan.io.stacks",
     # phantoms: Mie theory and recipes

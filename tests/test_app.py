@@ -712,3 +712,121 @@ def test_unmix_with_a_calibration_gives_maps_in_micromolar(tmp_path):
     assert row["component"] == "dotA"
     assert row["pixels in range"] == f"{100 * 100 / (48 * 40):.1f} %"
     assert row["pixels below lod"] == f"{100 * (48 * 40 - 100) / (48 * 40):.1f} %"
+
+
+def _skimage_mask(shape_yx, kind: str, x, y) -> np.ndarray:
+    """Reference pixel sets from scikit-image's ``skimage.draw`` (pixel (r, c) centred on (r, c), so a vertex
+    (x, y) of the ROI file, whose origin is the image's corner, is (y - 0.5, x - 0.5) there)."""
+    from skimage.draw import ellipse, polygon
+
+    m = np.zeros(shape_yx, bool)
+    if kind == "ellipse":
+        rr, cc = ellipse((y[0] + y[1]) / 2 - 0.5, (x[0] + x[1]) / 2 - 0.5, (y[1] - y[0]) / 2, (x[1] - x[0]) / 2,
+                         shape=shape_yx)
+    else:
+        rr, cc = polygon(np.asarray(y) - 0.5, np.asarray(x) - 0.5, shape_yx)
+    m[rr, cc] = True
+    return m
+
+
+def test_drawn_ellipse_and_polygon_are_measured_and_reach_the_study_view(tmp_path):
+    """An ROI file of the current form with an ellipse and a polygon across the edge of dot A's square: the
+    page's means are those of the scikit-image masks; the Study view runs a study with the same regions."""
+    from probeplan.unmixing.roifile import roi_file_text
+    from probeplan.unmixing.shapes import RoiShape
+
+    stack, csv, truth, _ = _test_stack(tmp_path)
+    (tmp_path / "refs.csv").write_bytes(csv)
+    ell_x, ell_y = (5.7, 14.3), (9.4, 20.8)
+    poly_x, poly_y = (8.2, 19.7, 12.6), (3.3, 11.9, 17.1)
+    shapes = [RoiShape("node", "ellipse", ell_x, ell_y), RoiShape("edge", "polygon", poly_x, poly_y),
+              RoiShape("background", "rectangle", (40, 48), (0, 5))]
+    at = _view(_app(), "unmix")
+    at.file_uploader(key="up_stack").set_value(("stack.tif", stack, "image/tiff"))
+    at.file_uploader(key="up_refs").set_value(("refs.csv", csv, "text/csv"))
+    at.button(key="btn_unmix").click().run()
+    text = roi_file_text(shapes, image_size=(48, 40), background="background")
+    at.file_uploader(key="up_rois").set_value(("rois.json", text.encode(), "application/json")).run()
+    _clean(at)
+    assert list(_table(at)["shape"]) == ["ellipse", "polygon", "rectangle"]
+    at.button(key="btn_roi_measure").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    rows = _table(at, -1)
+    refs_masks = {"node": _skimage_mask((40, 48), "ellipse", ell_x, ell_y),
+                  "edge": _skimage_mask((40, 48), "polygon", poly_x, poly_y)}
+    for name, m in refs_masks.items():
+        r = rows[(rows["region"] == name) & (rows["component"] == "dotA")].iloc[0]
+        assert int(r["pixels"]) == int(m.sum())
+        # the mask crosses the square's edge: the mean depends on exactly which pixels are in
+        assert 50 < truth[0][m].mean() < 1000
+        assert float(r["mean abundance (counts)"]) == pytest.approx(float(truth[0][m].mean()), rel=1e-3)
+    # the Study view takes the regions drawn in the unmix view
+    (tmp_path / "study.csv").write_text("animal,group,time_h,file\nm1,a,1,stack.tif\nm2,a,2,stack.tif\n")
+    at = _view(at, "study")
+    assert any(RESEARCH_USE_CAUTION in w.value for w in at.warning)
+    at.text_input(key="w_study_csv").set_value(str(tmp_path / "study.csv"))
+    at.text_input(key="w_study_refs").set_value(str(tmp_path / "refs.csv"))
+    at.text_area(key="w_study_rois").set_value("")
+    at.checkbox(key="w_study_use_drawn").check()
+    at.button(key="btn_study_run").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    m = at.session_state["study_tables"]["measurements"]
+    for name, mask in refs_masks.items():
+        got = m[(m["roi"] == name) & (m["component"] == "dotA")]["mean"]
+        assert np.allclose(got, truth[0][mask].mean(), rtol=1e-3)
+    # the same regions as an uploaded ROI file, with a bad file refused in one line
+    at.checkbox(key="w_study_use_drawn").uncheck()
+    bad = text.replace('"shape": "polygon"', '"shape": "star"').encode()
+    at.file_uploader(key="up_study_rois").set_value(("rois.json", bad, "application/json"))
+    at.button(key="btn_study_run").click().run()
+    _clean(at)
+    assert any("rois.json: rois[1].shape: 'star' is not known" in e for e in _errors(at)), _errors(at)
+
+
+def test_study_view_shows_predicted_beside_measured_and_the_refined_plan(tmp_path):
+    """The demo study (ours, invented) run from the Study view with its plan: the closure table of
+    probeplan.study.closure, the demo's tumour TBR for probe A (3.8, as tests/test_closure.py finds) and
+    the refined plan; then the same from uploaded result tables."""
+    import shutil
+
+    from probeplan.demo import demo_folder
+    from probeplan.study.plan import load_plan, parse_plan_text
+
+    folder = demo_folder()
+    for name in ("stack.tif", "dark.tif", "references.csv", "plan.toml"):
+        shutil.copy(folder / name, tmp_path / name)
+    plan = load_plan(tmp_path / "plan.toml")
+    (tmp_path / "study.csv").write_text("animal,group,time_h,file\nm1,vehicle,1,stack.tif\nm2,vehicle,1,stack.tif\n")
+    at = _view(_app(), "study")
+    at.text_input(key="w_study_csv").set_value(str(tmp_path / "study.csv"))
+    at.text_input(key="w_study_refs").set_value(str(tmp_path / "references.csv"))
+    at.text_input(key="w_study_dark").set_value(str(tmp_path / "dark.tif"))
+    at.text_area(key="w_study_rois").set_value("\n".join(plan.analysis["rois"]))
+    at.text_input(key="w_study_plan").set_value(str(tmp_path / "plan.toml"))
+    at.button(key="btn_study_run").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    assert any("Predicted beside measured" in h.value for h in at.subheader)
+    table = next(df.value for df in at.dataframe if "what it means" in df.value.columns)
+    assert len(table) == 15 and set(table["quantity"]) >= {"signal", "background", "sbr", "tbr", "noise"}
+    tbr = table[(table["component"] == "probe A (700)") & (table["quantity"] == "tbr")].iloc[0]
+    assert float(tbr["measured"]) == pytest.approx(3.8, abs=0.2)
+    assert "TBR" in tbr["what it means"] or "ratio" in tbr["what it means"]
+    labels = [b.label for b in at.get("download_button")]
+    assert "Refined plan for the next study (TOML)" in labels and "closure.csv" in labels
+    refined = at.session_state["study_tables"]["closure"].refined_plan_toml
+    assert parse_plan_text(refined, source="refined").target["uptake_ratio"] > 1
+    # the result tables uploaded with the plan and the references give the same table
+    measurements = at.session_state["study_tables"]["measurements"].to_csv(index=False).encode()
+    at.radio(key="w_study_source").set_value("upload").run()
+    at.file_uploader(key="up_study_measurements").set_value(("measurements.csv", measurements, "text/csv"))
+    at.file_uploader(key="up_study_plan").set_value(("plan.toml", (tmp_path / "plan.toml").read_bytes(),
+                                                     "application/toml"))
+    at.file_uploader(key="up_study_refs").set_value(("references.csv", (tmp_path / "references.csv").read_bytes(),
+                                                     "text/csv")).run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    again = next(df.value for df in at.dataframe if "what it means" in df.value.columns)
+    assert list(again["measured"]) == list(table["measured"])

@@ -2,8 +2,9 @@
 
 Holds the batched NNLS and least-squares kernels (``nnls``), the stack and file pipeline with
 dark/flat correction, standard errors and outputs (``pipeline``), reference spectra from CSV or
-control stacks (``references``), regions of interest (``roi``), overlay images (``overlay``) and
-seeded synthetic stacks from the forward model (``synthetic``).
+control stacks (``references``), regions of interest (``roi``: statistics and the one pixel rule;
+``shapes``: drawn rectangles, ellipses and polygons; ``roifile``: the one ROI file format), overlay
+images (``overlay``) and seeded synthetic stacks from the forward model (``synthetic``).
 It may import :mod:`probeplan.model`, :mod:`probeplan.io` and the foundations; never the study,
 report or command line.
 """

@@ -111,7 +111,8 @@ class RoiFile:
 
 
 def _number(v: float) -> float | int:
-    r = round(float(v), 3)
+    """Whole numbers without ".0"; others as Python writes them (the shortest text that reads back exactly)."""
+    r = float(v)
     return int(r) if r.is_integer() else r
 
 
