@@ -225,7 +225,7 @@ def _upload_form() -> None:
     up_m = c[0].file_uploader("measurements (CSV)", type=["csv"], key="up_study_measurements")
     up_g = c[1].file_uploader("group comparisons (CSV, optional)", type=["csv"], key="up_study_groups")
     up_k = c[2].file_uploader("kinetics (CSV, optional)", type=["csv"], key="up_study_kinetics")
-    _closure_form(uploads_references=True)
+    _closure_form(uploads_references=True)  # after the result tables: they come first on the page
     if up_m is None:
         st.info("Upload the study's measurements.csv to see it.")
         ss.pop("study_tables", None)
@@ -314,7 +314,45 @@ def study_view() -> None:
             cols.update({c_: c_.replace("_", " ") for c_ in k.columns if c_.endswith(("_low", "_high"))})
             st.dataframe(_shown(k, cols), hide_index=True, width="stretch")
         _closure_section(tables)
+        _concentration_section(tables)
         show_notes(list(dict.fromkeys(tables.get("notes") or [])), title="How the study was measured")
+
+
+@st.cache_data(show_spinner=False, max_entries=8)
+def _measurements_uM(measurements, calibration: bytes, name: str, depth_mm: float | None):
+    """:func:`probeplan.study.calibration.calibrate_measurements` of an uploaded calibration.csv: (table, notes)."""
+    import tempfile
+
+    from probeplan.study.calibration import calibrate_measurements, read_calibration_csv
+
+    notes: list[str] = []
+    with tempfile.TemporaryDirectory(prefix="probeplan-calibration-") as d:
+        path = Path(d) / safe_name(name, "calibration.csv")
+        path.write_bytes(calibration)  # a private temporary copy for the reader, not an output
+        with captured_warnings(notes):
+            table = calibrate_measurements(measurements, read_calibration_csv(path), depth_mm=depth_mm)
+    return table, notes
+
+
+def _concentration_section(tables: dict) -> None:
+    """The measurements in µM with a phantom calibration (as ``probeplan study --calibration`` writes them)."""
+    up = st.file_uploader("calibration.csv (from 'probeplan calibrate' or the unmix view; optional: the "
+                          "measurements in µM)", type=["csv"], key="up_study_calibration")
+    if up is None:
+        return
+    table, notes = _measurements_uM(tables["measurements"], up.getvalue(), up.name or "calibration.csv", _depth())
+    st.subheader("Measurements in µM")
+    st.caption("Each region's mean and standard error converted with the calibration line; 'flag' says whether the "
+               "value lies in the calibrated range, below the LOD or above the range. The depth check uses the "
+               "target depth given above when it is known.")
+    cols = [c for c in ("animal", "group", "time_h", "roi", "component", "mean", "se", "tbr", "unit", "flag")
+            if c in table.columns]
+    st.dataframe(_shown(table, {c: c.replace("_", " ") for c in cols}), hide_index=True, width="stretch",
+                 key="df_study_uM")
+    st.download_button("measurements_uM.csv", table.to_csv(index=False), file_name="measurements_uM.csv",
+                       mime="text/csv", key="dl_study_uM")
+    for n in dict.fromkeys(notes):
+        st.caption(f"note: {n}")
 
 
 def _closure_section(tables: dict) -> None:

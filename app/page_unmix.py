@@ -188,18 +188,19 @@ def _draw_chart(result: dict, component: int) -> tuple[dict | None, int]:
     hi = top if top > lo else lo + 1.0
     norm = np.clip((np.nan_to_num(small, nan=lo) - lo) / (hi - lo), 0.0, 1.0)
     rgb = (colormaps["magma"](norm)[..., :3] * 255).astype(np.uint8)
-    fig = go.Figure(go.Image(z=rgb, hoverinfo="skip"))
+    # the chart's axes use the ROI file's coordinates: origin at the image's top-left corner, so pixel i is
+    # centred on i + 0.5 (x0, y0) and a selection needs no half-pixel shift (offset=0 below)
+    fig = go.Figure(go.Image(z=rgb, x0=0.5, y0=0.5, hoverinfo="skip"))
     # An invisible point on every (other) pixel: plotly's box and lasso select act on points, not on heatmaps.
     step = max(1, round(max(nx, ny) / 100))
-    gy, gx = np.mgrid[0:ny:step, 0:nx:step]
+    gy, gx = np.mgrid[0:ny:step, 0:nx:step] + 0.5
     fig.add_trace(go.Scattergl(x=gx.ravel(), y=gy.ravel(), mode="markers", marker={"size": 4, "opacity": 0.0},
                                hoverinfo="skip", showlegend=False))
-    # regions are in pixels from the image's top-left corner; the chart centres its pixel i on i
     for s in _regions():
-        x0, y0, x1, y1 = (v / factor - 0.5 for v in s.box)
+        x0, y0, x1, y1 = (v / factor for v in s.box)
         if s.shape == "polygon":
-            xs = [v / factor - 0.5 for v in (*s.x, s.x[0])]
-            ys = [v / factor - 0.5 for v in (*s.y, s.y[0])]
+            xs = [v / factor for v in (*s.x, s.x[0])]
+            ys = [v / factor for v in (*s.y, s.y[0])]
             fig.add_trace(go.Scatter(x=xs, y=ys, mode="lines", line={"color": "white", "dash": "dash"},
                                      hoverinfo="skip", showlegend=False))
         else:
@@ -207,9 +208,10 @@ def _draw_chart(result: dict, component: int) -> tuple[dict | None, int]:
                           line={"color": "white", "dash": "dash"})
         fig.add_annotation(x=x0, y=y0, text=s.name, showarrow=False, xanchor="left", yanchor="bottom",
                            font={"color": "white", "size": 11}, bgcolor="rgba(0,0,0,0.45)")
-    fig.update_yaxes(autorange="reversed", scaleanchor="x", constrain="domain", title="y (pixel)" if factor == 1
-                     else f"y (pixel / {factor})")
-    fig.update_xaxes(constrain="domain", title="x (pixel)" if factor == 1 else f"x (pixel / {factor})")
+    unit = "pixel" if factor == 1 else f"pixel / {factor}"
+    fig.update_yaxes(autorange="reversed", scaleanchor="x", constrain="domain",
+                     title=f"y ({unit}, from the image's top edge)")
+    fig.update_xaxes(constrain="domain", title=f"x ({unit}, from the image's left edge)")
     fig.update_layout(dragmode="select", height=540, margin={"l": 60, "r": 10, "t": 40, "b": 50},
                       title={"text": f"{result['names'][component]}: drag a box, or pick the lasso in the toolbar",
                              "font": {"size": 13}})
@@ -278,7 +280,7 @@ def _regions_section(result: dict) -> None:
             if not str(name).strip():
                 raise input_error("region name", "is empty", "type a name, e.g. tumour")
             shape = shape_from_selection(selection or {}, str(name).strip(), shape=str(kind), scale=float(factor),
-                                         image_size=_image_size(result))
+                                         image_size=_image_size(result), offset=0.0)
             shapes_to_rois([shape], result["abundances"].shape[-2:])  # refuses a region outside the image
             _add_region(shape)
             st.rerun()
@@ -417,6 +419,54 @@ def _calibrated_section(result: dict) -> None:
                      hide_index=True, width="stretch")
 
 
+def _phantom_calibration_section() -> None:
+    """Make calibration.csv from phantom images (:func:`probeplan.study.calibration.calibrate_phantom`), as
+    ``probeplan calibrate`` does; the files are read where they are on this computer."""
+    ss = st.session_state
+    with st.expander("No calibration.csv yet? Make one from phantom images (PHANTOM.csv on this computer)"):
+        st.caption("PHANTOM.csv has one row per well or tube: file, component, concentration_uM, roi (\"x0,y0,x1,y1\" "
+                   "in pixels), blanks at 0 µM included; file paths are relative to it. Each file is unmixed, counts "
+                   "are fitted against concentration per component (weighted, with intercept); LOD = 3 × SD of the "
+                   "blank / slope (IUPAC).")
+        c = st.columns([3, 3, 1, 1])
+        c[0].text_input("phantom table (PHANTOM.csv)", key="w_cal_phantom", placeholder="/path/to/PHANTOM.csv")
+        c[1].text_input("reference spectra (CSV)", key="w_cal_refs", placeholder="/path/to/references.csv")
+        ss.setdefault("w_cal_depth", 0.0)
+        c[2].number_input("well depth (mm)", min_value=0.0, max_value=50.0, step=0.5, key="w_cal_depth")
+        ss.setdefault("w_cal_tissue", "phantom")
+        c[3].text_input("medium", key="w_cal_tissue")
+        if st.button("Fit the calibration", key="btn_cal_fit"):
+            ss.pop("phantom_calibration", None)
+            with guard("calibration"):
+                from probeplan.errors import input_error
+                from probeplan.report.document import figure_png_bytes
+                from probeplan.study.calibration import calibrate_phantom, plot_calibration
+                from probeplan.unmixing.references import read_references_csv
+
+                phantom, refs = str(ss["w_cal_phantom"]).strip(), str(ss["w_cal_refs"]).strip()
+                if not phantom or not refs:
+                    raise input_error("calibration", "the phantom table and the reference spectra are both needed",
+                                      "give the path of each file on this computer")
+                notes: list[str] = []
+                with captured_warnings(notes):
+                    cal = calibrate_phantom(Path(phantom).expanduser(), read_references_csv(Path(refs).expanduser()),
+                                            depth_mm=float(ss["w_cal_depth"]), tissue=str(ss["w_cal_tissue"]) or
+                                            "phantom")
+                ss["phantom_calibration"] = {"table": cal.table, "csv": cal.table.to_csv(index=False),
+                                             "png": figure_png_bytes(plot_calibration(cal), dpi=FIGURE_DPI),
+                                             "notes": [*cal.notes, *notes]}
+        stored = ss.get("phantom_calibration")
+        if stored:
+            t = stored["table"]
+            st.dataframe([{k: (fmt(v) if isinstance(v, float) else v) for k, v in r.items()}
+                          for r in t.to_dict("records")], hide_index=True, width="stretch", key="df_cal_table")
+            st.image(stored["png"], width="stretch")
+            st.download_button("calibration.csv (upload it above for maps in µM)", stored["csv"],
+                               file_name="calibration.csv", mime="text/csv", key="dl_calibration")
+            for n in stored["notes"]:  # (no folded box: expanders do not nest)
+                st.caption(f"note: {n}")
+
+
 def _downloads(result: dict) -> None:
     tif, err = Path(result["outputs"]["abundance"]), Path(result["outputs"]["stderr"])
     c = st.columns(3)
@@ -478,6 +528,7 @@ def unmix_view() -> None:
     ss.setdefault("w_sep_depth", 0.0)
     c[1].number_input("target depth (mm), for the calibration's depth check", min_value=0.0, max_value=50.0,
                       step=0.5, persist_state="session", key="w_sep_depth")
+    _phantom_calibration_section()
     if st.button("Unmix", type="primary", key="btn_unmix"):
         ss.pop("unmix_result", None)
         ss.pop("unmix_roi_rows", None)

@@ -818,6 +818,22 @@ def test_study_view_shows_predicted_beside_measured_and_the_refined_plan(tmp_pat
     assert "Refined plan for the next study (TOML)" in labels and "closure.csv" in labels
     refined = at.session_state["study_tables"]["closure"].refined_plan_toml
     assert parse_plan_text(refined, source="refined").target["uptake_ratio"] > 1
+    # a calibration of our own: the page's references are scaled to sum 1, so an abundance is µM times the column
+    # sum of the demo's references (counts per µM); the tumour's probe A then comes back at the demo's 0.01 µM
+    import pandas as pd
+
+    refs = pd.read_csv(tmp_path / "references.csv", comment="#")
+    cal = ("component,slope_counts_per_uM,intercept_counts,lod_uM,r2,range_low_uM,range_high_uM,phantom_depth_mm\n"
+           + "".join(f"{p['name']},{refs[p['name']].sum()},0.0,0.0005,1.0,0.001,0.008,3.0\n" for p in plan.probes))
+    at.file_uploader(key="up_study_calibration").set_value(("calibration.csv", cal.encode(), "text/csv")).run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    um = at.session_state["study_tables"]["measurements"]  # unchanged, in counts
+    assert "flag" not in um.columns
+    shown = next(df.value for df in at.dataframe if "flag" in df.value.columns)
+    a = shown[(shown["roi"] == "tumour") & (shown["component"] == "probe A (700)")]
+    assert float(a["mean"].iloc[0]) == pytest.approx(plan.target["concentration_uM"], rel=0.1)
+    assert set(shown["unit"]) == {"uM"}
     # the result tables uploaded with the plan and the references give the same table
     measurements = at.session_state["study_tables"]["measurements"].to_csv(index=False).encode()
     at.radio(key="w_study_source").set_value("upload").run()
@@ -830,3 +846,37 @@ def test_study_view_shows_predicted_beside_measured_and_the_refined_plan(tmp_pat
     assert _errors(at) == [], _errors(at)
     again = next(df.value for df in at.dataframe if "what it means" in df.value.columns)
     assert list(again["measured"]) == list(table["measured"])
+
+
+def test_unmix_view_fits_a_phantom_calibration(tmp_path):
+    """Phantom wells of our own (counts = M × concentration + 20, Poisson): the fitted slope is the column
+    sum of M, known by construction, as in tests/test_calibration.py."""
+    import tifffile
+
+    mix = np.array([[800.0, 50.0], [300.0, 400.0], [40.0, 900.0]])  # counts per µM, 3 channels x 2 probes
+    channels = ["c1", "c2", "c3"]
+    levels = [0.0, 0.0, 0.25, 0.5, 1.0, 2.0]
+    rng = np.random.default_rng(0)
+    conc = np.zeros((2, 20, 20 * len(levels)))
+    for j, c in enumerate(levels):
+        conc[0, 4:16, 20 * j + 4: 20 * j + 16] = c
+    data = rng.poisson(np.einsum("ck,kyx->cyx", mix, conc) + 20.0).astype(np.float32)
+    tifffile.imwrite(tmp_path / "plate.ome.tif", data, ome=True, photometric="minisblack",
+                     metadata={"axes": "CYX", "Channel": {"Name": channels}})
+    (tmp_path / "phantom.csv").write_text("file,component,concentration_uM,roi\n" + "".join(
+        f'plate.ome.tif,dotA,{c},"{20 * j + 5},5,{20 * j + 15},15"\n' for j, c in enumerate(levels)))
+    (tmp_path / "ref.csv").write_text("channel,dotA,dotB,background\n" + "".join(
+        f"{c},{mix[i, 0]},{mix[i, 1]},20\n" for i, c in enumerate(channels)))
+    at = _view(_app(), "unmix")
+    at.text_input(key="w_cal_phantom").set_value(str(tmp_path / "phantom.csv"))
+    at.text_input(key="w_cal_refs").set_value(str(tmp_path / "ref.csv"))
+    at.button(key="btn_cal_fit").click().run()
+    _clean(at)
+    assert _errors(at) == [], _errors(at)
+    table = at.session_state["phantom_calibration"]["table"].set_index("component")
+    assert table.loc["dotA", "slope_counts_per_uM"] == pytest.approx(mix[:, 0].sum(), rel=0.02)
+    assert "calibration.csv (upload it above for maps in µM)" in [b.label for b in at.get("download_button")]
+    at.text_input(key="w_cal_phantom").set_value(str(tmp_path / "missing.csv"))
+    at.button(key="btn_cal_fit").click().run()
+    _clean(at)
+    assert any("missing.csv" in e for e in _errors(at)), _errors(at)

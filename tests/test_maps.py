@@ -224,6 +224,9 @@ def test_a_drag_past_the_image_edge_stops_at_the_edge():
     box = {"box": [{"x": [120.0, 140.0], "y": [-5.0, 10.0]}], "lasso": []}
     shape = shape_from_selection(box, "corner", image_size=(128, 96))
     assert shape.x == (120.5, 128.0) and shape.y == (0.0, 10.5)
+    # a chart drawn with the corner origin (the page's) needs no half-pixel shift
+    shape = shape_from_selection(box, "corner", image_size=(128, 96), offset=0.0)
+    assert shape.x == (120.0, 128.0) and shape.y == (0.0, 10.0)
 
 
 def test_a_drawn_rectangle_has_the_text_form_with_the_same_pixels():

@@ -187,15 +187,16 @@ def shapes_to_rois(shapes: Sequence[RoiShape], shape_yx: tuple[int, int]) -> lis
 
 
 def shape_from_selection(selection: dict, name: str, *, shape: str = "rectangle", scale: float = 1.0,
-                         image_size: tuple[int, int] | None = None) -> RoiShape:
+                         image_size: tuple[int, int] | None = None, offset: float = 0.5) -> RoiShape:
     """A region from an interactive chart's selection (a box or a lasso), in image pixels.
 
     ``selection`` holds ``"box"`` and ``"lasso"`` lists whose entries carry ``"x"`` and
     ``"y"`` lists (two box corners, or the lasso's vertices), as Streamlit's plotly chart
     selection gives them; the last drawn entry is used.  A box becomes a rectangle or an
-    ellipse (``shape``); a lasso becomes a polygon.  The chart draws pixel ``(i, j)``
-    centred on ``(i, j)`` (plotly's and matplotlib's image convention): its coordinates are
-    moved by half a pixel to the file's, whose origin is the image's top-left corner.
+    ellipse (``shape``); a lasso becomes a polygon.  ``offset`` is added to the chart's
+    coordinates to reach ours, whose origin is the image's top-left corner: 0.5 (the
+    default) for a chart that centres pixel ``(i, j)`` on ``(i, j)`` (plotly's and
+    matplotlib's default for images), 0 for a chart drawn with the corner origin.
     ``scale`` is the number of image pixels per chart pixel (a chart of a downsampled map).
     With ``image_size`` (width, height) the points are clipped to the image (a drag that
     runs past its edge stops at the edge).
@@ -206,7 +207,7 @@ def shape_from_selection(selection: dict, name: str, *, shape: str = "rectangle"
     RoiShape(name='t', shape='ellipse', x=(2.7, 10.3), y=(3.5, 7.5))
     """
     def clip(values, n_px):
-        vals = [(float(v) + 0.5) * scale for v in values]
+        vals = [(float(v) + offset) * scale for v in values]
         if n_px is None:
             return tuple(vals)
         return tuple(min(max(v, 0.0), float(n_px)) for v in vals)
