@@ -300,7 +300,7 @@ def _regions_section(result: dict) -> None:
     regions = _regions()
     if regions:
         st.caption("Regions: " + "; ".join(f"{r.name} ({r.shape})" for r in regions))
-        rows = [{"region": r.name, "shape": r.shape, "x from (pixel edge)": fmt(min(r.x)), "x to": fmt(max(r.x)),
+        rows = [{"region": r.name, "shape": r.shape, "x from (pixel)": fmt(min(r.x)), "x to": fmt(max(r.x)),
                  "y from": fmt(min(r.y)), "y to": fmt(max(r.y)),
                  "pixels": int(r.mask(result["abundances"].shape[-2:]).sum())} for r in regions]
         st.dataframe(rows, hide_index=True, width="stretch")

@@ -313,9 +313,10 @@ def test_unmix_automatic_target_region_is_offered_and_taken(tmp_path):
     _clean(at)
     table = _table(at, -1)
     assert list(table["region"]) == ["dotA spot"]
-    # the test map's dotA square is x 5..14, y 5..14: the suggested region is that square
+    # the test map's dotA square is pixels 5..14 (x and y): the suggested region spans their centres, 5.5 to 14.5
+    # from the image's corner
     row = table.iloc[0]
-    assert (row["x from (pixel)"], row["x to"], row["y from"], row["y to"]) == ("5", "14", "5", "14")
+    assert (row["x from (pixel)"], row["x to"], row["y from"], row["y to"]) == ("5.5", "14.5", "5.5", "14.5")
 
 
 def test_unmix_with_the_demo_data():
@@ -363,7 +364,7 @@ def test_unmix_bad_uploads_show_errors(tmp_path):
     at.file_uploader(key="up_rois").set_value(("other.json", other, "application/json")).run()
     _clean(at)
     assert any("500 x 500" in e and "48 x 40" in e for e in _errors(at)), _errors(at)
-    outside = _roi_file({"name": "t", "shape": "rectangle", "x": [100, 120], "y": [1, 5]})
+    outside = _roi_file({"name": "t", "shape": "rectangle", "x": [100, 120], "y": [1, 5]}, background="t")
     at.file_uploader(key="up_rois").set_value(("outside.json", outside, "application/json")).run()
     _clean(at)
     assert any("holds no pixel" in e for e in _errors(at)), _errors(at)

@@ -117,14 +117,31 @@ def region_mask(shape: str, x, y, r0: int, r1: int, width: int) -> np.ndarray:
             return np.zeros(xc.shape, bool)
         return ((xc - cx) / rx) ** 2 + ((yc - cy) / ry) ** 2 <= 1.0 + 1e-12
     if shape == "polygon":
-        from matplotlib.path import Path as _Path  # point-in-polygon from a maintained library
-
-        path = _Path(np.column_stack([np.asarray(x, float), np.asarray(y, float)]))
-        pts = np.column_stack([xc.ravel(), yc.ravel()])
-        # a small radius of either sign: a centre on the edge counts as inside whatever the vertices' order
-        inside = path.contains_points(pts, radius=1e-9) | path.contains_points(pts, radius=-1e-9)
-        return inside.reshape(xc.shape)
+        return _polygon_mask(np.asarray(x, float), np.asarray(y, float), xc, yc)
     raise input_error("ROI", f"shape {shape!r} is not known", "use rectangle, ellipse or polygon")
+
+
+def _polygon_mask(vx: np.ndarray, vy: np.ndarray, xc: np.ndarray, yc: np.ndarray, eps: float = 1e-9) -> np.ndarray:
+    """Centres inside the polygon (matplotlib's point-in-polygon) or on one of its edges (within ``eps`` pixels).
+
+    matplotlib leaves a point exactly on the edge undefined, so the edges are tested here: the distance
+    from each centre to each edge segment (only centres inside the polygon's box are looked at).
+    """
+    from matplotlib.path import Path as _Path  # point-in-polygon from a maintained library
+
+    out = np.zeros(xc.shape, bool)
+    near = (xc >= vx.min() - eps) & (xc <= vx.max() + eps) & (yc >= vy.min() - eps) & (yc <= vy.max() + eps)
+    if not near.any():
+        return out
+    px, py = xc[near].astype(float), yc[near].astype(float)
+    inside = _Path(np.column_stack([vx, vy])).contains_points(np.column_stack([px, py]))
+    for ax, ay, bx, by in zip(vx, vy, np.roll(vx, -1), np.roll(vy, -1), strict=True):
+        dx, dy = bx - ax, by - ay
+        length2 = dx * dx + dy * dy
+        t = np.clip(((px - ax) * dx + (py - ay) * dy) / length2, 0.0, 1.0) if length2 > 0 else 0.0
+        inside |= (px - ax - t * dx) ** 2 + (py - ay - t * dy) ** 2 <= eps * eps
+    out[near] = inside
+    return out
 
 
 _SHAPED = re.compile(r"^\s*([^:]+?)\s*:\s*(ellipse|polygon)\s*:\s*(.+)$", re.IGNORECASE)

@@ -273,4 +273,4 @@ def suggest_target_roi(abundance_map, *, name: str = "target", level: float = 0.
     except QhullError:  # the pixels lie on one line
         return RoiShape(name, "rectangle", (float(xx.min()), float(xx.max()) + 1), (float(yy.min()), float(yy.max()) + 1))
     v = pts[hull.vertices]
-    return RoiShape(name, "polygon", tuple(v[:, 0]), tuple(v[:, 1]))
+    return RoiShape(name, "polygon", tuple(float(c) for c in v[:, 0]), tuple(float(c) for c in v[:, 1]))
