@@ -430,7 +430,8 @@ def _phantom_calibration_section() -> None:
                    "blank / slope (IUPAC).")
         c = st.columns([3, 3, 1, 1])
         c[0].text_input("phantom table (PHANTOM.csv)", key="w_cal_phantom", placeholder="/path/to/PHANTOM.csv")
-        c[1].text_input("reference spectra (CSV)", key="w_cal_refs", placeholder="/path/to/references.csv")
+        c[1].text_input("spectra of the phantom's probes (references CSV)", key="w_cal_refs",
+                        placeholder="/path/to/references.csv")
         ss.setdefault("w_cal_depth", 0.0)
         c[2].number_input("well depth (mm)", min_value=0.0, max_value=50.0, step=0.5, key="w_cal_depth")
         ss.setdefault("w_cal_tissue", "phantom")

@@ -254,6 +254,16 @@ def test_page_in_chromium(tmp_path):
                 page.get_by_text("Mean ± SD of the abundance in each region").scroll_into_view_if_needed()
                 time.sleep(0.5)
                 page.screenshot(path=str(ARTIFACTS / "browser-7-unmix-roi-table.png"), full_page=True)
+                # the drawn regions saved as the ROI file read back by the library (the one format)
+                from probeplan.unmixing.roifile import read_roi_file
+
+                with page.expect_download(timeout=UI_TIMEOUT_MS) as download:
+                    page.get_by_role("button", name="Save the regions (ROI file)").click()
+                roi_path = ARTIFACTS / "browser-rois.json"
+                download.value.save_as(str(roi_path))
+                saved = read_roi_file(roi_path, image_size=(128, 96))
+                assert [r.name for r in saved.regions] == ["dot A", "background"]
+                assert saved.background == "background"
 
                 # the study view: a study's measurements over time
                 page.get_by_text("Study: animals and groups over time").first.click()

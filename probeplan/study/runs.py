@@ -327,7 +327,8 @@ def measure_acquisition(acq: Acquisition, references, settings: StudySettings = 
                     tifffile.imwrite(tmp, lab)
                 saved.append(Roi(roi.name, label=1, labels_file=fname))
             write_roi_file(Path(out_dir) / f"{acq.key}_auto_rois.json", saved,
-                           image_size=(int(shape_yx[1]), int(shape_yx[0])), note=f"automatic ROIs of {acq.key}: Otsu's threshold on a component's abundance map")
+                           image_size=(int(shape_yx[1]), int(shape_yx[0])),
+                           note=f"automatic ROIs of {acq.key}: Otsu's threshold on a component's abundance map")
     C = data.shape[0]
     raw = data.reshape(C, -1, *shape_yx).astype(np.float64)
     y = raw - dark.reshape(raw.shape) if dark is not None else raw

@@ -23,7 +23,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from probeplan.errors import InputError, input_error
+from probeplan.errors import input_error
 from probeplan.io.atomic import write_csv_atomic
 
 __all__ = [

@@ -207,7 +207,8 @@ def shape_from_selection(selection: dict, name: str, *, shape: str = "rectangle"
     RoiShape(name='t', shape='ellipse', x=(2.7, 10.3), y=(3.5, 7.5))
     """
     def clip(values, n_px):
-        vals = [(float(v) + offset) * scale for v in values]
+        # to 1/100 pixel: finer than any hand can draw, and short in the ROI file
+        vals = [round((float(v) + offset) * scale, 2) for v in values]
         if n_px is None:
             return tuple(vals)
         return tuple(min(max(v, 0.0), float(n_px)) for v in vals)
