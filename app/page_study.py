@@ -87,14 +87,16 @@ def _region_inputs(text: str) -> tuple[list[str], Path | None]:
     return specs, (files[0] if files else None)
 
 
-def _closure(measurements, plan_path: Path, references, background: str, depth_mm: float | None, notes: list):
-    """Predicted beside measured (:func:`probeplan.study.closure.closure`), as ``probeplan study --plan`` writes it."""
+def _closure(measurements, plan, references, background: str, depth_mm: float | None, notes: list):
+    """Predicted beside measured (:func:`probeplan.study.closure.closure`), as ``probeplan study --plan`` writes it.
+
+    ``plan`` is a path (read with :func:`probeplan.study.plan.load_plan`) or ``(text, name)`` of an upload."""
     from probeplan.study.closure import closure
-    from probeplan.study.plan import load_plan
+    from probeplan.study.plan import load_plan, parse_plan_text
     from probeplan.study.runs import load_references
 
     with captured_warnings(notes):
-        plan = load_plan(plan_path)
+        plan = parse_plan_text(plan[0], source=plan[1]) if isinstance(plan, tuple) else load_plan(plan)
         c = closure(measurements, plan, load_references(references), background_roi=background, depth_mm=depth_mm)
     notes += c.notes
     return c
@@ -106,12 +108,17 @@ def _closure_of_uploads(measurements, plan: bytes, plan_name: str, references: b
     """:func:`_closure` of uploaded files (cached: the upload form runs on every rerun); returns (closure, notes)."""
     import tempfile
 
+    from probeplan.errors import input_error
+
     notes: list[str] = []
+    try:
+        text = plan.decode("utf-8-sig")
+    except UnicodeDecodeError:
+        raise input_error(plan_name, "is not UTF-8 text", "save the plan TOML file as UTF-8") from None
     with tempfile.TemporaryDirectory(prefix="probeplan-closure-") as d:
-        plan_path, refs_path = Path(d) / safe_name(plan_name, "plan.toml"), Path(d) / safe_name(refs_name, "refs.csv")
-        plan_path.write_bytes(plan)  # a private temporary copy for the readers, not an output
-        refs_path.write_bytes(references)
-        c = _closure(measurements, plan_path, refs_path, background, depth_mm, notes)
+        refs_path = Path(d) / safe_name(refs_name, "references.csv")
+        refs_path.write_bytes(references)  # a private temporary copy for the reader, not an output
+        c = _closure(measurements, (text, safe_name(plan_name, "plan.toml")), refs_path, background, depth_mm, notes)
     return c, notes
 
 

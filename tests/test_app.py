@@ -847,6 +847,10 @@ def test_study_view_shows_predicted_beside_measured_and_the_refined_plan(tmp_pat
     assert _errors(at) == [], _errors(at)
     again = next(df.value for df in at.dataframe if "what it means" in df.value.columns)
     assert list(again["measured"]) == list(table["measured"])
+    # a plan that is not TOML is one error line naming the upload
+    at.file_uploader(key="up_study_plan").set_value(("bad.toml", b"[target\n", "application/toml")).run()
+    _clean(at)
+    assert any("bad.toml:1: is not valid TOML" in e for e in _errors(at)), _errors(at)
 
 
 def test_unmix_view_fits_a_phantom_calibration(tmp_path):

@@ -214,3 +214,22 @@ def test_the_commands_take_the_roi_file_and_refuse_a_bad_one_in_one_line(tmp_pat
         err = capsys.readouterr().err.strip().splitlines()
         assert len(err) == 1 and f"{bad}: rois[1].shape: 'circle' is not known" in err[0], err
         assert not (tmp_path / "b.ome.tif").exists() and not (tmp_path / "s").exists()
+
+
+def test_the_study_command_takes_the_file_and_its_background(tmp_path, capsys):
+    maps = _study_folder(tmp_path)
+    (tmp_path / "study.csv").write_text("animal,group,time_h,file\nm1,a,1,m1.tif\n")
+    write_roi_file(tmp_path / "rois.json", REGIONS, image_size=(30, 24), background="node")
+    out = tmp_path / "out"
+    assert main(["study", str(tmp_path / "study.csv"), "--references", str(tmp_path / "refs.csv"), "--out", str(out),
+                 "--roi", str(tmp_path / "rois.json"), "--no-maps"]) == 0
+    m = pd.read_csv(out / "measurements.csv", comment="#").set_index(["roi", "component"])
+    ref = _skimage_masks()
+    # no --roi-background: the file's background (the ellipse) is the TBR's denominator
+    assert m.loc[("liver", "dotB"), "tbr"] == pytest.approx(maps[1][ref["liver"]].mean() / maps[1][ref["node"]].mean(),
+                                                            rel=1e-5)
+    assert read_roi_file(out / "rois.json").background == "node"
+    capsys.readouterr()
+    assert main(["study", str(tmp_path / "study.csv"), "--references", str(tmp_path / "refs.csv"), "--out",
+                 str(tmp_path / "two"), "--roi", str(tmp_path / "rois.json"), "--rois", str(tmp_path / "rois.json")]) == 2
+    assert "2 ROI files given" in capsys.readouterr().err
