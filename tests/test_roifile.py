@@ -9,6 +9,7 @@ The shapes below have no pixel centre on their edge, so the two edge conventions
 from __future__ import annotations
 
 import json
+import re
 
 import numpy as np
 import pandas as pd
@@ -233,3 +234,30 @@ def test_the_study_command_takes_the_file_and_its_background(tmp_path, capsys):
     assert main(["study", str(tmp_path / "study.csv"), "--references", str(tmp_path / "refs.csv"), "--out",
                  str(tmp_path / "two"), "--roi", str(tmp_path / "rois.json"), "--rois", str(tmp_path / "rois.json")]) == 2
     assert "2 ROI files given" in capsys.readouterr().err
+
+
+def test_mutated_files_parse_or_are_refused_in_one_line():
+    """300 seeded mutations of a good file (values swapped for null, true, text, lists, objects, huge, negative and
+    non-finite numbers; cuts): each one parses or raises InputError, never another exception."""
+    rng = np.random.default_rng(11)
+    good = roi_file_text([*REGIONS, Roi("kidney", label=4, labels_file="labels.tif")], image_size=(30, 24),
+                         background="background")
+    values = ["null", "true", '"x"', "[]", "{}", "1e400", "-1", "NaN", "0", '[1, "a"]', '{"x": 1}', "[[1, 2]]"]
+    parsed = refused = 0
+    for _ in range(300):
+        text = good
+        if rng.random() < 0.2:
+            text = text[: int(rng.integers(1, len(text)))]
+        else:
+            tokens = [m.span() for m in re.finditer(r'-?\d+(\.\d+)?|"[^"]*"|\[[^\[\]]*\]', text)]
+            for _k in range(int(rng.integers(1, 4))):
+                a, b = tokens[int(rng.integers(len(tokens)))]
+                text = text[:a] + values[int(rng.integers(len(values)))] + text[b:]
+                tokens = [m.span() for m in re.finditer(r'-?\d+(\.\d+)?|"[^"]*"|\[[^\[\]]*\]', text)]
+        try:
+            parse_roi_text(text, source="m.json")
+            parsed += 1
+        except InputError as exc:
+            assert str(exc).startswith("m.json") and "\n" not in str(exc), str(exc)
+            refused += 1
+    assert parsed + refused == 300 and refused > 200 and parsed > 0
