@@ -752,7 +752,7 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     file_rois, drawn, file_labels = regions_for_image(rois or (), (ny, nx))
     if file_labels is not None:
         if labels is not None:
-            raise input_error("--roi", "the ROI file uses a label image and another label TIFF was given",
+            raise input_error("roi", "the ROI file uses a label image and another label TIFF was given",
                               "give one label image")
         labels = file_labels
     roi_list += file_rois

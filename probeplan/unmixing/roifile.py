@@ -384,7 +384,7 @@ def regions_for_image(specs: Sequence, shape_yx: tuple[int, int]) -> tuple[list[
         if isinstance(spec, os.PathLike) or (isinstance(spec, str) and spec.strip().lower().endswith(".json")):
             n_files += 1
             if n_files > 1:
-                raise input_error("--roi", "two ROI files given", "give one ROI file (it holds every region)")
+                raise input_error("roi", "two ROI files given", "give one ROI file (it holds every region)")
             rf = read_roi_file(spec, image_size=(nx, ny))
             labels = rf.labels
             for r in rf.regions:
