@@ -330,7 +330,8 @@ def _regions_section(result: dict) -> None:
             from probeplan.unmixing.roi import roi_statistics
 
             rois = shapes_to_rois(regions, result["abundances"].shape[-2:])
-            ss["unmix_roi_rows"] = roi_statistics(result["abundances"], rois, names, background=background)
+            ss["unmix_roi_rows"] = roi_statistics(result["abundances"], rois, names,
+                                                  background=background).to_dict("records")
     rows = ss.get("unmix_roi_rows")
     if rows:
         from probeplan.io.atomic import table_to_csv_text

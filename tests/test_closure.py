@@ -22,7 +22,7 @@ def demo():
     stack, info = read_stack(folder / "stack.tif")
     dark, _ = read_stack(folder / "dark.tif")
     res = unmix_stack(stack, refs.for_channels(info.channel_names), dark=dark, read_noise_e=5.0)
-    rows = roi_statistics(res.abundances, [parse_rectangle(r) for r in plan.analysis["rois"]], list(refs.component_names))
+    rows = roi_statistics(res.abundances, [parse_rectangle(r) for r in plan.analysis["rois"]], list(refs.component_names)).to_dict("records")
     return plan, refs, measurements_from_roi_rows(rows, animal="m1", group="vehicle", time_h=1.0)
 
 

@@ -54,3 +54,15 @@ def test_csv_written_with_pandas_reads_back_with_pandas(tmp_path):
     assert back.loc[0, "mean"] == 0.1 + 0.2  # full precision round trip
     assert math.isnan(back.loc[0, "se"]) and math.isnan(back.loc[0, "tbr"])
     assert back.loc[1, "mean"] == 2.5e-7
+
+
+def test_roi_statistics_is_a_frame_with_numeric_columns():
+    from probeplan.unmixing.roi import ROI_COLUMNS, parse_rectangle, roi_statistics
+
+    a = np.ones((2, 6, 6))
+    a[:, :3, :3] = [[[4.0]], [[2.0]]]
+    table = roi_statistics(a, [parse_rectangle("t:0,0,3,3"), parse_rectangle("background:3,3,6,6")], ["p", "q"])
+    assert isinstance(table, pd.DataFrame) and tuple(table.columns) == ROI_COLUMNS
+    assert table["mean"].dtype.kind == "f" and table["n_pixels"].dtype.kind == "i"
+    t = table.set_index(["roi", "component"])
+    assert t.loc[("t", "p"), "tbr"] == 4.0 and t.loc[("t", "q"), "tbr"] == 2.0  # mean over the background's mean

@@ -127,7 +127,7 @@ def test_regions_measure_through_the_roi_statistics():
     a[0, 5:10, 5:10] = 50.0
     rois = shapes_to_rois([RoiShape("spot", "rectangle", (5, 10), (5, 10)),
                            RoiShape("background", "polygon", (12, 20, 20, 12), (12, 12, 20, 20))], (20, 20))
-    rows = roi_statistics(a, rois, ["dot"])
+    rows = roi_statistics(a, rois, ["dot"]).to_dict("records")
     assert rows[0]["n_pixels"] == 25 and rows[0]["mean"] == 50.0 and rows[0]["tbr"] == 5.0
     with pytest.raises(InputError, match="holds no pixel"):
         shapes_to_rois([RoiShape("far", "rectangle", (40, 50), (40, 50))], (20, 20))

@@ -21,7 +21,7 @@ def test_statistics_match_numpy_and_blocks_combine(tmp_path):
     a = rng.normal(10, 2, (2, 3, 20, 16))  # K, Z, Y, X
     a[0, 1, 5, 5] = np.nan
     rois = [parse_rectangle("t:2,3,10,12"), parse_rectangle("background:10,10,16,20")]
-    rows = roi_statistics(a, rois, ["p", "q"])
+    rows = roi_statistics(a, rois, ["p", "q"]).to_dict("records")
     sel = a[:, :, 3:12, 2:10].reshape(2, -1)
     ok = np.isfinite(sel).all(axis=0)
     # outside check: numpy mean and sample standard deviation (ddof=1)
@@ -47,7 +47,7 @@ def test_label_rois():
     rois = rois_from_labels(labels)
     assert [r.name for r in rois] == ["label_3", "label_7"]
     a = np.arange(16.0).reshape(1, 4, 4)
-    rows = roi_statistics(a, rois, ["p"], labels=labels, background="label_7")
+    rows = roi_statistics(a, rois, ["p"], labels=labels, background="label_7").to_dict("records")
     assert rows[0]["mean"] == pytest.approx(np.mean([0, 1, 4, 5]))
     assert rows[0]["tbr"] == pytest.approx(2.5 / 12.5)
     with pytest.raises(InputError, match="integer"):

@@ -66,7 +66,7 @@ def test_polygon_and_ellipse_means_use_the_shapes_own_pixels(tmp_path):
     rois, drawn, labels = regions_for_image([str(path)], SHAPE_YX)
     assert labels is None and [d.name for d in drawn] == ["liver", "node", "background"]
     maps = _maps()
-    rows = roi_statistics(maps, rois, ["a", "b"])
+    rows = roi_statistics(maps, rois, ["a", "b"]).to_dict("records")
     ref = _skimage_masks()
     assert ref["liver"].sum() > 100 and ref["node"].sum() > 100  # big enough to matter
     for r in rows:

@@ -459,7 +459,8 @@ def calibrate_outputs(outputs: dict, calibration: Calibration, *, depth_mm: floa
     counts = {FLAGS[code]: int(np.sum(res["flags"] == code)) for code in FLAGS}
     if rois:
         roi_list, _drawn, labels = regions_for_image(rois, abundance.shape[-2:])
-        rows = roi_statistics(res["concentration_uM"], roi_list, cal_names, labels=labels, background=background)
+        rows = roi_statistics(res["concentration_uM"], roi_list, cal_names, labels=labels,
+                              background=background).to_dict("records")
         for row in rows:
             line = calibration.row(row["component"])
             mean = row["mean"]

@@ -288,8 +288,8 @@ class RoiAccumulator:
 
 
 def roi_statistics(abundances, rois: Sequence[Roi], component_names: Sequence[str], *, labels=None,
-                   background: str | None = "background") -> list[dict]:
-    """Mean ± SD per ROI and component and the target-to-background ratio.
+                   background: str | None = "background"):
+    """Mean ± SD per ROI and component and the target-to-background ratio, as a DataFrame.
 
     Parameters
     ----------
@@ -302,20 +302,24 @@ def roi_statistics(abundances, rois: Sequence[Roi], component_names: Sequence[st
 
     Returns
     -------
-    list of dict
-        Columns :data:`ROI_COLUMNS`.
+    pandas.DataFrame
+        One row per ROI and component, columns :data:`ROI_COLUMNS` (``mean`` and ``sd`` in the
+        abundances' unit; ``tbr`` the ROI's mean over the background's, NaN without a background).
+        ``.to_dict("records")`` gives the rows as dicts.
 
     Examples
     --------
     >>> import numpy as np
     >>> a = np.ones((1, 4, 4)); a[0, :2, :2] = 5.0
-    >>> rows = roi_statistics(a, [parse_rectangle("t:0,0,2,2"), parse_rectangle("background:2,2,4,4")], ["dotA"])
-    >>> rows[0]["mean"], rows[0]["tbr"]
-    (5.0, 5.0)
+    >>> table = roi_statistics(a, [parse_rectangle("t:0,0,2,2"), parse_rectangle("background:2,2,4,4")], ["dotA"])
+    >>> table.loc[0, "mean"], table.loc[0, "tbr"]
+    (np.float64(5.0), np.float64(5.0))
     """
+    import pandas as pd
+
     acc = RoiAccumulator(rois, component_names, labels)
     acc.add(abundances, 0)
-    return acc.rows(background)
+    return pd.DataFrame.from_records(acc.rows(background), columns=ROI_COLUMNS)
 
 
 def write_roi_csv(path: str | os.PathLike, rows: Sequence[dict]):
