@@ -137,3 +137,36 @@ def test_command_per_roi_and_map(tmp_path, capsys, nir2):
                  "probe B (780)", "--roi", "background:2,100,20,126", "--out", str(tmp_path / "d2")]) == 2
     assert "cannot tell depths apart" in capsys.readouterr().err
     assert not (tmp_path / "d2").exists()
+
+
+def test_command_takes_drawn_shapes_and_roi_files(tmp_path, capsys, nir2):
+    # the same synthetic target at 4 mm measured through an ellipse and through a polygon from an ROI file:
+    # both recover the depth, and each region's pixel count is the scikit-image count of its shape
+    from skimage.draw import ellipse as sk_ellipse
+
+    from probeplan.unmixing.roifile import write_roi_file
+    from probeplan.unmixing.shapes import RoiShape
+
+    plan, curves, names = nir2
+    (tmp_path / "plan.toml").write_text(plan.text)
+    rng = np.random.default_rng(11)
+    stack = rng.poisson(200.0, size=(3, 40, 60)).astype(np.float32)
+    i = int(np.argmin(np.abs(DEFAULT_DEPTH_GRID_MM - 4.0)))
+    stack[:, 10:30, 10:30] += rng.poisson(curves[i][:, None, None] * 5000.0 / float(np.max(curves[i])), size=(3, 20, 20))
+    f = tmp_path / "stack.ome.tif"
+    tifffile.imwrite(f, stack, ome=True, photometric="minisblack", metadata={"axes": "CYX", "Channel": {"Name": names}})
+    rois = tmp_path / "rois.json"
+    write_roi_file(rois, [RoiShape("wedge", "polygon", (12.0, 28.0, 12.0), (12.0, 12.0, 28.0)),
+                          RoiShape("background", "rectangle", (40.0, 60.0), (0.0, 40.0))])
+    out = tmp_path / "depth"
+    assert main(["depth-from-spectrum", str(f), "--plan", str(tmp_path / "plan.toml"), "--probe", "probe N (1350)",
+                 "--roi", "disc:ellipse:20,20,8,8", "--roi", str(rois), "--out", str(out), "--json"]) == 0
+    rows = {r["roi"]: r for r in json.loads(capsys.readouterr().out)["rois"]}
+    assert set(rows) == {"disc", "wedge"}
+    for row in rows.values():
+        assert row["depth_mm"] == pytest.approx(4.0, abs=0.2)
+        assert row["ci_low_mm"] <= 4.0 <= row["ci_high_mm"]
+    # pixel centres (i + 0.5, j + 0.5) inside the ellipse of centre (20, 20), radii 8: scikit-image's rule
+    # puts pixel (r, c) inside when ((r - 19.5)/8)^2 + ((c - 19.5)/8)^2 < 1
+    rr, _cc = sk_ellipse(19.5, 19.5, 8, 8, shape=(40, 60))
+    assert abs(rows["disc"]["pixels"] - rr.size) <= 4  # the two rules differ only on the edge

@@ -51,6 +51,9 @@ FLAGS = {
     "labels_path": "--roi",
     "overwrite": "--overwrite",
     "channel_axis": "--channel-axis",
+    "gain_e_per_count": "--gain",
+    "read_noise_e": "--read-noise",
+    "min_snr": "--min-snr",
 }
 
 

@@ -38,7 +38,8 @@ from scipy.stats import chi2
 
 from probeplan.errors import AssumptionWarning, input_error, warn_at_caller
 
-__all__ = ["DepthEstimate", "channel_depth_curves", "depth_from_spectrum", "depth_from_spectrum_plan",
+__all__ = ["DepthEstimate", "ImageDepths", "channel_depth_curves", "depth_from_spectrum", "depth_from_spectrum_plan",
+           "depth_from_spectrum_image",
            "MIN_RATIO_CHANGE", "DEFAULT_DEPTH_GRID_MM"]
 
 #: Smallest change of the best channel ratio over 1-6 mm that can inform a depth (10 %: our choice).
@@ -225,3 +226,90 @@ def depth_from_spectrum_plan(signal, plan, probe_name: str, *, signal_se=None, c
                                   depth_mm=depth_grid_mm)
     return depth_from_spectrum(signal, curves, channel_names=names, depth_grid_mm=depth_grid_mm, signal_se=signal_se,
                                confidence=confidence)
+
+
+@dataclass
+class ImageDepths:
+    """Depths from one probe's image: one row per region and a depth map.
+
+    Attributes
+    ----------
+    rows : list of dict
+        Per target region (the background left out): ``roi, depth_mm, ci_low_mm, ci_high_mm,
+        confidence, sensitivity_mm_per_percent, channel_pair, pixels``.
+    depth_map_mm : ndarray, shape (3, Y, X)
+        Depth, lower and upper confidence limit per pixel (mm); NaN below the SNR threshold.
+    mapped : ndarray of bool, shape (Y, X)
+        Pixels whose brightest channel reaches the SNR threshold.
+    notes : list of str
+    """
+
+    rows: list[dict]
+    depth_map_mm: np.ndarray
+    mapped: np.ndarray
+    notes: list[str]
+
+
+def depth_from_spectrum_image(data, plan, probe_name: str, rois, *, background: str = "background", labels=None,
+                              gain_e_per_count: float = 1.0, read_noise_e: float = 0.0, min_snr: float = 5.0,
+                              confidence: float = 0.95, channel_names=None) -> ImageDepths:
+    """Depths per region and per pixel from a (C, Y, X) image of one probe, dark already subtracted.
+
+    The background region's mean is subtracted per channel; each pixel's variance is its shot noise
+    (counts / gain) plus the read noise, in counts², and a region's standard error is the root of
+    its mean variance over its pixel count.  Regions may be any shape
+    (:class:`~probeplan.unmixing.roi.Roi`: rectangles, ellipses, polygons, label regions with
+    ``labels``).
+
+    Raises
+    ------
+    InputError
+        No region named ``background``, a region without pixels, or what
+        :func:`depth_from_spectrum_plan` refuses.
+    """
+    from probeplan.errors import positive_number
+
+    gain = positive_number("gain_e_per_count", gain_e_per_count)
+    read_noise = positive_number("read_noise_e", read_noise_e, allow_zero=True)
+    min_snr = positive_number("min_snr", min_snr, allow_zero=True)
+    data = np.asarray(data, dtype=np.float64)
+    if data.ndim != 3:
+        raise input_error("data", f"shape {data.shape}", "give a (C, Y, X) stack of one probe")
+    shape_yx = data.shape[-2:]
+    names = [r.name for r in rois]
+    if background not in names:
+        raise input_error("roi", f"no ROI named {background!r} (given {names})",
+                          "add the background region, e.g. 'background:0,0,20,20'")
+    masks = {}
+    for roi in rois:
+        m = roi.mask(shape_yx, labels)
+        if not m.any():
+            raise input_error("roi", f"{roi.name!r} holds no pixel of the image", "draw it inside the image")
+        masks[roi.name] = m
+    bg = data[:, masks[background]].mean(axis=1)
+    signal = data - bg[:, None, None]
+    variance = np.maximum(data, 1.0) / gain + (read_noise / gain) ** 2  # shot + read noise, in counts²
+    rows = []
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        for roi in rois:
+            if roi.name == background:
+                continue
+            s, v = signal[:, masks[roi.name]], variance[:, masks[roi.name]]
+            est = depth_from_spectrum_plan(s.mean(axis=1), plan, probe_name, signal_se=np.sqrt(v.mean(axis=1) / s.shape[1]),
+                                           confidence=confidence, channel_names=channel_names)
+            rows.append({"roi": roi.name, "depth_mm": float(est.depth_mm), "ci_low_mm": float(est.ci_low_mm),
+                         "ci_high_mm": float(est.ci_high_mm), "confidence": confidence,
+                         "sensitivity_mm_per_percent": float(est.sensitivity_mm_per_percent),
+                         "channel_pair": "/".join(est.channel_pair), "pixels": int(s.shape[1])})
+        mapped = (signal / np.sqrt(variance)).max(axis=0) >= min_snr
+        est_map = depth_from_spectrum_plan(np.where(mapped[None], signal, 0.0), plan, probe_name,
+                                           signal_se=np.sqrt(variance), confidence=confidence,
+                                           channel_names=channel_names)
+    for w in {str(w.message): w for w in caught}.values():  # once each, at the caller's line
+        warn_at_caller(w.message, w.category)
+    depth_map = np.stack([np.where(mapped, m, np.nan) for m in (est_map.depth_mm, est_map.ci_low_mm, est_map.ci_high_mm)])
+    notes = list(dict.fromkeys([*est_map.notes,
+                                "background subtracted per channel from the background region; pixels below the SNR "
+                                f"threshold {min_snr:g} left empty (NaN) in the map"]))
+    return ImageDepths(rows, depth_map, mapped, notes)
