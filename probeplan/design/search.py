@@ -69,6 +69,7 @@ from probeplan.design.branch_bound import (
     exhaustive_search,
 )
 from probeplan.errors import input_error, positive_number, warn_at_caller
+from probeplan.format import format_number
 from probeplan.model import optics, skin_limit
 from probeplan.model.channels import SEPARABLE_CONDITION_LIMIT, condition_number, noise_amplification
 from probeplan.model.fluorescence import DEFAULT_CONCENTRATION_UM, Autofluorescence, background_rates, probe_rate_e_per_s
@@ -169,7 +170,7 @@ def camera_for_filter(emission_filter, cameras: Sequence) -> Any:
 
 
 def _fmt(v: float) -> str:
-    return "inf" if not math.isfinite(v) else f"{v:.3g}"
+    return format_number(v, 3)  # the one number formatter (∞ for an infinite condition number)
 
 
 @dataclass

@@ -108,14 +108,13 @@ def _candidate_filters(args: argparse.Namespace) -> list:
 
 def run(args: argparse.Namespace) -> int:
     import sys
-    import warnings
 
     from probeplan import RESEARCH_USE_CAUTION
     from probeplan.catalog import resolve
     from probeplan.cli.common import print_json, print_table
     from probeplan.design.search import design
-    from probeplan.errors import ProbeplanWarning
     from probeplan.model.fluorescence import Autofluorescence
+    from probeplan.notes import collect_notes
 
     probes = _candidate_probes(args.candidate_probe)
     filters = _candidate_filters(args)
@@ -138,8 +137,7 @@ def run(args: argparse.Namespace) -> int:
             bar.n = done
             bar.refresh()
 
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", ProbeplanWarning)
+    with collect_notes() as collected:
         try:
             result = design(
                 tissue, probes, filters, sources=sources, camera=cameras, lens=lens, k=args.k,
@@ -151,8 +149,7 @@ def run(args: argparse.Namespace) -> int:
         finally:
             if bar is not None:
                 bar.close()
-    notes = list(dict.fromkeys(result.notes + [str(w.message) for w in caught
-                                                 if issubclass(w.category, ProbeplanWarning)]))
+    notes = list(dict.fromkeys(result.notes + collected))
     by_name = {p.name: p for p in probes}
     cautions = sorted({by_name[n].caution for c in result.candidates[:1] for n in c.probes
                        if n in by_name and by_name[n].heavy_metal})

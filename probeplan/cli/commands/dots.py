@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import argparse
 import sys
-import warnings
 from typing import Any
 
 HELP = "dot sizing, extinction, concentration from absorbance, injection dose and volume"
@@ -135,9 +134,9 @@ def _dose(args: argparse.Namespace) -> dict[str, Any]:
 def run(args: argparse.Namespace) -> int:
     from probeplan import RESEARCH_USE_CAUTION
     from probeplan.cli.common import format_value, print_json, print_table
+    from probeplan.notes import collect_notes
 
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
+    with collect_notes() as messages:
         if args.action == "list":
             from probeplan.model import dots
 
@@ -152,7 +151,6 @@ def run(args: argparse.Namespace) -> int:
                 print(f"\n{RESEARCH_USE_CAUTION}")
             return 0
         result = {"size": _size, "conc": _conc, "dose": _dose}[args.action](args)
-    messages = list(dict.fromkeys(str(w.message) for w in caught))
     for message in messages:
         sys.stderr.write(f"probeplan dots: warning: {message}\n")
     material = result.get("material")
