@@ -21,13 +21,14 @@ import os
 import secrets
 import shutil
 from collections.abc import Sequence
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from probeplan.errors import input_error
 
-__all__ = ["is_ome_zarr", "inspect_ome_zarr", "ZarrStackReader", "ZarrStackWriter", "write_ome_zarr", "UNIT_UM"]
+__all__ = ["is_ome_zarr", "inspect_ome_zarr", "ZarrStackReader", "ZarrStackWriter", "ZarrRowSink", "write_ome_zarr", "UNIT_UM"]
 
 #: Spatial units of NGFF axes (UDUNITS-2 names) in µm.
 UNIT_UM = {"micrometer": 1.0, "nanometer": 1e-3, "millimeter": 1e3, "centimeter": 1e4, "meter": 1e6,
@@ -184,6 +185,28 @@ def _ngff_attrs(axes: str, channel_names, pixel_size_um) -> dict:
     return attrs
 
 
+@dataclass(frozen=True)
+class ZarrRowSink:
+    """Where rows of an OME-Zarr image being written go: the temporary folder, the row axis.
+
+    Another process (a dask worker) opens the array by its absolute path and writes whole
+    chunks of rows; writes from several workers are safe only when each covers whole chunks
+    along Y (``row_chunk`` of the writer), which the caller arranges.
+    """
+
+    path: str
+    row_axis: int
+
+    def write_rows(self, r0: int, block: np.ndarray) -> None:
+        """Open the array, write ``block`` at row ``r0``."""
+        import zarr
+
+        array = zarr.open_array(str(Path(self.path) / "0"), mode="r+")
+        key = [slice(None)] * array.ndim
+        key[self.row_axis] = slice(r0, r0 + block.shape[self.row_axis])
+        array[tuple(key)] = np.asarray(block, dtype=array.dtype)
+
+
 class ZarrStackWriter:
     """Write an OME-Zarr image block of rows by block (the interface of :class:`probeplan.io.stacks.StackWriter`).
 
@@ -208,6 +231,7 @@ class ZarrStackWriter:
             group = zarr.open_group(str(self._tmp), mode="w", zarr_format=2)
             chunks = tuple(n if a not in "YX" else min(n, 512) for a, n in zip(self.axes, self.shape, strict=True))
             chunks = tuple(1 if a in "CTZ" else c for a, c in zip(self.axes, chunks, strict=True))
+            self.row_chunk = chunks[self.row_axis]
             create = getattr(group, "create_array", None) or group.create_dataset
             self._array = create("0", shape=self.shape, chunks=chunks, dtype=np.dtype(dtype))
             group.attrs.update(_ngff_attrs(self.axes, channel_names, pixel_size_um))
@@ -220,6 +244,10 @@ class ZarrStackWriter:
         key = [slice(None)] * len(self.shape)
         key[self.row_axis] = slice(r0, r0 + block.shape[self.row_axis])
         self._array[tuple(key)] = np.asarray(block, dtype=self._array.dtype)
+
+    def sink(self) -> ZarrRowSink:
+        """A picklable handle with which another process writes rows into the temporary folder."""
+        return ZarrRowSink(str(self._tmp.absolute()), self.row_axis)
 
     def commit(self) -> Path:
         """Rename the finished folder onto the target; return the target path."""

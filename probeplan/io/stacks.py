@@ -23,6 +23,7 @@ import math
 import os
 import xml.etree.ElementTree as ET
 from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -35,6 +36,7 @@ __all__ = [
     "StackInfo",
     "StackReader",
     "StackWriter",
+    "RowSink",
     "open_stack",
     "read_stack",
     "write_stack",
@@ -438,6 +440,49 @@ def write_stack(
     return Path(path)
 
 
+def _pwrite_rows(fd, offset, shape, row_axis, dtype, r0, block, *, where) -> None:
+    block = np.ascontiguousarray(block, dtype=np.dtype(dtype).newbyteorder("<"))
+    ra = row_axis
+    nrows = block.shape[ra]
+    if nrows and r0 + nrows > shape[ra]:
+        raise input_error("rows", f"{r0}:{r0 + nrows} outside 0:{shape[ra]}", "write rows inside the image")
+    inner = math.prod(shape[ra + 1 :])
+    outer = shape[:ra]
+    flat = block.reshape(math.prod(outer) if outer else 1, -1)
+    item = block.dtype.itemsize
+    for j, idx in enumerate(np.ndindex(*outer) if outer else [()]):
+        start = 0
+        for a, i in enumerate(idx):
+            start = start * shape[a] + i
+        start = (start * shape[ra] + r0) * inner * item
+        try:
+            os.pwrite(fd, memoryview(flat[j]).cast("B"), offset + start)
+        except OSError as exc:  # a full disk, a vanished folder: one line naming the output
+            raise write_error(where, exc) from None
+
+
+@dataclass(frozen=True)
+class RowSink:
+    """Where rows of a stack being written go: a file path, its pixel-data offset, shape, row axis, dtype."""
+
+    path: str
+    offset: int
+    shape: tuple[int, ...]
+    row_axis: int
+    dtype: str
+
+    def write_rows(self, r0: int, block: np.ndarray) -> None:
+        """Open the file, write ``block`` at row ``r0``, close it."""
+        try:
+            fd = os.open(self.path, os.O_WRONLY)
+        except OSError as exc:
+            raise write_error(self.path, exc) from None
+        try:
+            _pwrite_rows(fd, self.offset, self.shape, self.row_axis, self.dtype, r0, block, where=self.path)
+        finally:
+            os.close(fd)
+
+
 class StackWriter:
     """Write an OME-TIFF stack block of rows by block, with bounded memory.
 
@@ -470,24 +515,16 @@ class StackWriter:
 
     def write_rows(self, r0: int, block: np.ndarray) -> None:
         """Write ``block`` (the full shape except ``r1 - r0`` rows on the Y axis) at row ``r0``."""
-        block = np.ascontiguousarray(block, dtype=self.dtype.newbyteorder("<"))
-        ra = self.row_axis
-        nrows = block.shape[ra]
-        inner = math.prod(self.shape[ra + 1 :])
-        outer = self.shape[:ra]
-        flat = block.reshape(math.prod(outer) if outer else 1, -1)
-        item = self.dtype.itemsize
-        for j, idx in enumerate(np.ndindex(*outer) if outer else [()]):
-            start = 0
-            for a, i in enumerate(idx):
-                start = start * self.shape[a] + i
-            start = (start * self.shape[ra] + r0) * inner * item
-            try:
-                os.pwrite(self._fd, memoryview(flat[j]).cast("B"), self._offset + start)
-            except OSError as exc:  # a full disk, a vanished folder: one line naming the output
-                raise write_error(self.path, exc) from None
-        if nrows and r0 + nrows > self.shape[ra]:
-            raise input_error("rows", f"{r0}:{r0 + nrows} outside 0:{self.shape[ra]}", "write rows inside the image")
+        _pwrite_rows(self._fd, self._offset, self.shape, self.row_axis, self.dtype, r0, block, where=self.path)
+
+    def sink(self) -> RowSink:
+        """A picklable handle with which another process writes rows into the temporary file.
+
+        For distributed runs: the worker opens the file by its absolute path (a filesystem it
+        shares with this process) and writes its rows at their offsets; :meth:`commit` here
+        still renames the finished file onto the target.
+        """
+        return RowSink(str(Path(self._tmp).absolute()), self._offset, self.shape, self.row_axis, self.dtype.str)
 
     def commit(self) -> Path:
         """Flush, close and rename onto the target; return the target path."""

@@ -30,6 +30,8 @@ stacks, none for float stacks) and pixels with a NaN channel give NaN and are co
 
 from __future__ import annotations
 
+import functools
+import math
 import os
 import warnings
 from collections.abc import Sequence
@@ -347,6 +349,14 @@ class QcAccumulator:
             self._r[2] += (r**2).sum()
             self._r[3] = max(self._r[3], float(r.max()) if r.size else 0.0)
 
+    def merge(self, other: QcAccumulator) -> None:
+        """Add the counts and residual statistics another accumulator gathered over other pixels."""
+        for key in ("n_pixels", "n_invalid", "n_saturated", "n_constrained"):
+            self.qc[key] += other.qc[key]
+        self._a += other._a
+        self._r = [self._r[0] + other._r[0], self._r[1] + other._r[1], self._r[2] + other._r[2],
+                   max(self._r[3], other._r[3])]
+
     def summary(self) -> dict:
         qc = dict(self.qc)
         n = max(qc["n_pixels"] - qc["n_invalid"] - qc["n_saturated"], 0)
@@ -645,6 +655,67 @@ def _rows_per_chunk(info, K, memory_limit_mb, factor):
     return rows
 
 
+def _block_summary(x, resid, status, r0, factor, params, names, cond, rois, labels):
+    # what a block contributes besides its rows: QC counts, its piece of the overlay, ROI sums
+    from probeplan.unmixing.overlay import downsample_mean
+    from probeplan.unmixing.roi import RoiAccumulator
+
+    qc = QcAccumulator(params.M, names, params.method, cond)
+    qc.add(x, resid, status)
+    K = x.shape[0]
+    plane = x.reshape(K, -1, *x.shape[-2:])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        plane = np.nanmean(plane, axis=1) if plane.shape[1] > 1 else plane[:, 0]
+    small = downsample_mean(plane, factor)
+    roi = None
+    if rois:
+        roi = RoiAccumulator(rois, names, labels)
+        roi.add(x, r0)
+        roi.labels = None  # travels back without the label image
+    return small, qc, roi
+
+
+@functools.lru_cache(maxsize=2)
+def _labels(path: str, mtime_ns: int):
+    import tifffile
+
+    return tifffile.imread(path)
+
+
+@dataclass(frozen=True)
+class _BlockJob:
+    # everything a worker needs for one block of rows: readers (paths and metadata only),
+    # settings, where to write, and what to summarise; no pixel data
+    reader: object
+    dark: object
+    flat: object
+    params: _Params
+    r0: int
+    r1: int
+    sinks: tuple
+    factor: int
+    names: tuple
+    cond: float
+    rois: tuple
+    labels_path: str | None
+
+
+def _cluster_block(job: _BlockJob, labels=None):
+    """One block on a worker: read, unmix, write the rows into the shared output files, summarise.
+
+    ``labels``: the label image when it came from an ROI file rather than a label TIFF the
+    worker reads itself (sent once to every worker, not with each block).
+    """
+    x, se, resid, status = _rows_task(job.reader, job.dark, job.flat, job.params, job.r0, job.r1)
+    for sink, arr in zip(job.sinks, (x, se, resid[None]), strict=True):
+        sink.write_rows(job.r0, arr)
+    if job.labels_path:
+        labels = _labels(job.labels_path, os.stat(job.labels_path).st_mtime_ns)
+    return x.shape[-2], _block_summary(x, resid, status, job.r0, job.factor, job.params, list(job.names), job.cond,
+                                      list(job.rois), labels)
+
+
 def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channel_axis: int | None = None,
                dark_path=None, flat_path=None, offset: bool = False, saturation: float | None = None,
                gain_e_per_count: float = 1.0, read_noise_e: float = 0.0, variance_floor_counts: float = 1.0,
@@ -658,7 +729,7 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     beside it, ``<stem>_stderr.tif``, ``<stem>_residual.tif``, ``<stem>_qc.json``,
     ``<stem>_overlay.png`` and, with ROIs, ``<stem>_roi.csv``.  Memory stays near
     ``memory_limit_mb`` whatever the stack size.  With ``scheduler`` (a dask.distributed
-    address) the same blocks run on that cluster; the files are opened on the workers.
+    address) the same blocks run on that cluster; the files are opened and written on the workers.
 
     Parameters
     ----------
@@ -685,8 +756,11 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
         counts per µM (a calibration).
     memory_limit_mb : float
         Working-memory bound for the blocks.
-    scheduler : str, optional
-        Address of a running dask.distributed scheduler.
+    scheduler : str or distributed.Client, optional
+        Address of a running dask.distributed scheduler (or a connected client): one task per
+        block of rows; each worker reads its rows and writes them into the output files itself
+        (the output folder must be on a filesystem the workers share), and sends back only QC
+        counts, its piece of the overlay and ROI sums.
     extra_inputs : sequence of path-like
         Other input files that must not be overwritten (e.g. the references CSV).
     progress : callable, optional
@@ -709,7 +783,7 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     from probeplan import RESEARCH_USE_CAUTION, __version__
     from probeplan.io.atomic import check_outputs, refuse_input_paths, write_json_atomic
     from probeplan.io.stacks import StackWriter, open_stack
-    from probeplan.unmixing.overlay import downsample_mean, overlay_factor, write_overlay_png
+    from probeplan.unmixing.overlay import overlay_factor, write_overlay_png
     from probeplan.unmixing.references import abundance_unit as unit_of_references
     from probeplan.unmixing.roi import RoiAccumulator, rois_from_labels, write_roi_csv
     from probeplan.unmixing.roifile import regions_for_image
@@ -721,6 +795,9 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
                           "give a positive memory bound in MiB")
     _check_saturation(saturation)
     _check_noise_model(gain_e_per_count, read_noise_e, variance_floor_counts)
+    if scheduler is not None:  # workers see only absolute paths
+        stack_path, dark_path, flat_path, labels_path = (
+            None if p is None else Path(p).absolute() for p in (stack_path, dark_path, flat_path, labels_path))
     reader = open_stack(stack_path, channel_axis=channel_axis)
     info = reader.info
     aux = {}
@@ -771,6 +848,12 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
                      engine, True)
     factor = overlay_factor((ny, nx))
     rows = _rows_per_chunk(info, K, memory_limit_mb, factor)
+    zarr_out = str(paths["abundance"]).lower().endswith(".zarr")
+    if scheduler is not None and zarr_out:
+        # workers write OME-Zarr chunks concurrently: each block must cover whole chunks of rows
+        # (the writer's Y chunk is min(ny, 512)) and whole overlay cells
+        step = math.lcm(min(ny, 512), factor)
+        rows = max(step, rows - rows % step)
     chunks = list(reader.iter_row_blocks(rows))
     spatial = info.spatial_shape
     axes = _out_axes(info.spatial_axes)
@@ -778,7 +861,7 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     qc = QcAccumulator(M, names, method, cond)
     roi_acc = RoiAccumulator(roi_list, names, labels) if roi_list else None
     writers = []
-    if str(paths["abundance"]).lower().endswith(".zarr"):
+    if zarr_out:
         from probeplan.io.ngff import ZarrStackWriter as StackWriter  # noqa: N813 - same interface
     try:
         writers.append(StackWriter(paths["abundance"], (K, *spatial), axes=axes, channel_names=names,
@@ -789,29 +872,44 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
         writers.append(StackWriter(paths["residual"], (1, *spatial), axes=axes,
                                    channel_names=["residual rms (counts)"], pixel_size_um=info.pixel_size_um))
 
-        def handle(r0, result):
-            x, se, resid, status = result
-            writers[0].write_rows(r0, x)
-            writers[1].write_rows(r0, se)
-            writers[2].write_rows(r0, resid[None])
-            qc.add(x, resid, status)
-            plane = x.reshape(K, -1, *x.shape[-2:])
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", RuntimeWarning)
-                plane = np.nanmean(plane, axis=1) if plane.shape[1] > 1 else plane[:, 0]
-            small = downsample_mean(plane, factor)
+        def merge(r0, nrows, summary, report=True):
+            small, q, r = summary
+            qc.merge(q)
             canvas[:, r0 // factor : r0 // factor + small.shape[1]] = small
             if roi_acc is not None:
-                roi_acc.add(x, r0)
-            if progress is not None:
-                progress(x.shape[-2])
+                roi_acc.merge(r)
+            if progress is not None and report:
+                progress(nrows)
 
         dark_r, flat_r = aux.get("dark"), aux.get("flat")
         if scheduler is None:
             for r0, r1 in chunks:
-                handle(r0, _rows_task(reader, dark_r, flat_r, params, r0, r1))
+                x, se, resid, status = _rows_task(reader, dark_r, flat_r, params, r0, r1)
+                writers[0].write_rows(r0, x)
+                writers[1].write_rows(r0, se)
+                writers[2].write_rows(r0, resid[None])
+                merge(r0, x.shape[-2], _block_summary(x, resid, status, r0, factor, params, names, cond, roi_list,
+                                                      labels))
         else:
-            _run_on_cluster(scheduler, chunks, handle, reader, dark_r, flat_r, params)
+            from probeplan.unmixing.cluster import connect, run_tasks
+
+            sinks = tuple(w.sink() for w in writers)
+            jobs = [_BlockJob(reader, dark_r, flat_r, params, r0, r1, sinks, factor, tuple(names), cond,
+                              tuple(roi_list), str(Path(labels_path).absolute()) if labels_path is not None else None)
+                    for r0, r1 in chunks]
+            client = connect(scheduler) if isinstance(scheduler, str) else scheduler
+            try:
+                extra = {}
+                if labels is not None and labels_path is None:  # an ROI file's label image: sent once
+                    extra["labels"] = client.scatter(labels, broadcast=True)
+                done = run_tasks(client, _cluster_block, jobs,
+                                 on_result=(lambda i, res: progress(res[0])) if progress is not None else None,
+                                 **extra)
+            finally:
+                if isinstance(scheduler, str):
+                    client.close()
+            for job, (nrows, summary) in zip(jobs, done, strict=True):  # in row order: sums as in a local run
+                merge(job.r0, nrows, summary, report=False)
         qc_summary = qc.summary()
         if isinstance(abundance_unit, str):
             unit_text = unit_of_references(references, None if abundance_unit == "counts" else abundance_unit)
@@ -850,26 +948,3 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
         for r in (reader, *aux.values()):
             r.close()
     return FileResult(outputs=paths, qc=qc_summary, roi_rows=roi_rows)
-
-
-def _run_on_cluster(address, chunks, handle, reader, dark_r, flat_r, params, window: int = 4):
-    try:
-        from distributed import Client
-    except ImportError:  # pragma: no cover - dependency of the package
-        raise input_error("scheduler", "dask.distributed is not installed", "install dask[distributed]") from None
-    try:
-        client = Client(address, timeout="10s", set_as_default=False)
-    except (OSError, TimeoutError, ValueError) as exc:
-        raise input_error("scheduler", f"cannot connect to {address!r} ({exc})",
-                          "start the cluster first or run without a scheduler") from None
-    try:
-        pending = []
-        for r0, r1 in chunks:
-            pending.append((r0, client.submit(_rows_task, reader, dark_r, flat_r, params, r0, r1, pure=False)))
-            if len(pending) >= window:
-                r, fut = pending.pop(0)
-                handle(r, fut.result())
-        for r, fut in pending:
-            handle(r, fut.result())
-    finally:
-        client.close()

@@ -269,6 +269,18 @@ class RoiAccumulator:
             self._m2[i] = self._m2[i] + m2b + delta**2 * na * nb / n
             self._n[i] = n
 
+    def merge(self, other: RoiAccumulator) -> None:
+        """Add the statistics another accumulator gathered over other rows (same ROIs and components)."""
+        nb = other._n
+        n = self._n + nb
+        with np.errstate(invalid="ignore", divide="ignore"):
+            delta = other._mean - self._mean
+            mean = np.where(n > 0, self._mean + delta * np.divide(nb, n, where=n > 0, out=np.zeros_like(n)), 0.0)
+            m2 = self._m2 + other._m2 + np.where(n > 0, delta**2 * self._n * np.divide(nb, n, where=n > 0,
+                                                                                       out=np.zeros_like(n)), 0.0)
+        self._n, self._mean, self._m2 = n, mean, m2
+        self._nan = self._nan + other._nan
+
     def rows(self, background: str | None = "background") -> list[dict]:
         """One row per ROI and component: n_pixels, n_nan, mean, sd (n−1), tbr."""
         names = [r.name for r in self.rois]

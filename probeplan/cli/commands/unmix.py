@@ -150,6 +150,85 @@ def _recorded_outputs(manifest: dict) -> list:
     return out
 
 
+def _summary_row(key, qc, outputs, seconds) -> dict:
+    return {
+        "stack": key, "status": "done", "pixels": qc["n_pixels"],
+        "constrained": round(qc["fraction_constrained"], 4), "saturated": qc["n_saturated"],
+        "invalid": qc["n_invalid"], "residual_rms": qc["residual_rms"]["rms"],
+        "seconds": round(seconds, 2), "outputs": {k: str(v) for k, v in outputs.items()},
+        "condition_number": qc["condition_number"], "mean_abundance": qc["mean_abundance"],
+    }
+
+
+def _stack_task(job: dict) -> dict:
+    """One stack of a folder on a cluster worker, as the local loop does it.
+
+    Inside the run's overwrite rule (``overwrite``, ``replaceable``) the worker unmixes its
+    stack into a staged group, records it in the folder's manifest as being written, moves the
+    group into place and records it as done (the manifest is updated under its lock, so
+    workers writing at once keep every entry).  Only the QC summary and the output paths
+    travel back.
+    """
+    from probeplan.io.atomic import output_batch, output_policy, readable_path
+    from probeplan.unmixing.pipeline import unmix_file
+
+    args = dict(job)
+    key, manifest_path, settings = args.pop("key"), args.pop("manifest_path"), args.pop("settings")
+    overwrite, replaceable = args.pop("overwrite"), args.pop("replaceable")
+    stack = args.pop("stack_path")
+    with output_policy(overwrite=overwrite, replaceable=replaceable), output_batch() as batch:
+        result = unmix_file(stack, args.pop("references"), args.pop("out_path"), **args)
+        digests = {str(p): _sha256(readable_path(p)) for p in result.outputs.values()}
+        _record(manifest_path, key, {"status": "writing", "outputs": dict.fromkeys(digests)})
+        batch.commit()
+        _record(manifest_path, key, {"status": "done", "input_sha256": _sha256(stack),
+                                     "settings_sha256": settings, "outputs": digests})
+    return {"qc": result.qc, "outputs": {k: str(v) for k, v in result.outputs.items()}}
+
+
+def _run_folder_on_cluster(client, args, refs, targets, manifest, manifest_path, settings, all_inputs, rect_rois,
+                           label_files, summary) -> None:
+    # one task per stack: each worker reads its stack and writes its outputs; the client keeps
+    # the small results (QC, output paths) as they arrive
+    import time
+
+    from probeplan.io.atomic import current_policy
+    from probeplan.unmixing.cluster import absolute_location, run_tasks
+    from probeplan.unmixing.pipeline import DEFAULT_MEMORY_MB
+
+    def absolute(p):
+        return None if p is None else absolute_location(p)
+
+    policy = current_policy()
+    replaceable = sorted(str(p) for p in policy.replaceable) if policy is not None else []
+    jobs, keys = [], []
+    for s, target in targets:
+        if args.resume and _is_done(manifest["entries"].get(s.name), s, settings):
+            summary.append({"stack": s.name, "status": "skipped (done)", "pixels": "", "constrained": "",
+                            "saturated": "", "invalid": "", "residual_rms": "", "seconds": 0.0})
+            continue
+        keys.append(s.name)
+        jobs.append({
+            "key": s.name, "manifest_path": absolute(manifest_path), "settings": settings,
+            "overwrite": bool(policy is not None and policy.overwrite), "replaceable": replaceable,
+            "stack_path": absolute(s), "references": refs, "out_path": absolute(target), "method": args.method,
+            "channel_axis": args.channel_axis, "dark_path": absolute(args.dark), "flat_path": absolute(args.flat),
+            "offset": args.offset, "saturation": args.saturation, "gain_e_per_count": args.gain,
+            "read_noise_e": args.read_noise, "rois": rect_rois,
+            "labels_path": absolute(label_files[0]) if label_files else None, "roi_background": args.roi_background,
+            "memory_limit_mb": args.memory_mb if args.memory_mb is not None else DEFAULT_MEMORY_MB,
+            "extra_inputs": [absolute(p) for p in all_inputs],
+        })
+    t0 = time.perf_counter()
+
+    def record(i, res):
+        summary.append(_summary_row(keys[i], res["qc"], res["outputs"], time.perf_counter() - t0))
+
+    first = len(summary)
+    run_tasks(client, _stack_task, jobs, on_result=record)
+    summary[first:] = sorted(summary[first:], key=lambda row: row["stack"])
+
+
 def run(args: argparse.Namespace) -> int:
     import signal
     import sys
@@ -259,6 +338,11 @@ def run(args: argparse.Namespace) -> int:
     summary = []
     calibration_notes: list[str] = []
     calibration_flags: dict = {}
+    client = None
+    if args.scheduler is not None:
+        from probeplan.unmixing.cluster import connect
+
+        client = connect(args.scheduler)  # bounded wait: a one-line error, nothing written
     if created is not None:
         out.mkdir(parents=True, exist_ok=True)
     if args.control:
@@ -270,6 +354,12 @@ def run(args: argparse.Namespace) -> int:
     previous = signal.signal(signal.SIGTERM, _terminate)
     run_batch = None
     try:
+        if client is not None and len(targets) > 1 and calibration is None:
+            # one task per stack (with --calibration: one task per block, stack after stack, so that the
+            # calibrated maps are made here from the finished outputs)
+            _run_folder_on_cluster(client, args, refs, targets, manifest, manifest_path, settings, all_inputs,
+                                   rect_rois, label_files, summary)
+            targets = []
         with output_batch() as run_batch:  # the run's batch; each stack is committed in turn
             for s, target in targets:
                 key = s.name
@@ -289,7 +379,7 @@ def run(args: argparse.Namespace) -> int:
                             gain_e_per_count=args.gain, read_noise_e=args.read_noise, rois=rect_rois,
                             labels_path=label_files[0] if label_files else None, roi_background=args.roi_background,
                             memory_limit_mb=args.memory_mb if args.memory_mb is not None else DEFAULT_MEMORY_MB,
-                            scheduler=args.scheduler, extra_inputs=all_inputs, progress=bar.update,
+                            scheduler=client, extra_inputs=all_inputs, progress=bar.update,
                         )
                     if calibration is not None:
                         from probeplan.cli.common import model_notes
@@ -309,23 +399,20 @@ def run(args: argparse.Namespace) -> int:
                         batch.commit()
                         _record(manifest_path, key, {"status": "done", "input_sha256": _sha256(s),
                                                      "settings_sha256": settings, "outputs": digests})
-                qc = result.qc
-                summary.append({
-                    "stack": key, "status": "done", "pixels": qc["n_pixels"],
-                    "constrained": round(qc["fraction_constrained"], 4), "saturated": qc["n_saturated"],
-                    "invalid": qc["n_invalid"], "residual_rms": qc["residual_rms"]["rms"],
-                    "seconds": round(time.perf_counter() - t0, 2), "outputs": {k: str(v) for k, v in result.outputs.items()},
-                    "condition_number": qc["condition_number"], "mean_abundance": qc["mean_abundance"],
-                })
+                summary.append(_summary_row(key, result.qc, result.outputs, time.perf_counter() - t0))
     except BaseException:
-        # remove a folder this command created unless some stack was moved into it
-        if created is not None and not (run_batch is not None and run_batch.committed):
+        # remove a folder this command created unless some stack was moved into it (on a cluster
+        # the workers move their stacks in: once one recorded a stack in the manifest, it stays)
+        moved_in = (run_batch is not None and run_batch.committed) or (client is not None and manifest_path.exists())
+        if created is not None and not moved_in:
             import shutil
 
             shutil.rmtree(created, ignore_errors=True)
         raise
     finally:
         signal.signal(signal.SIGTERM, previous)
+        if client is not None:
+            client.close()
     if args.json:
         extra = {}
         if calibration is not None:

@@ -1,0 +1,117 @@
+"""Distributed runs on a small dask LocalCluster: relative paths, folders, ROIs, and the bounded errors."""
+
+import json
+import time
+
+import numpy as np
+import pytest
+import tifffile
+
+from probeplan.cli.main import main
+from probeplan.errors import InputError
+
+distributed = pytest.importorskip("distributed")
+
+M = np.array([[5, 1, 0.5], [3, 3, 1], [1, 4, 2], [0.5, 2, 4], [0.2, 1, 5]], float)
+NAMES = [f"ch{i}" for i in range(5)]
+
+
+def _stack(path, seed=0, shape=(40, 48)):
+    rng = np.random.default_rng(seed)
+    truth = rng.uniform(0, 150, (3, *shape)) * (rng.random((3, *shape)) > 0.4)
+    data = rng.poisson(np.einsum("ck,kyx->cyx", M, truth) + 5).astype(np.uint16)
+    tifffile.imwrite(path, data, ome=True, photometric="minisblack",
+                     metadata={"axes": "CYX", "Channel": {"Name": NAMES}, "PhysicalSizeX": 2.0, "PhysicalSizeY": 2.0})
+
+
+def _refs(path):
+    lines = ["channel,dotA,dotB,dotC"] + [f"{n}," + ",".join(str(v) for v in row) for n, row in zip(NAMES, M, strict=True)]
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+@pytest.fixture(scope="module")
+def cluster():
+    # one in-process worker (threads): starts in about a second
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=2, processes=False, host="127.0.0.1",
+                                  protocol="tcp", dashboard_address="127.0.0.1:0") as c:
+        yield c
+
+
+def test_relative_paths_and_rois_on_the_cluster(tmp_path, monkeypatch, cluster):
+    # the command is given paths relative to its own folder; the worker runs elsewhere
+    _stack(tmp_path / "s.ome.tif")
+    _refs(tmp_path / "ref.csv")
+    labels = np.zeros((40, 48), np.uint8)
+    labels[5:15, 5:20] = 1
+    tifffile.imwrite(tmp_path / "labels.tif", labels)
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b").mkdir()
+    monkeypatch.chdir(tmp_path)
+    common = ["unmix", "s.ome.tif", "--references", "ref.csv", "--memory-mb", "0.02", "--roi", "labels.tif",
+              "--roi", "background:20,20,40,40"]
+    assert main([*common, "--out", "a/x.tif"]) == 0
+    assert main([*common, "--out", "b/x.tif", "--scheduler", cluster.scheduler_address]) == 0
+    for name in ("x.tif", "x_stderr.tif", "x_residual.tif"):
+        assert tifffile.imread(tmp_path / "a" / name).tobytes() == tifffile.imread(tmp_path / "b" / name).tobytes()
+    qa = json.loads((tmp_path / "a" / "x_qc.json").read_text())
+    qb = json.loads((tmp_path / "b" / "x_qc.json").read_text())
+    assert qa["rows_per_chunk"] < 10  # several blocks, gathered from the worker in any order
+    for key in ("n_pixels", "n_constrained", "mean_abundance", "fraction_zero", "residual_rms"):
+        assert qa[key] == pytest.approx(qb[key], rel=1e-12), key
+    ra = (tmp_path / "a" / "x_roi.csv").read_text()
+    rb = (tmp_path / "b" / "x_roi.csv").read_text()
+    assert ra.splitlines()[0] == rb.splitlines()[0] and len(ra.splitlines()) == len(rb.splitlines())
+    # ROI statistics merged from the blocks: the same numbers as the single pass (to rounding)
+    import csv
+
+    rows_a = list(csv.DictReader((tmp_path / "a" / "x_roi.csv").open()))
+    rows_b = list(csv.DictReader((tmp_path / "b" / "x_roi.csv").open()))
+    for x, y in zip(rows_a, rows_b, strict=True):
+        for key in ("mean", "sd", "tbr"):
+            assert float(x[key]) == pytest.approx(float(y[key]), rel=1e-9)
+
+
+def test_folder_one_task_per_stack(tmp_path, cluster):
+    (tmp_path / "in").mkdir()
+    for i in range(3):
+        _stack(tmp_path / "in" / f"m{i}.ome.tif", seed=i)
+    ref = _refs(tmp_path / "ref.csv")
+    assert main(["unmix", str(tmp_path / "in"), "--references", str(ref), "--out", str(tmp_path / "loc")]) == 0
+    args = ["unmix", str(tmp_path / "in"), "--references", str(ref), "--out", str(tmp_path / "dist"),
+            "--scheduler", cluster.scheduler_address]
+    assert main(args) == 0
+    for i in range(3):
+        a = tifffile.imread(tmp_path / "loc" / f"m{i}.ome.tif")
+        b = tifffile.imread(tmp_path / "dist" / f"m{i}.ome.tif")
+        assert a.tobytes() == b.tobytes()
+    manifest = json.loads((tmp_path / "dist" / "probeplan_unmix_manifest.json").read_text())
+    assert sorted(manifest["entries"]) == [f"m{i}.ome.tif" for i in range(3)]
+    before = {p.name: p.stat().st_mtime_ns for p in (tmp_path / "dist").iterdir() if p.suffix == ".tif"}
+    assert main([*args, "--resume"]) == 0  # checksums recorded by the workers let the rerun skip everything
+    after = {p.name: p.stat().st_mtime_ns for p in (tmp_path / "dist").iterdir() if p.suffix == ".tif"}
+    assert before == after
+
+
+def test_unreachable_scheduler_is_one_line_within_seconds(tmp_path, capsys):
+    _stack(tmp_path / "s.ome.tif")
+    ref = _refs(tmp_path / "ref.csv")
+    (tmp_path / "r").mkdir()
+    t = time.monotonic()
+    rc = main(["unmix", str(tmp_path / "s.ome.tif"), "--references", str(ref), "--out", str(tmp_path / "r" / "a.tif"),
+               "--scheduler", "tcp://127.0.0.1:1"])
+    assert time.monotonic() - t < 10
+    err = capsys.readouterr().err.strip()
+    assert rc == 2 and err.count("\n") == 0 and "--scheduler" in err and "cannot reach" in err
+    assert list((tmp_path / "r").iterdir()) == []
+
+
+def test_scheduler_without_workers_is_refused_within_seconds():
+    from probeplan.unmixing.cluster import connect
+
+    with distributed.LocalCluster(n_workers=0, processes=False, host="127.0.0.1", protocol="tcp",
+                                  dashboard_address="127.0.0.1:0") as empty:
+        t = time.monotonic()
+        with pytest.raises(InputError, match="has no workers.*dask worker"):
+            connect(empty.scheduler_address, worker_wait_s=1.0)
+        assert time.monotonic() - t < 10
