@@ -30,6 +30,17 @@ def _refs(path):
     return path
 
 
+def _study_helpers():
+    # the synthetic study of tests/test_study.py (loaded by path: tests are not a package)
+    import importlib.util
+    from pathlib import Path
+
+    spec = importlib.util.spec_from_file_location("_study_test_data", Path(__file__).with_name("test_study.py"))
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    return mod.ROIS, mod.make_study
+
+
 @pytest.fixture(scope="module")
 def cluster():
     # one in-process worker (threads): starts in about a second
@@ -115,3 +126,36 @@ def test_scheduler_without_workers_is_refused_within_seconds():
         with pytest.raises(InputError, match="has no workers.*dask worker"):
             connect(empty.scheduler_address, worker_wait_s=1.0)
         assert time.monotonic() - t < 10
+
+
+def test_study_one_task_per_acquisition(tmp_path, monkeypatch, cluster):
+    # the same study (relative paths, run from its folder) locally and on the cluster: equal tables;
+    # the cluster run's manifest lets a local rerun skip every acquisition
+    import pandas as pd
+    ROIS, make_study = _study_helpers()
+
+    from probeplan.study.runs import read_table_csv
+
+    make_study(tmp_path, animals=("ctrl", "ctrl", "treated", "treated"))
+    monkeypatch.chdir(tmp_path)
+    rois = sum((["--roi", r] for r in ROIS), [])
+    assert main(["study", "study.csv", "--references", "refs.csv", "--out", "loc", *rois, "--json"]) == 0
+    assert main(["study", "study.csv", "--references", "refs.csv", "--out", "dist", *rois, "--json",
+                 "--scheduler", cluster.scheduler_address]) == 0
+    for name in ("measurements.csv", "groups.csv", "kinetics.csv"):
+        pd.testing.assert_frame_equal(read_table_csv(tmp_path / "loc" / name), read_table_csv(tmp_path / "dist" / name))
+    before = {p.name: p.stat().st_mtime_ns for p in (tmp_path / "dist" / "acquisitions").iterdir()}
+    assert main(["study", "study.csv", "--references", "refs.csv", "--out", "dist", *rois, "--json"]) == 0
+    assert {p.name: p.stat().st_mtime_ns for p in (tmp_path / "dist" / "acquisitions").iterdir()} == before
+
+
+def test_study_unreachable_scheduler(tmp_path, capsys):
+    ROIS, make_study = _study_helpers()
+
+    csv, refs = make_study(tmp_path, animals=("ctrl", "treated"))
+    t = time.monotonic()
+    rc = main(["study", str(csv), "--references", str(refs), "--out", str(tmp_path / "out"), "--roi", ROIS[0],
+               "--scheduler", "tcp://127.0.0.1:1"])
+    assert time.monotonic() - t < 10
+    assert rc == 2 and "cannot reach" in capsys.readouterr().err
+    assert not (tmp_path / "out").exists()

@@ -540,9 +540,60 @@ def load_references(references, *, unit: str | None = None):
     return refs
 
 
+def _acquisition_task(job) -> pd.DataFrame:
+    """One acquisition, here or on a worker: measured, its files written together, then recorded.
+
+    ``job`` is ``(acquisition, references, settings, maps_dir, unit, manifest_path, digest,
+    policy)``.  Inside one output group the maps and the table are written; the manifest
+    records the acquisition as being written, the group is moved into place, and the manifest
+    records it as done with the checksums (under the manifest's lock, so workers finishing at
+    once keep every entry).  ``policy`` is None here (the caller's overwrite rule applies) and
+    ``(overwrite, replaceable, option)`` on a worker, which opens the same rule for itself.
+    ``names`` (on a worker) is ``(files, maps_dir)`` as the client named them: the manifest
+    records those names, so that a rerun on the client recognises its entries.
+    """
+    import contextlib
+
+    from probeplan.io.atomic import output_policy
+
+    acq, refs, settings, maps_dir, unit, manifest_path, digest, policy, names = job
+    files_named, dir_named = names if names is not None else (acq.files, maps_dir)
+    rule = (output_policy(overwrite=policy[0], replaceable=policy[1], option=policy[2]) if policy is not None
+            else contextlib.nullcontext())
+    with rule, output_batch() as batch:  # each acquisition's files appear together, then are recorded
+        table = measure_acquisition(acq, refs, settings, out_dir=maps_dir, unit=unit)
+        if maps_dir is not None:
+            mfile = write_table_csv(maps_dir / f"{acq.key}_measurements.csv", table, MEASUREMENTS_NOTES)
+            written = [mfile, *(map_paths(maps_dir, acq.key).values() if settings.write_maps else []),
+                       *_auto_roi_paths(maps_dir, acq.key, settings)]
+            named = [str(Path(dir_named) / p.name) for p in written]
+            _record(manifest_path, acq.key, {"status": "writing", "outputs": dict.fromkeys(named)})
+            entry = {"status": "done", "settings_sha256": digest,
+                     "inputs": {str(n): _sha256(f) for n, f in zip(files_named, acq.files, strict=True)},
+                     "outputs": {n: _sha256(readable_path(p)) for n, p in zip(named, written, strict=True)}}
+            batch.commit()
+            _record(manifest_path, acq.key, entry)
+    return table
+
+
+def _absolute_acquisition(acq: Acquisition) -> Acquisition:
+    import dataclasses
+
+    return dataclasses.replace(acq, files=tuple(Path(f).absolute() for f in acq.files))
+
+
+def _absolute_settings(settings: StudySettings) -> StudySettings:
+    import dataclasses
+
+    return dataclasses.replace(settings, **{k: Path(getattr(settings, k)).absolute()
+                                            for k in ("labels_path", "dark_path", "flat_path", "roi_file")
+                                            if getattr(settings, k) is not None})
+
+
 def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.PathLike | None = None,
               settings: StudySettings | None = None, unit: str | None = None, planned_effect: dict | None = None,
-              progress: Callable[[Acquisition, str], None] | None = None, **options) -> StudyResult:
+              progress: Callable[[Acquisition, str], None] | None = None, scheduler=None,
+              **options) -> StudyResult:
     """Unmix every acquisition of a study, measure its ROIs, compare the groups and fit the kinetics.
 
     Parameters
@@ -563,6 +614,11 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
         the observed effect sizes.
     progress : callable, optional
         Called with ``(acquisition, "done" | "skipped")`` after each acquisition.
+    scheduler : str or distributed.Client, optional
+        A dask.distributed scheduler address (or a connected client): one task per acquisition;
+        each worker reads the acquisition's files and writes its maps and table itself (the
+        inputs and ``out_dir`` must be on a filesystem the workers share; paths are sent
+        absolute), and only the small ROI table and checksums come back.
 
     Returns
     -------
@@ -636,30 +692,47 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
                              for p in (e.get("outputs") or {}))
         check_outputs([out / n for n in _OWN_FILES])
     digest = _settings_digest(settings, refs, unit_text)
-    tables = []
+    tables: list = [None] * len(acqs)
     skipped = []
-    for acq in acqs:
+    todo = []
+    for i, acq in enumerate(acqs):
         entry = manifest["entries"].get(acq.key)
         if maps_dir is not None and _done(entry, acq, digest):
-            tables.append(read_table_csv(maps_dir / f"{acq.key}_measurements.csv"))
+            tables[i] = read_table_csv(maps_dir / f"{acq.key}_measurements.csv")
             skipped.append(acq.key)
             if progress is not None:
                 progress(acq, "skipped")
-            continue
-        with output_batch() as batch:  # each acquisition's files appear together, then are recorded
-            table = measure_acquisition(acq, refs, settings, out_dir=maps_dir, unit=unit)
-            if maps_dir is not None:
-                mfile = write_table_csv(maps_dir / f"{acq.key}_measurements.csv", table, MEASUREMENTS_NOTES)
-                written = [mfile, *(map_paths(maps_dir, acq.key).values() if settings.write_maps else []),
-                           *_auto_roi_paths(maps_dir, acq.key, settings)]
-                _record(out / MANIFEST_NAME, acq.key, {"status": "writing", "outputs": dict.fromkeys(map(str, written))})
-                entry = {"status": "done", "settings_sha256": digest, "inputs": {str(f): _sha256(f) for f in acq.files},
-                         "outputs": {str(p): _sha256(readable_path(p)) for p in written}}
-                batch.commit()
-                _record(out / MANIFEST_NAME, acq.key, entry)
-        tables.append(table)
+        else:
+            todo.append(i)
+    manifest_path = None if out is None else out / MANIFEST_NAME
+
+    def record(i, table):
+        tables[i] = table
         if progress is not None:
-            progress(acq, "done")
+            progress(acqs[i], "done")
+
+    if scheduler is None:
+        for i in todo:
+            record(i, _acquisition_task((acqs[i], refs, settings, maps_dir, unit, manifest_path, digest, None, None)))
+    elif todo:
+        # one task per acquisition: the worker reads its files and writes its maps and table itself
+        # (absolute paths on a filesystem it shares) and records it in the manifest; only the small
+        # table comes back
+        from probeplan.unmixing.cluster import connect, run_tasks
+
+        remote = _absolute_settings(settings)
+        policy = current_policy()
+        rule = (bool(policy.overwrite), sorted(str(p) for p in policy.replaceable), policy.option) if policy else None
+        remote_dir = None if maps_dir is None else maps_dir.absolute()
+        remote_manifest = None if manifest_path is None else manifest_path.absolute()
+        jobs = [(_absolute_acquisition(acqs[i]), refs, remote, remote_dir, unit, remote_manifest, digest, rule,
+                 (acqs[i].files, maps_dir)) for i in todo]
+        client = connect(scheduler) if isinstance(scheduler, str) else scheduler
+        try:
+            run_tasks(client, _acquisition_task, jobs, on_result=lambda j, result: record(todo[j], result))
+        finally:
+            if isinstance(scheduler, str):
+                client.close()
     measurements = pd.concat(tables, ignore_index=True)
     measurements["time_h"] = measurements["time_h"].astype(float)
     groups, group_notes = compare_groups(measurements, background=settings.roi_background,

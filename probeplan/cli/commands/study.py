@@ -55,6 +55,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="the target's depth (mm): checked against the calibration phantom's depth (default: the "
                              "plan's target depth) and used by the closure when given")
     parser.add_argument("--no-maps", action="store_true", help="write only the tables, not the maps of each acquisition")
+    parser.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                        help="dask scheduler address (e.g. tcp://host:8786): one task per acquisition on its workers, "
+                             "which must see the input and output folders")
     parser.add_argument("--json", action="store_true", help="print a machine-readable summary")
     add_output_options(parser)
 
@@ -146,12 +149,17 @@ def run(args: argparse.Namespace) -> int:
     def _terminate(signum, frame):
         raise KeyboardInterrupt
 
+    client = None
+    if args.scheduler is not None:
+        from probeplan.unmixing.cluster import connect
+
+        client = connect(args.scheduler)  # bounded wait: a one-line error before anything is written
     previous = signal.signal(signal.SIGTERM, _terminate)
     bar = tqdm(total=n_acq, desc="study", unit="acquisition", disable=True if args.json else None, file=sys.stderr,
                leave=False)
     try:
         result = run_study(args.study, references, out_dir=out, settings=settings, unit=args.abundance_unit,
-                           planned_effect=planned, progress=lambda acq, status: bar.update(1))
+                           planned_effect=planned, progress=lambda acq, status: bar.update(1), scheduler=client)
         if args.control:
             from probeplan.unmixing.references import write_references_csv
 
@@ -170,6 +178,8 @@ def run(args: argparse.Namespace) -> int:
     finally:
         bar.close()
         signal.signal(signal.SIGTERM, previous)
+        if client is not None:
+            client.close()
     g = result.groups
     n_compared = int(g["p_welch"].notna().sum()) if len(g) else 0
     summary = {
