@@ -707,7 +707,10 @@ def _cluster_block(job: _BlockJob, labels=None):
     ``labels``: the label image when it came from an ROI file rather than a label TIFF the
     worker reads itself (sent once to every worker, not with each block).
     """
-    x, se, resid, status = _rows_task(job.reader, job.dark, job.flat, job.params, job.r0, job.r1)
+    # readers of its own, of the same kind (TIFF or OME-Zarr): an in-process worker may run several
+    # blocks of one job list at once
+    fresh = [None if r is None else type(r)(r.info) for r in (job.reader, job.dark, job.flat)]
+    x, se, resid, status = _rows_task(*fresh, job.params, job.r0, job.r1)
     for sink, arr in zip(job.sinks, (x, se, resid[None]), strict=True):
         sink.write_rows(job.r0, arr)
     if job.labels_path:

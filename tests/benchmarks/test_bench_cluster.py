@@ -71,7 +71,7 @@ def test_study_throughput_local_and_cluster(tmp_path):
         with distributed.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
                                       dashboard_address="127.0.0.1:0", env=env) as cluster, \
                 distributed.Client(cluster, set_as_default=False) as client:
-            client.run(lambda: __import__("probeplan.unmixing.nnls").unmixing.nnls.nnls_pixels(np.eye(2), np.ones((2, 4))))
+            client.run(_warm_worker)
             tracemalloc.start()
             t = time.perf_counter()
             run_study(csv, refs, out_dir=tmp_path / f"w{workers}", rois=rois, scheduler=client)
@@ -90,3 +90,58 @@ def test_study_throughput_local_and_cluster(tmp_path):
           "with the client, the scheduler and any other work on the machine)")
     # the client holds only the small tables: far below the stacks it had processed
     assert rows[2][2] < 0.1 * total_bytes
+
+
+def _warm_worker():
+    # imports and compiled kernels loaded, so that the peak measured after is the blocks' memory
+    from probeplan.unmixing.pipeline import unmix_stack
+
+    unmix_stack(np.ones((8, 64, 64), np.uint16), np.eye(8)[:, :4] + 0.1)
+
+
+def _worker_peak_rss_mib():
+    import resource
+
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+
+
+def test_large_stack_streams_on_the_cluster(tmp_path):
+    # one stack far larger than the working-memory bound, one task per block of rows: the client's
+    # Python allocations and each worker's peak resident memory stay bounded
+    distributed = pytest.importorskip("distributed")
+    import tifffile
+
+    from probeplan.unmixing.pipeline import unmix_file
+
+    rng = np.random.default_rng(1)
+    C, K, n = 8, 4, 3072
+    stack = tmp_path / "big.tif"
+    with tifffile.TiffWriter(stack) as tw:  # written plane by plane: 144 MiB uint16
+        for c in range(C):
+            tw.write(rng.poisson(200.0 + 50.0 * c, (1, n, n)).astype(np.uint16), photometric="minisblack",
+                     contiguous=True)
+    size_mib = stack.stat().st_size / _MIB
+    M = np.abs(rng.normal(1.0, 0.3, (C, K)))
+    bound_mib = 16.0
+    env = {"NUMBA_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1"}
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                  dashboard_address="127.0.0.1:0", env=env) as cluster, \
+            distributed.Client(cluster, set_as_default=False) as client:
+        client.run(_warm_worker)
+        base = client.run(_worker_peak_rss_mib)
+        tracemalloc.start()
+        t = time.perf_counter()
+        res = unmix_file(stack, M, tmp_path / "a.ome.tif", channel_axis=0, memory_limit_mb=bound_mib,
+                         scheduler=client)
+        seconds = time.perf_counter() - t
+        _, peak = tracemalloc.get_traced_memory()
+        tracemalloc.stop()
+        peaks = client.run(_worker_peak_rss_mib)
+    print(f"\n[unmix on a LocalCluster, 2 workers] 8 x {n}^2 uint16 ({size_mib:.0f} MiB), bound {bound_mib:g} MiB, "
+          f"{res.qc['rows_per_chunk']} rows per task, {seconds:.1f} s")
+    print(f"  client peak Python allocations: {peak / _MIB:.1f} MiB")
+    for w in peaks:
+        print(f"  worker {w}: peak resident {peaks[w]:.0f} MiB (after start-up {base[w]:.0f} MiB)")
+    assert peak / _MIB < 0.25 * size_mib
+    for w in peaks:
+        assert peaks[w] - base[w] < 0.75 * size_mib
