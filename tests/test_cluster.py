@@ -159,3 +159,38 @@ def test_study_unreachable_scheduler(tmp_path, capsys):
     assert time.monotonic() - t < 10
     assert rc == 2 and "cannot reach" in capsys.readouterr().err
     assert not (tmp_path / "out").exists()
+
+
+def test_zarr_output_on_the_cluster_equals_a_local_run(tmp_path, cluster):
+    # workers write whole 512-row chunks of the OME-Zarr output themselves; the values equal a local run
+    zarr = pytest.importorskip("zarr")
+    _stack(tmp_path / "s.ome.tif", shape=(1100, 40))
+    ref = _refs(tmp_path / "ref.csv")
+    common = ["unmix", str(tmp_path / "s.ome.tif"), "--references", str(ref), "--memory-mb", "0.5"]
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b").mkdir()
+    assert main([*common, "--out", str(tmp_path / "a" / "x.ome.zarr")]) == 0
+    assert main([*common, "--out", str(tmp_path / "b" / "x.ome.zarr"), "--scheduler", cluster.scheduler_address]) == 0
+    a = zarr.open_array(str(tmp_path / "a" / "x.ome.zarr" / "0"), mode="r")[:]
+    b = zarr.open_array(str(tmp_path / "b" / "x.ome.zarr" / "0"), mode="r")[:]
+    np.testing.assert_array_equal(a, b)
+    qb = json.loads((tmp_path / "b" / "x_qc.json").read_text())
+    assert qb["rows_per_chunk"] % 512 == 0  # blocks of whole chunks: no two workers share one
+
+
+def test_folder_on_the_cluster_refuses_a_foreign_output(tmp_path, cluster, capsys):
+    # the run's overwrite rule travels with each task: an existing file it did not write is refused
+    (tmp_path / "in").mkdir()
+    for i in range(2):
+        _stack(tmp_path / "in" / f"m{i}.ome.tif", seed=i)
+    ref = _refs(tmp_path / "ref.csv")
+    (tmp_path / "out").mkdir()
+    (tmp_path / "out" / "m1.ome.tif").write_bytes(b"someone else's file")
+    args = ["unmix", str(tmp_path / "in"), "--references", str(ref), "--out", str(tmp_path / "out"),
+            "--scheduler", cluster.scheduler_address]
+    assert main(args) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.count("\n") == 0 and "m1.ome.tif" in err and "--overwrite" in err
+    assert (tmp_path / "out" / "m1.ome.tif").read_bytes() == b"someone else's file"
+    assert main([*args, "--overwrite"]) == 0
+    assert tifffile.imread(tmp_path / "out" / "m1.ome.tif").shape == (3, 40, 48)
