@@ -353,6 +353,12 @@ def exciton_peak_nm(material: str, diameter_nm):
     dlo, dhi = _yu_diameter_range(entry)
     _refuse_outside(d, dlo, dhi, "diameter_nm", f"the {name} sizing curve's validity range", "nm",
                     "the Yu et al. 2003 fit holds only over the sizes measured; use a measured peak")
+    if d.ndim == 0:  # one dot (every probe asks for its own size again and again): bisected once
+        return _yu_peak_nm(name, float(d))
+    return _out(_yu_bisect(entry, d))
+
+
+def _yu_bisect(entry, d: np.ndarray) -> np.ndarray:
     poly = _value(entry, "diameter_poly")
     lo_nm, hi_nm = _value(entry, "valid_exciton_peak_nm")
     lo = np.full(d.shape, float(lo_nm))
@@ -362,7 +368,13 @@ def exciton_peak_nm(material: str, diameter_nm):
         below = np.polyval(poly, mid) < d
         lo = np.where(below, mid, lo)
         hi = np.where(below, hi, mid)
-    return _out(0.5 * (lo + hi))
+    return 0.5 * (lo + hi)
+
+
+@functools.lru_cache(maxsize=256)
+def _yu_peak_nm(name: str, diameter_nm: float) -> float:
+    """The bisection of :func:`exciton_peak_nm` for one diameter, cached (a pure function of the shipped table)."""
+    return float(_yu_bisect(_sized_entry(name), np.asarray(diameter_nm, dtype=np.float64)))
 
 
 def extinction_coefficient(material: str, diameter_nm):

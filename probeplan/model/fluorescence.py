@@ -65,6 +65,7 @@ for "visible above background", not a standard.
 
 from __future__ import annotations
 
+import functools
 import math
 import warnings
 from dataclasses import dataclass, field
@@ -145,10 +146,46 @@ def optical_properties(tissue: Tissue, wavelength_nm, absorbers=()) -> tuple[np.
     Scattering used outside its source's measured range is reported once per
     result as a note (``DepthProfile.notes``) instead of a warning per call.
     """
-    mu_a = tissue.mu_a_per_cm(wavelength_nm)
+    key = _grid_key(wavelength_nm)
+    if key is None:  # not a plain grid of numbers (the validation below says what is wrong)
+        mu_a = tissue.mu_a_per_cm(wavelength_nm)
+        if absorbers:
+            mu_a = mu_a + _uptake_mu_a(absorbers, wavelength_nm)
+        return mu_a, tissue.mu_s_prime_per_cm(wavelength_nm, warn=False)
+    mu_a, mu_sp = _tissue_coefficients(tissue, key)
     if absorbers:
-        mu_a = mu_a + _uptake_mu_a(absorbers, wavelength_nm)
-    return mu_a, tissue.mu_s_prime_per_cm(wavelength_nm, warn=False)
+        mu_a = mu_a + _uptake_mu_a_cached(tuple((p, float(c)) for p, c in absorbers), key)
+    return mu_a.copy(), mu_sp.copy()
+
+
+def _grid_key(wavelength_nm) -> tuple | None:
+    """A hashable key for a wavelength grid (shape, bytes), or None for anything but finite floats."""
+    wl = np.asarray(wavelength_nm)
+    if wl.dtype.kind not in "fiu" or wl.size > 100_000:
+        return None
+    wl = wl.astype(np.float64, copy=False)
+    return wl.shape, np.ascontiguousarray(wl).tobytes()
+
+
+def _grid_from_key(key: tuple) -> np.ndarray:
+    shape, data = key
+    return np.frombuffer(data, dtype=np.float64).reshape(shape)
+
+
+# The model asks for the same tissue's coefficients on the same few grids many times per depth
+# curve (excitation, coarse and fine emission grids, in the signal and in each background); the
+# tables behind them (haemoglobin, water, fat, scattering laws) are interpolated once per grid.
+# Tissues and probes are frozen (hashable) dataclasses.
+@functools.lru_cache(maxsize=256)
+def _tissue_coefficients(tissue: Tissue, key: tuple) -> tuple[np.ndarray, np.ndarray]:
+    wl = _grid_from_key(key)
+    return (np.asarray(tissue.mu_a_per_cm(wl), dtype=np.float64),
+            np.asarray(tissue.mu_s_prime_per_cm(wl, warn=False), dtype=np.float64))
+
+
+@functools.lru_cache(maxsize=256)
+def _uptake_mu_a_cached(absorbers: tuple, key: tuple) -> np.ndarray:
+    return _uptake_mu_a(absorbers, _grid_from_key(key))
 
 
 #: The probe's absorption counts as noticeable when it raises the tissue's μa by more than this fraction.
@@ -291,6 +328,10 @@ def disc_escape_fraction(radius_mm, depth_mm, mu_a_per_cm, mu_s_prime_per_cm, n:
     if np.isnan(r).any() or (r < 0).any():
         raise input_error("radius_mm", f"got {radius_mm!r}", "give a disc radius in mm >= 0 (np.inf for the whole surface)")
     chosen = transport.resolve_model(model)
+    if chosen == "mc_table":
+        fast = _disc_escape_mc_compiled(r, d, mu_a_per_cm, mu_s_prime_per_cm, mu_eff_per_mm, z_b_mm, g, n)
+        if fast is not None:
+            return fast
     d2 = d + 2.0 * z_b_mm
     total = 0.5 * (np.exp(-mu_eff_per_mm * d) + np.exp(-mu_eff_per_mm * d2))
     if chosen == "mc_table":
@@ -305,6 +346,38 @@ def disc_escape_fraction(radius_mm, depth_mm, mu_a_per_cm, mu_s_prime_per_cm, n:
             x = np.where(total > 0, scaled / total, 1.0)
         return scaled * (peak * width**2 * (1.0 - x) + escape * x)
     return total - _disc_tails(r, d, d2, mu_eff_per_mm)
+
+
+#: Below this many points the numpy path of :func:`disc_escape_fraction` is used (no compiled loop needed).
+_COMPILED_MIN_POINTS = 20_000
+
+
+def _disc_escape_mc_compiled(r, d, mu_a_per_cm, mu_s_prime_per_cm, mu_eff_per_mm, z_b_mm, g, n):
+    """The compiled loop (:mod:`probeplan.model.transport_kernels`) for the usual layout, else None.
+
+    The usual layout: coefficients varying along the last (wavelength) axis only, radii and
+    depths constant along it, e.g. (D, S, 1) slices against (1, 1, W) wavelengths.
+    """
+    from probeplan.model import transport_kernels
+
+    ma = np.asarray(mu_a_per_cm, dtype=np.float64)
+    ms = np.asarray(mu_s_prime_per_cm, dtype=np.float64)
+    arrays = (ma, ms, np.asarray(mu_eff_per_mm), np.asarray(z_b_mm))
+    if any(a.ndim == 0 or a.size != a.shape[-1] for a in arrays) or len({a.shape[-1] for a in arrays}) != 1:
+        return None
+    if d.ndim == 0 or (r.ndim and r.shape[-1] != 1) or d.shape[-1] != 1:
+        return None
+    if not (np.all(np.isfinite(r)) or np.all(np.isinf(r))):
+        return None
+    shape = np.broadcast_shapes(r.shape, d.shape, ma.shape, ms.shape)
+    n_w = ma.shape[-1]
+    if math.prod(shape) < _COMPILED_MIN_POINTS or shape[-1] != n_w:
+        return None
+    lead = shape[:-1]
+    out = transport_kernels.disc_escape_mc(
+        np.broadcast_to(r, lead + (1,)).reshape(-1), np.broadcast_to(d, lead + (1,)).reshape(-1),
+        arrays[2].reshape(-1), arrays[3].reshape(-1), ms.reshape(-1), (ma / ms).reshape(-1), g, n)
+    return None if out is None else out.reshape(shape)
 
 
 def _disc_tails(r, d, d2, mu_eff_per_mm):
@@ -581,8 +654,14 @@ def _signal_rate(tissue, probe, source, irradiance, emission_filter, camera, len
     if d_mu_eff_em is None:
         exitance = _interp_last(np.einsum("ds,dsw->dw", q * dz, frac), coarse, wl)  # photons/s/mm² per unit spectrum
     else:
-        frac = _interp_last(frac, coarse, wl) * np.exp(-d_mu_eff_em[None, None, :] * inside_cm)
-        exitance = np.einsum("ds,dsw->dw", q * dz, frac)
+        from probeplan.model import transport_kernels
+
+        exitance = None
+        if frac.ndim == 3 and frac.size >= _COMPILED_MIN_POINTS:
+            exitance = transport_kernels.slices_on_fine_grid(frac, q * dz, inside_cm[:, :, 0], d_mu_eff_em, coarse, wl)
+        if exitance is None:
+            frac = _interp_last(frac, coarse, wl) * np.exp(-d_mu_eff_em[None, None, :] * inside_cm)
+            exitance = np.einsum("ds,dsw->dw", q * dz, frac)
     escaped = exitance * probe.emission_per_nm(wl)[None, :]  # photons/s/mm²/nm
     detect = _detection(camera, lens) * emission_filter.transmission(wl) * camera.qe(wl)
     rate = np.trapezoid(escaped * detect[None, :], wl, axis=-1)

@@ -171,8 +171,12 @@ def corrections(quantities: tuple[str, ...], ratio, reduced_depth, g: float, n: 
             raise ValueError(f"quantity: got {q!r}, expected one of {QUANTITIES}")
     table, slopes = _stacked(tuple(quantities), float(g), float(n))
     ratios, z = t["ratios"], t["z"]
-    r, d = np.broadcast_arrays(np.asarray(ratio, dtype=np.float64), np.asarray(reduced_depth, dtype=np.float64))
-    ik = np.interp(np.log(np.clip(r, ratios[0], ratios[-1])), np.log(ratios), np.arange(ratios.size))
+    # The ratio's cell and weight are found on the ratio as given, before it is broadcast against
+    # the depths: the model's μa/μs′ varies with wavelength only, (1, …, W) against (D, …, W) depths.
+    r = np.asarray(ratio, dtype=np.float64)
+    d = np.asarray(reduced_depth, dtype=np.float64)
+    shape = np.broadcast_shapes(r.shape, d.shape)
+    ik = np.interp(np.log(np.clip(r, ratios[0], ratios[-1])), _log_ratios(), np.arange(ratios.size))
     iz = np.interp(d, z, np.arange(z.size))
     n_k, n_z, n_q = table.shape
     i0 = np.minimum(ik.astype(np.intp), n_k - 2)
@@ -191,7 +195,7 @@ def corrections(quantities: tuple[str, ...], ratio, reduced_depth, g: float, n: 
         if deep:
             sl = slopes[:, q_index]
             value = value + (sl.take(i0) * (1 - ti) + sl.take(i0 + 1) * ti) * beyond
-        out.append(value)
+        out.append(np.broadcast_to(value, shape))
     result = []
     for q, value in zip(quantities, out, strict=True):
         if q == "escape":
@@ -200,6 +204,11 @@ def corrections(quantities: tuple[str, ...], ratio, reduced_depth, g: float, n: 
                 value = np.where(below_grid, value * np.sqrt(np.clip(r, 0.0, None) / ratios[0]), value)
         result.append(np.exp(value))
     return tuple(result)
+
+
+@functools.lru_cache(maxsize=1)
+def _log_ratios() -> np.ndarray:
+    return np.log(_tables()["ratios"])
 
 
 def correction(quantity: str, ratio, reduced_depth, g: float, n: float) -> np.ndarray:

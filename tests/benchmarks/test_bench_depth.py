@@ -13,8 +13,8 @@ import time
 import numpy as np
 import pytest
 
-from probeplan.model import dots
-from probeplan.model import optics
+from probeplan.catalog.resolve import tissue as resolve_tissue
+from probeplan.model import dots, optics
 from probeplan.model.fluorescence import depth_profile
 
 TARGET_S = 0.050
@@ -30,9 +30,10 @@ def test_depth_curve_three_probes_200_depths():
               dots.make_probe("InAs", 880.0, extinction_at_excitation_per_M_cm=1.0e6)]
     filters = [optics.parse_filter(f) for f in ("700/30", "780/40", "880/50")]
     depths = np.linspace(0.0, 10.0, 200)
+    tissue = resolve_tissue("soft tissue")
 
     def run(model="auto", probe_absorption=True):
-        return [depth_profile("soft tissue", p, source=source, irradiance_mw_per_cm2=10.0, emission_filter=f,
+        return [depth_profile(tissue, p, source=source, irradiance_mw_per_cm2=10.0, emission_filter=f,
                               camera=cam, lens=lens, exposure_s=0.01, depth_mm=depths, warn=False,
                               probe_absorption=probe_absorption, transport_model=model)
                 for p, f in zip(probes, filters, strict=True)]
