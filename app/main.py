@@ -62,6 +62,9 @@ def main() -> None:
     page.run()
     st.divider()
     st.caption(FOOT_CAUTION)
+    from app.page_common import freeze_startup_objects
+
+    freeze_startup_objects()  # once per process: later garbage collections skip the start-up heap
 
 
 

@@ -10,6 +10,7 @@ notes as a fresh one.
 from __future__ import annotations
 
 import contextlib
+import gc
 import re
 import shutil
 import tempfile
@@ -24,6 +25,7 @@ from probeplan.io.shipped import shipped_folder
 from probeplan.errors import InputError
 
 __all__ = [
+    "freeze_startup_objects",
     "REPO_ROOT",
     "DEMO_DIR",
     "FIGURE_DPI",
@@ -172,3 +174,23 @@ def fmt(value: Any, digits: int = 3) -> str:
 
 #: One probe as plain values: (material, emission peak nm, QY or None, extinction M^-1 cm^-1 or None).
 ProbeSpec = tuple[str, float, float | None, float | None]
+
+
+_FROZEN = False
+
+
+def freeze_startup_objects() -> None:
+    """Once per process, after the first page is drawn: keep what is alive then out of later garbage collections.
+
+    The page holds a large, long-lived heap (Streamlit, matplotlib, numpy, the model's caches and
+    compiled loops).  Python's full (oldest-generation) collections walk all of it and paused a
+    re-render by up to half a second.  :func:`gc.freeze` moves every object alive at this point
+    (after a collection) into a permanent generation that later collections skip; objects made
+    afterwards are collected as usual.
+    """
+    global _FROZEN
+    if _FROZEN:
+        return
+    _FROZEN = True
+    gc.collect()
+    gc.freeze()

@@ -118,31 +118,45 @@ def depth_profiles(setup: Setup, depth_max_mm: float, depth_step_mm: float, laye
     """One :class:`~probeplan.model.fluorescence.DepthProfile` per probe (its own filter) and the notes.
 
     ``layers``: ((tissue name, thickness mm), ...) from the surface down over the set-up's tissue.
+    Each probe's profile is cached on its own (:func:`_probe_depth_profile`): moving one probe's
+    control recomputes only that probe.
     """
     from probeplan.errors import input_error
+
+    if len(setup.filters) != len(setup.probes):
+        raise input_error("filters", f"{len(setup.filters)} filters for {len(setup.probes)} probes",
+                          "give one emission filter per probe")
+    names = [(m, float(peak)) for m, peak, _, _ in setup.probes]
+    if len(set(names)) != len(names):
+        raise input_error("probes", f"two probes are the same ({names})", "give each probe its own material or peak")
+    notes: list[str] = []
+    profiles = []
+    for probe, filt in zip(setup.probes, setup.filters, strict=True):
+        profile, probe_notes = _probe_depth_profile(setup._replace(probes=(probe,), filters=(filt,)), depth_max_mm,
+                                                    depth_step_mm, layers)
+        profiles.append(profile)
+        notes += [n for n in probe_notes if n not in notes]
+    return profiles, notes
+
+
+@st.cache_data(max_entries=256, show_spinner=False)
+def _probe_depth_profile(setup: Setup, depth_max_mm: float, depth_step_mm: float, layers: tuple = ()):
+    """The depth profile of a set-up holding one probe and its filter, and the notes (warnings first)."""
     from probeplan.model.fluorescence import depth_profile
 
     notes: list[str] = []
     with captured_warnings(notes):
-        if len(setup.filters) != len(setup.probes):
-            raise input_error("filters", f"{len(setup.filters)} filters for {len(setup.probes)} probes",
-                              "give one emission filter per probe")
         built = build(setup, layers)
         depths = depth_grid_mm(depth_max_mm, depth_step_mm, setup.target_depth_mm)
-        profiles = [
-            depth_profile(
-                built.tissue, probe, source=ch.source, irradiance_mw_per_cm2=built.irradiance_mw_per_cm2,
-                emission_filter=ch.emission_filter, camera=ch.camera, lens=ch.lens, exposure_s=ch.exposure_s,
-                depth_mm=depths, target_size_mm=setup.target_size_mm, concentration_uM=setup.concentration_uM,
-                uptake_ratio=setup.uptake_ratio, autofluorescence=built.autofluorescence,
-            )
-            for probe, ch in zip(built.probes, built.channels, strict=True)
-        ]
-    for p in profiles:
-        for n in p.notes:
-            if n not in notes:
-                notes.append(n)
-    return profiles, notes
+        ch = built.channels[0]
+        profile = depth_profile(
+            built.tissue, built.probes[0], source=ch.source, irradiance_mw_per_cm2=built.irradiance_mw_per_cm2,
+            emission_filter=ch.emission_filter, camera=ch.camera, lens=ch.lens, exposure_s=ch.exposure_s,
+            depth_mm=depths, target_size_mm=setup.target_size_mm, concentration_uM=setup.concentration_uM,
+            uptake_ratio=setup.uptake_ratio, autofluorescence=built.autofluorescence,
+        )
+    notes += [n for n in profile.notes if n not in notes]
+    return profile, notes
 
 
 @st.cache_data(max_entries=64, show_spinner=False)
@@ -153,8 +167,9 @@ def depth_png(setup: Setup, depth_max_mm: float, depth_step_mm: float, sbr_thres
     from probeplan.report.figures import depth_figure
 
     profiles, _ = depth_profiles(setup, depth_max_mm, depth_step_mm, layers)
-    fig = depth_figure(profiles, sbr_threshold=sbr_threshold, target_depth_mm=setup.target_depth_mm)
-    return figure_png_bytes(fig, dpi=FIGURE_DPI)
+    # fixed margins, drawn once: the figure is redrawn whenever a control moves
+    fig = depth_figure(profiles, sbr_threshold=sbr_threshold, target_depth_mm=setup.target_depth_mm, quick=True)
+    return figure_png_bytes(fig, dpi=FIGURE_DPI, tight=False, compress_level=1)
 
 
 @st.cache_data(max_entries=64, show_spinner=False)
@@ -188,8 +203,8 @@ def channels_png(setup: Setup) -> bytes:
         probes = build_probes(setup)
         channels = build_channels(setup)
         fig = channels_figure(emission_grid_nm(probes), probes, channels, rep.crosstalk[0], rep.probe_names,
-                              rep.channel_names, depth_mm=float(rep.depth_mm[0]))
-    return figure_png_bytes(fig, dpi=FIGURE_DPI)
+                              rep.channel_names, depth_mm=float(rep.depth_mm[0]), quick=True)
+    return figure_png_bytes(fig, dpi=FIGURE_DPI, tight=False, compress_level=1)  # fixed margins, drawn once
 
 
 @st.cache_data(max_entries=64, show_spinner=False)
