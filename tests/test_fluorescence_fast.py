@@ -32,8 +32,7 @@ def soft():
 def _numpy_only(monkeypatch):
     """Force the numpy path everywhere and start with empty caches."""
     monkeypatch.setattr(fl, "_COMPILED_MIN_POINTS", 10**15)
-    fl._tissue_coefficients.cache_clear()
-    fl._uptake_mu_a_cached.cache_clear()
+    fl.clear_caches()
     dots._yu_peak_nm.cache_clear()
 
 

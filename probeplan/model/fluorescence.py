@@ -92,6 +92,7 @@ __all__ = [
     "photons_per_s_per_mw",
     "emission_grid_nm",
     "probe_mu_a_per_cm",
+    "clear_caches",
     "PROBE_ABSORPTION_WARN_FRACTION",
     "DEFAULT_SBR_THRESHOLD",
     "MM_PER_CM",
@@ -152,10 +153,31 @@ def optical_properties(tissue: Tissue, wavelength_nm, absorbers=()) -> tuple[np.
         if absorbers:
             mu_a = mu_a + _uptake_mu_a(absorbers, wavelength_nm)
         return mu_a, tissue.mu_s_prime_per_cm(wavelength_nm, warn=False)
-    mu_a, mu_sp = _tissue_coefficients(tissue, key)
+    mu_a, mu_sp = _cached(_tissue_coefficients, tissue, key)
     if absorbers:
-        mu_a = mu_a + _uptake_mu_a_cached(tuple((p, float(c)) for p, c in absorbers), key)
+        mu_a = mu_a + _cached(_uptake_mu_a_cached, tuple((p, float(c)) for p, c in absorbers), key)
     return mu_a.copy(), mu_sp.copy()
+
+
+def clear_caches() -> None:
+    """Empty the depth curve's caches (tissue coefficients, uptake absorption, fluence, escape fractions).
+
+    For benchmarks that time a computed curve, and for tests; nothing else needs it (the
+    cached values depend only on the arguments that key them).
+    """
+    for cache in (_tissue_coefficients, _uptake_mu_a_cached, _fluence_per_irradiance, _slices_escape,
+                  _half_space_escape):
+        cache.cache_clear()
+
+
+def _cached(function, *args):
+    """``function(*args)`` through its ``functools.lru_cache``, or directly when an argument cannot be
+    hashed (e.g. a user's spectrum held as arrays)."""
+    try:
+        hash(args)
+    except TypeError:
+        return function.__wrapped__(*args)
+    return function(*args)
 
 
 def _grid_key(wavelength_nm) -> tuple | None:
@@ -454,13 +476,37 @@ def _depths(depth_mm) -> np.ndarray:
 
 def _excitation_fluence_photons(tissue: Tissue, source, irradiance_mw_per_cm2: float, depth_mm: np.ndarray,
                                 absorbers=(), model: str = "auto"):
-    """Fluence rate (photons/s/cm²) at each depth, integrated over the source spectrum."""
+    """Fluence rate (photons/s/cm²) at each depth, integrated over the source spectrum.
+
+    Linear in the irradiance: the fluence per mW/cm² is cached for the tissue, source spectrum,
+    depths and absorbers (:func:`_fluence_per_irradiance`), so moving the irradiance (or the
+    camera, filter or exposure) does not redo the transport.
+    """
     wl_x, weights = _source_spectrum(source)
+    unit = _cached(_fluence_per_irradiance, tissue, _grid_key(wl_x), _grid_key(weights), _grid_key(depth_mm),
+                                   _absorbers_key(absorbers), model)
+    return irradiance_mw_per_cm2 * unit
+
+
+def _absorbers_key(absorbers) -> tuple:
+    return tuple((p, float(c)) for p, c in absorbers)
+
+
+#: Entries kept by the transport caches of the depth curve (each holds arrays of a few MB at most).
+_TRANSPORT_CACHE_SIZE = 16
+
+
+@functools.lru_cache(maxsize=_TRANSPORT_CACHE_SIZE)
+def _fluence_per_irradiance(tissue, wl_key: tuple, weights_key: tuple, depth_key: tuple, absorbers: tuple,
+                            model: str) -> np.ndarray:
+    wl_x, weights, depth_mm = _grid_from_key(wl_key), _grid_from_key(weights_key), _grid_from_key(depth_key)
     mu_a, mu_sp, layer_factor = _coefficients_at(tissue, wl_x, depth_mm, absorbers, with_factor=True)
     phi = layer_factor * transport.broad_beam_fluence(depth_mm[:, None], mu_a, mu_sp, tissue.refractive_index,
                                                       g=_anisotropy(tissue), model=model)
-    photons = irradiance_mw_per_cm2 * photons_per_s_per_mw(wl_x)  # photons/s/cm² per nm-weight
-    return np.trapezoid(phi * photons * weights, wl_x, axis=-1)
+    photons = photons_per_s_per_mw(wl_x)  # photons/s/cm² per mW/cm² per nm-weight
+    out = np.trapezoid(phi * photons * weights, wl_x, axis=-1)
+    out.flags.writeable = False
+    return out
 
 
 def _source_spectrum(source) -> tuple[np.ndarray, np.ndarray]:
@@ -626,7 +672,6 @@ def _signal_rate(tissue, probe, source, irradiance, emission_filter, camera, len
     offset = radius * nodes  # (S,) slice positions relative to the centre, mm
     z = np.maximum(depth[:, None] + offset[None, :], 0.0)  # (D, S) slice depths; above the skin counts as at it
     dz = np.broadcast_to(radius * weights, z.shape)  # (D, S) slice thickness weights, mm
-    rho = np.broadcast_to(radius * np.sqrt(1.0 - nodes**2), z.shape)  # (D, S) slice radii, mm
     fluence = _excitation_fluence_photons(tissue, source, irradiance, z.ravel(), absorbers, model).reshape(z.shape)
     eps = float(np.asarray(probe.molar_extinction_per_M_cm(float(source.centre_nm))))
     mu_a_probe = math.log(10.0) * eps * conc_uM * M_PER_UM  # cm^-1
@@ -648,9 +693,8 @@ def _signal_rate(tissue, probe, source, irradiance, emission_filter, camera, len
     # photons/s per mm³ of inclusion in each slice (fluence per cm², coefficient per cm → per cm³ → per mm³)
     q = probe.quantum_yield * mu_a_probe * fluence / MM3_PER_CM3
     # the transport factor varies slowly with wavelength: evaluate it every few nm, interpolate onto the 1 nm grid
-    mu_a_z, mu_sp_z, layer_factor = _coefficients_at(tissue, coarse, z, absorbers, with_factor=True)
-    frac = layer_factor * disc_escape_fraction(rho[:, :, None], z[:, :, None], mu_a_z, mu_sp_z, tissue.refractive_index,
-                                               g=_anisotropy(tissue), model=model)  # (D, S, Wc)
+    frac = _cached(_slices_escape, tissue, _grid_key(coarse), _grid_key(depth), float(size_mm), _absorbers_key(absorbers),
+                          model)  # (D, S, Wc)
     if d_mu_eff_em is None:
         exitance = _interp_last(np.einsum("ds,dsw->dw", q * dz, frac), coarse, wl)  # photons/s/mm² per unit spectrum
     else:
@@ -666,6 +710,23 @@ def _signal_rate(tissue, probe, source, irradiance, emission_filter, camera, len
     detect = _detection(camera, lens) * emission_filter.transmission(wl) * camera.qe(wl)
     rate = np.trapezoid(escaped * detect[None, :], wl, axis=-1)
     return rate, wl, escaped
+
+
+@functools.lru_cache(maxsize=_TRANSPORT_CACHE_SIZE)
+def _slices_escape(tissue, coarse_key: tuple, depth_key: tuple, size_mm: float, absorbers: tuple,
+                   model: str) -> np.ndarray:
+    """Escape fraction through each slice's disc (D, S, Wc), cached: it depends on the tissue, the
+    absorbers, the grid, the depths and the target's size, not on the source power, filter or camera."""
+    coarse, depth = _grid_from_key(coarse_key), _grid_from_key(depth_key)
+    radius = size_mm / 2.0
+    nodes, _ = _SPHERE_NODES
+    z = np.maximum(depth[:, None] + radius * nodes[None, :], 0.0)
+    rho = np.broadcast_to(radius * np.sqrt(1.0 - nodes**2), z.shape)
+    mu_a_z, mu_sp_z, layer_factor = _coefficients_at(tissue, coarse, z, absorbers, with_factor=True)
+    frac = layer_factor * disc_escape_fraction(rho[:, :, None], z[:, :, None], mu_a_z, mu_sp_z, tissue.refractive_index,
+                                               g=_anisotropy(tissue), model=model)
+    frac.flags.writeable = False
+    return frac
 
 
 def _coarse_grid(wl: np.ndarray, absorbers=()) -> np.ndarray:
@@ -692,17 +753,28 @@ def _interp_last(values: np.ndarray, x: np.ndarray, x_new: np.ndarray) -> np.nda
 def _half_space_integral(tissue, source, irradiance, wl_em, emission_per_nm, yield_per_cm, absorbers=(),
                          model="auto"):
     """Exitance (photons/s/mm²/nm) of a uniform fluorophore in the half-space, excited by the beam."""
-    mu_a_x, mu_sp_x = optical_properties(tissue, float(source.centre_nm), absorbers)
-    mu_eff_x = float(transport.mu_eff(mu_a_x, mu_sp_x)) / MM_PER_CM
-    z_max = min(60.0, 25.0 / max(mu_eff_x, 1e-3))
-    z = np.concatenate([[0.0], np.geomspace(1e-3, z_max, _N_BACKGROUND_DEPTHS - 1)])
+    z, esc = _cached(_half_space_escape, tissue, float(source.centre_nm), _grid_key(wl_em), _absorbers_key(absorbers), model)
     fluence = _excitation_fluence_photons(tissue, source, irradiance, z, absorbers, model)  # photons/s/cm²
-    mu_a, mu_sp, layer_factor = _coefficients_at(tissue, wl_em, z, absorbers, with_factor=True)
-    esc = layer_factor * disc_escape_fraction(np.inf, z[:, None], mu_a, mu_sp, tissue.refractive_index,
-                                              g=_anisotropy(tissue), model=model)
     # per cm³: yield_per_cm * fluence photons/s; per mm³ divide by 1000; integrate dz in mm.
     source_per_mm3 = yield_per_cm * fluence / MM3_PER_CM3
     return np.trapezoid(source_per_mm3[:, None] * esc, z, axis=0) * emission_per_nm
+
+
+@functools.lru_cache(maxsize=_TRANSPORT_CACHE_SIZE)
+def _half_space_escape(tissue, excitation_nm: float, wl_key: tuple, absorbers: tuple,
+                       model: str) -> tuple[np.ndarray, np.ndarray]:
+    """Depths (mm) of the half-space integral and the total escape from each at each wavelength, cached."""
+    wl_em = _grid_from_key(wl_key)
+    mu_a_x, mu_sp_x = optical_properties(tissue, excitation_nm, absorbers)
+    mu_eff_x = float(transport.mu_eff(mu_a_x, mu_sp_x)) / MM_PER_CM
+    z_max = min(60.0, 25.0 / max(mu_eff_x, 1e-3))
+    z = np.concatenate([[0.0], np.geomspace(1e-3, z_max, _N_BACKGROUND_DEPTHS - 1)])
+    mu_a, mu_sp, layer_factor = _coefficients_at(tissue, wl_em, z, absorbers, with_factor=True)
+    esc = layer_factor * disc_escape_fraction(np.inf, z[:, None], mu_a, mu_sp, tissue.refractive_index,
+                                              g=_anisotropy(tissue), model=model)
+    z.flags.writeable = False
+    esc.flags.writeable = False
+    return z, esc
 
 
 def background_rates(

@@ -23,10 +23,12 @@ import numpy as np
 __all__ = ["disc_escape_mc", "slices_on_fine_grid", "available"]
 
 
-def _kernel(r, d, mu, zb, image, musp, i0w, tiw, esc_factor, table, slopes, z, whole, p0, p1, out):  # pragma: no cover
+def _kernel(r, d, mu, zb, image, musp, i0w, tiw, esc_factor, table, slopes, z, cell, step, whole, p0, p1,
+            out):  # pragma: no cover - compiled
     # r, d: (P,) slice radii and depths (mm); mu (mm^-1), zb (mm), image = exp(-2 mu zb), musp (cm^-1),
     # i0w, tiw, esc_factor: (W,); table: (K, Z, Q) ln C on the common grid (Q = 1: escape; 3: escape,
-    # exitance0, fwhm); slopes (K, Q); rows p0:p1 of out are computed (threads share the rest)
+    # exitance0, fwhm); slopes (K, Q); cell[k]: the depth cell holding k * step (a uniform index into the
+    # non-uniform grid z, in place of a bisection); rows p0:p1 of out are computed (threads share the rest)
     n_w = mu.shape[0]
     n_z = z.shape[0]
     n_q = table.shape[2]
@@ -48,14 +50,9 @@ def _kernel(r, d, mu, zb, image, musp, i0w, tiw, esc_factor, table, slopes, z, w
             elif zr >= z_last:
                 iz = n_z - 1.0
             else:
-                lo_i = 0
-                hi_i = n_z - 1
-                while hi_i - lo_i > 1:  # z[lo_i] <= zr < z[hi_i]
-                    mid = (lo_i + hi_i) // 2
-                    if z[mid] <= zr:
-                        lo_i = mid
-                    else:
-                        hi_i = mid
+                lo_i = cell[int(zr / step)]
+                while z[lo_i + 1] <= zr:  # z[lo_i] <= zr < z[lo_i + 1]
+                    lo_i += 1
                 iz = (zr - z[lo_i]) / (z[lo_i + 1] - z[lo_i]) + lo_i
             j0 = min(int(iz), n_z - 2)
             tj = iz - j0
@@ -83,6 +80,82 @@ def _kernel(r, d, mu, zb, image, musp, i0w, tiw, esc_factor, table, slopes, z, w
             scaled = total - 0.5 * (tail1 + tail2)
             x = scaled / total if total > 0 else 1.0
             out[p, w] = scaled * (peak * width**2 * (1.0 - x) + escape * x)
+
+
+def _logs_kernel(d, mu, musp, i0w, tiw, esc_factor, table, slopes, z, cell, step, p0, p1, a):  # pragma: no cover
+    # stage 1 of the staged loop: the exponents, a[p - p0, w] = (-mu d, ln C_escape, ln C_0, ln C_width)
+    n_w = mu.shape[0]
+    n_z = z.shape[0]
+    n_q = table.shape[2]
+    z_first = z[0]
+    z_last = z[n_z - 1]
+    for p in range(p0, p1):
+        dp = d[p]
+        row = p - p0
+        for w in range(n_w):
+            a[row, w, 0] = -mu[w] * dp
+            zr = dp / 10.0 * musp[w]
+            if zr <= z_first:
+                iz = 0.0
+            elif zr >= z_last:
+                iz = n_z - 1.0
+            else:
+                lo_i = cell[int(zr / step)]
+                while z[lo_i + 1] <= zr:
+                    lo_i += 1
+                iz = (zr - z[lo_i]) / (z[lo_i + 1] - z[lo_i]) + lo_i
+            j0 = min(int(iz), n_z - 2)
+            tj = iz - j0
+            i0 = i0w[w]
+            ti = tiw[w]
+            beyond = max(zr - z_last, 0.0)
+            for q in range(n_q):
+                lo = table[i0, j0, q] * (1 - tj) + table[i0, j0 + 1, q] * tj
+                hi = table[i0 + 1, j0, q] * (1 - tj) + table[i0 + 1, j0 + 1, q] * tj
+                value = lo + (hi - lo) * ti
+                if beyond > 0.0:
+                    value = value + (slopes[i0, q] * (1 - ti) + slopes[i0 + 1, q] * ti) * beyond
+                a[row, w, 1 + q] = value * esc_factor[w] if q == 0 else value
+
+
+def _tails_kernel(r, d, mu, zb, p0, p1, a, b):  # pragma: no cover - compiled
+    # stage 2: with a = exp(stage 1), the distances to the disc's rim, b[row, w] = (-mu R1, -mu R2, R1, R2)
+    n_w = mu.shape[0]
+    for p in range(p0, p1):
+        dp = d[p]
+        row = p - p0
+        for w in range(n_w):
+            d2 = dp + 2.0 * zb[w]
+            rs = r[p] / a[row, w, 3]
+            r1 = math.sqrt(dp * dp + rs * rs)
+            r2 = math.sqrt(d2 * d2 + rs * rs)
+            b[row, w, 0] = -mu[w] * r1
+            b[row, w, 1] = -mu[w] * r2
+            b[row, w, 2] = r1
+            b[row, w, 3] = r2
+
+
+def _combine_kernel(d, zb, image, whole, p0, p1, a, b, out):  # pragma: no cover - compiled
+    # stage 3: with a = exp(stage 1) and b[..., :2] = exp(-mu R), the escape fraction
+    n_w = zb.shape[0]
+    for p in range(p0, p1):
+        dp = d[p]
+        row = p - p0
+        for w in range(n_w):
+            real = a[row, w, 0]
+            total = 0.5 * (real + real * image[w])  # exp(-mu d2) = exp(-mu d) exp(-2 mu zb)
+            escape = a[row, w, 1]
+            if whole:
+                out[p, w] = escape * total
+                continue
+            d2 = dp + 2.0 * zb[w]
+            width = a[row, w, 3]
+            r1 = b[row, w, 2]
+            tail1 = dp * b[row, w, 0] / r1 if r1 > 0 else 0.0
+            tail2 = d2 * b[row, w, 1] / b[row, w, 3]
+            scaled = total - 0.5 * (tail1 + tail2)
+            x = scaled / total if total > 0 else 1.0
+            out[p, w] = scaled * (a[row, w, 2] * width**2 * (1.0 - x) + escape * x)
 
 
 def _fine_kernel(frac, weight, inside, d_mu, idx, t, out):  # pragma: no cover - compiled
@@ -114,7 +187,7 @@ def _compiled():
     except ImportError:  # pragma: no cover - numba is a dependency; the numpy path remains
         return None
     jit = numba.njit(cache=True, nogil=True, error_model="numpy")
-    return jit(_kernel), jit(_fine_kernel)
+    return jit(_kernel), jit(_fine_kernel), jit(_logs_kernel), jit(_tails_kernel), jit(_combine_kernel)
 
 
 def available() -> bool:
@@ -122,7 +195,8 @@ def available() -> bool:
     return _compiled() is not None
 
 
-def disc_escape_mc(radius_mm, depth_mm, mu_eff_per_mm, z_b_mm, mu_s_prime_per_cm, ratio, g: float, n: float):
+def disc_escape_mc(radius_mm, depth_mm, mu_eff_per_mm, z_b_mm, mu_s_prime_per_cm, ratio, g: float, n: float, *,
+                   staged: bool = True):
     """The ``"mc_table"`` disc escape fraction, shape (P, W), from per-point and per-wavelength inputs.
 
     Parameters
@@ -133,6 +207,10 @@ def disc_escape_mc(radius_mm, depth_mm, mu_eff_per_mm, z_b_mm, mu_s_prime_per_cm
         μeff (mm⁻¹), extrapolated boundary (mm), μs′ (cm⁻¹) and μa/μs′ at each wavelength.
     g, n : float
         Anisotropy and refractive index (table axes).
+
+    staged : bool
+        Compute the exponentials with numpy between three compiled passes (vectorised; the
+        default) rather than one at a time inside one compiled loop.
 
     Returns
     -------
@@ -160,12 +238,51 @@ def disc_escape_mc(radius_mm, depth_mm, mu_eff_per_mm, z_b_mm, mu_s_prime_per_cm
     rad = np.ascontiguousarray(np.broadcast_to(np.asarray(radius_mm, dtype=np.float64), d.shape))
     mu = np.ascontiguousarray(mu_eff_per_mm, dtype=np.float64)
     zb = np.ascontiguousarray(z_b_mm, dtype=np.float64)
+    cell, step = _depth_cells()
     args = (rad, d, mu, zb, np.exp(-2.0 * mu * zb), np.ascontiguousarray(mu_s_prime_per_cm, dtype=np.float64),
             np.ascontiguousarray(i0, dtype=np.int64), np.ascontiguousarray(ti), np.ascontiguousarray(factor), table,
-            np.ascontiguousarray(slopes), z, whole)
+            np.ascontiguousarray(slopes), z, cell, step, whole)
     out = np.empty((d.size, r.size))
-    _in_threads(lambda p0, p1: kernel(*args, p0, p1, out), d.size, d.size * r.size)
+    if not staged:
+        _in_threads(lambda p0, p1: kernel(*args, p0, p1, out), d.size, d.size * r.size)
+        return out
+    logs, tails, combine = compiled[2], compiled[3], compiled[4]
+    musp, i0c, tic, fac, slc = args[5], args[6], args[7], args[8], args[10]
+    image = args[4]
+    n_w = r.size
+    rows = max(1, _STAGE_POINTS // max(n_w, 1))
+
+    def run(p0: int, p1: int) -> None:
+        # in blocks of rows small enough to stay in cache; the exponentials by numpy (vectorised)
+        for q0 in range(p0, p1, rows):
+            q1 = min(q0 + rows, p1)
+            a = np.empty((q1 - q0, n_w, 2 if whole else 4))
+            logs(d, mu, musp, i0c, tic, fac, table, slc, z, cell, step, q0, q1, a)
+            np.exp(a, out=a)
+            b = np.empty((q1 - q0, n_w, 4))
+            if not whole:
+                tails(rad, d, mu, zb, q0, q1, a, b)
+                np.exp(b[..., :2], out=b[..., :2])
+            combine(d, zb, image, whole, q0, q1, a, b, out)
+
+    _in_threads(run, d.size, d.size * r.size)
     return out
+
+
+#: Points per block of the staged loop (buffers of a few hundred kB).
+_STAGE_POINTS = 8192
+
+
+@functools.lru_cache(maxsize=1)
+def _depth_cells() -> tuple[np.ndarray, float]:
+    """For k = 0, 1, ...: the cell i of the tables' depth grid with z[i] <= k·step, step half the finest cell."""
+    from probeplan.model import transport_tables as tt
+
+    z = tt._tables()["z"]
+    step = float(np.min(np.diff(z))) / 2.0
+    starts = np.arange(int(z[-1] / step) + 2) * step
+    cell = np.clip(np.searchsorted(z, starts, side="right") - 1, 0, z.size - 2).astype(np.int64)
+    return cell, step
 
 
 #: Points per thread below which the compiled loop runs in the calling thread alone.
