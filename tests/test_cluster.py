@@ -194,3 +194,32 @@ def test_folder_on_the_cluster_refuses_a_foreign_output(tmp_path, cluster, capsy
     assert (tmp_path / "out" / "m1.ome.tif").read_bytes() == b"someone else's file"
     assert main([*args, "--overwrite"]) == 0
     assert tifffile.imread(tmp_path / "out" / "m1.ome.tif").shape == (3, 40, 48)
+
+
+def test_roi_file_with_a_label_image_on_the_cluster(tmp_path, cluster):
+    # an ROI file whose region is a label of a label image: the workers get that image once and
+    # the ROI table equals a local run's
+    from probeplan.unmixing.roi import Roi
+    from probeplan.unmixing.roifile import write_roi_file
+
+    _stack(tmp_path / "s.ome.tif")
+    ref = _refs(tmp_path / "ref.csv")
+    labels = np.zeros((40, 48), np.uint16)
+    labels[5:15, 5:20] = 3
+    tifffile.imwrite(tmp_path / "labels.tif", labels)
+    write_roi_file(tmp_path / "rois.json", [Roi("tumour", label=3, labels_file="labels.tif")])
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b").mkdir()
+    common = ["unmix", str(tmp_path / "s.ome.tif"), "--references", str(ref), "--memory-mb", "0.02",
+              "--roi", str(tmp_path / "rois.json"), "--roi", "background:20,20,40,40"]
+    assert main([*common, "--out", str(tmp_path / "a" / "x.tif")]) == 0
+    assert main([*common, "--out", str(tmp_path / "b" / "x.tif"), "--scheduler", cluster.scheduler_address]) == 0
+    import csv
+
+    rows_a = list(csv.DictReader((tmp_path / "a" / "x_roi.csv").open()))
+    rows_b = list(csv.DictReader((tmp_path / "b" / "x_roi.csv").open()))
+    assert {r["roi"] for r in rows_b} == {"tumour", "background"}
+    assert any(r["roi"] == "tumour" and int(r["n_pixels"]) == 150 for r in rows_b)
+    for x, y in zip(rows_a, rows_b, strict=True):
+        for key in ("n_pixels", "mean", "sd"):
+            assert float(x[key]) == pytest.approx(float(y[key]), rel=1e-9), key
