@@ -16,7 +16,7 @@ _HEADERS = {
     "depth": ("Depth: how deep can each probe be seen?",
               "Signal-to-background ratio (SBR), signal-to-noise ratio (SNR) per pixel and the blur of a "
               "target inclusion against its depth below the skin, for each probe in its own emission filter "
-              "(diffusion model of the tissue). Tissue, excitation, camera and target are in the sidebar."),
+              "(light transport: diffusion theory corrected by Monte Carlo tables). Tissue, excitation, camera and target are in the sidebar."),
     "channels": ("Channels: crosstalk and separability",
                  "How much of each probe reaches the other probes' channels at the target depth, and what "
                  "separating them (unmixing) costs in noise; then a search for the best probe and filter set. "
