@@ -99,6 +99,10 @@ class StudySettings:
     auto_rois : tuple of str
         ``"NAME=COMPONENT"``: an ROI per acquisition from that component's abundance map by
         Otsu's threshold (:func:`probeplan.unmixing.roi.otsu_roi`).
+    memory_limit_mb : float
+        Working-memory bound of one acquisition: its files are read, unmixed, measured and
+        written by blocks of rows sized to it (as ``probeplan unmix --memory-mb``); the
+        results do not depend on it.
     """
 
     method: str = "nnls"
@@ -113,6 +117,7 @@ class StudySettings:
     write_maps: bool = True
     roi_file: Path | None = None
     auto_rois: tuple[str, ...] = ()
+    memory_limit_mb: float = 256.0  # the unmix command's default, probeplan.unmixing.pipeline.DEFAULT_MEMORY_MB
 
 
 @dataclass
@@ -182,25 +187,6 @@ def _matched_references(references, names, where):
     return references, "by position (the file names no channels)"
 
 
-def _correction(path, names, data_shape, where, what):
-    if path is None:
-        return None
-    from probeplan.io.stacks import read_stack
-
-    arr, info = read_stack(path)
-    arr = np.moveaxis(arr, info.channel_axis, 0).astype(np.float64)
-    if names is not None and info.channel_names is not None:
-        missing = [c for c in names if c not in info.channel_names]
-        if missing:
-            raise input_error(str(path), f"no {what} channel {missing} for {where}",
-                              f"give a {what} stack with the acquisition's channels")
-        arr = arr[[info.channel_names.index(c) for c in names]]
-    if arr.shape != tuple(data_shape):
-        raise input_error(str(path), f"shape {arr.shape} (channels first) differs from {where}'s {tuple(data_shape)}",
-                          f"give a {what} stack of the acquisition's shape")
-    return arr
-
-
 def _rois(settings: StudySettings, shape_yx):
     """The drawn ROIs (rectangles, ellipses, polygons, label images, an ROI file) with their label image."""
     from probeplan.unmixing.roi import parse_roi, rois_from_labels
@@ -263,9 +249,147 @@ def roi_least_squares(y, M):
     return np.linalg.solve(M.T @ M, M.T @ y)
 
 
+class _AcquisitionRows:
+    """An acquisition's files opened for reading by blocks of rows (one multi-channel file, or one file per channel).
+
+    The same checks as :func:`load_acquisition`, made on the headers; :meth:`read_rows` gives
+    rows ``r0:r1`` channel first, ``(C, ..., r1 - r0, X)``, with the dtype the whole array would have.
+    """
+
+    def __init__(self, acq: Acquisition, channel_axis: int | None):
+        from probeplan.io.stacks import open_stack
+
+        self.readers = []
+        self.one_file = acq.channels is None
+        try:
+            if acq.channels is None:
+                r = open_stack(acq.files[0], channel_axis=channel_axis)
+                self.readers.append(r)
+                info = r.info
+                self.channel_names, self.pixel_size_um = info.channel_names, info.pixel_size_um
+                self.spatial_axes, self.spatial_shape, self.dtype = info.spatial_axes, info.spatial_shape, info.dtype
+                self.n_channels = info.n_channels
+            else:
+                sizes, shape = set(), None
+                for f, ch in zip(acq.files, acq.channels, strict=True):
+                    r = open_stack(f, allow_plane=True)
+                    self.readers.append(r)
+                    info = r.info
+                    if info.n_channels != 1:
+                        raise input_error(f"{acq.where} ({f.name})", f"channel {ch!r} is a file of {info.n_channels} "
+                                          "channels", "list a multi-channel file with an empty channel cell, or give "
+                                          "one file per channel")
+                    if shape is not None and info.spatial_shape != shape:
+                        raise input_error(f"{acq.where} ({f.name})", f"shape {info.spatial_shape} differs from {shape} "
+                                          "of the other channels", "give every channel of one acquisition the same "
+                                          "image size")
+                    shape = info.spatial_shape
+                    if info.pixel_size_um is not None:
+                        sizes.add(tuple(round(v, 9) for v in info.pixel_size_um))
+                if len(sizes) > 1:
+                    raise input_error(acq.where, f"the channel files give different pixel sizes {sorted(sizes)} µm",
+                                      "give files of one acquisition with one pixel size")
+                self.channel_names, self.pixel_size_um = tuple(acq.channels), (sizes.pop() if sizes else None)
+                self.spatial_axes, self.spatial_shape = "YX", shape
+                self.dtype = np.result_type(*(r.info.dtype for r in self.readers))
+                self.n_channels = len(self.readers)
+        except BaseException:
+            self.close()
+            raise
+        self.n_rows = self.spatial_shape[-2]
+
+    def read_rows(self, r0: int, r1: int) -> np.ndarray:
+        if self.one_file:
+            return self.readers[0].read_rows_channel_first(r0, r1)
+        return np.stack([r.read_rows_channel_first(r0, r1)[0] for r in self.readers]).astype(self.dtype, copy=False)
+
+    def close(self) -> None:
+        for r in self.readers:
+            r.close()
+
+
+class _CorrectionRows:
+    """A dark frame or flat field opened for reading by rows, its channels in the acquisition's order."""
+
+    def __init__(self, path, names, data_shape, where, what):
+        from probeplan.io.stacks import open_stack
+
+        self.reader = open_stack(path)
+        info = self.reader.info
+        self.index = None
+        n = info.n_channels
+        if names is not None and info.channel_names is not None:
+            missing = [c for c in names if c not in info.channel_names]
+            if missing:
+                self.close()
+                raise input_error(str(path), f"no {what} channel {missing} for {where}",
+                                  f"give a {what} stack with the acquisition's channels")
+            self.index = [info.channel_names.index(c) for c in names]
+            n = len(self.index)
+        shape = (n, *info.spatial_shape)
+        if shape != tuple(data_shape):
+            self.close()
+            raise input_error(str(path), f"shape {shape} (channels first) differs from {where}'s {tuple(data_shape)}",
+                              f"give a {what} stack of the acquisition's shape")
+
+    def read_rows(self, r0: int, r1: int) -> np.ndarray:
+        arr = self.reader.read_rows_channel_first(r0, r1).astype(np.float64)
+        return arr[self.index] if self.index is not None else arr
+
+    def close(self) -> None:
+        self.reader.close()
+
+
+def study_rows_per_block(shape, n_channels: int, dtype, n_components: int, memory_limit_mb: float) -> int:
+    """Rows of one acquisition read, unmixed and measured at a time within ``memory_limit_mb``.
+
+    ``shape`` is the acquisition's spatial shape (``(..., Y, X)``); the bound is the unmix
+    command's (:func:`probeplan.unmixing.pipeline._rows_per_chunk`), which budgets every
+    channel's corrected float64 copies and the solver's work per pixel.
+    """
+    from types import SimpleNamespace
+
+    from probeplan.unmixing.pipeline import _rows_per_chunk
+
+    if not 0 < memory_limit_mb < np.inf:
+        raise input_error("memory_limit_mb", f"{memory_limit_mb} is not a finite number > 0",
+                          "give a positive memory bound in MiB")
+    info = SimpleNamespace(spatial_shape=tuple(shape), n_rows=int(shape[-2]), n_channels=int(n_channels),
+                           dtype=np.dtype(dtype))
+    return _rows_per_chunk(info, int(n_components), float(memory_limit_mb), 1)
+
+
+def _roi_abundances(block, dk, ff, M, sat):
+    """Unconstrained least-squares abundances of every pixel of a block, NaN where a pixel is left out.
+
+    ``block`` (C, ...) raw counts; a pixel is left out when a corrected channel is not finite
+    or a raw channel is at or above ``sat``.
+    """
+    C = block.shape[0]
+    raw = block.reshape(C, -1).astype(np.float64)
+    y = raw - dk if dk is not None else raw
+    if ff is not None:
+        y = y / ff
+    bad = ~np.isfinite(y).all(axis=0)
+    if sat is not None:
+        bad |= (raw >= sat).any(axis=0)
+    y[:, bad] = 0.0
+    a = roi_least_squares(y, M)
+    a[:, bad] = np.nan
+    return a.reshape(M.shape[1], *block.shape[1:])
+
+
 def measure_acquisition(acq: Acquisition, references, settings: StudySettings = StudySettings(), *,
                         out_dir: str | os.PathLike | None = None, unit: str | None = None) -> pd.DataFrame:
     """ROI statistics of one acquisition (and its maps written into ``out_dir``).
+
+    The acquisition streams through by blocks of rows (:func:`study_rows_per_block`, bounded by
+    ``settings.memory_limit_mb``): each block of every file is read, dark- and flat-corrected,
+    unmixed, written into the maps at its rows and added to the ROI statistics
+    (:class:`probeplan.unmixing.roi.RoiAccumulator`), so no stack is ever held whole.
+    Automatic ROIs (``settings.auto_rois``) need the whole map of their component: that one
+    (Y, X) plane per automatic ROI is kept, thresholded after the pass, and the ROI's
+    statistics are gathered in a second pass over the rows.
 
     Parameters
     ----------
@@ -282,73 +406,128 @@ def measure_acquisition(acq: Acquisition, references, settings: StudySettings = 
     DataFrame
         Columns :data:`MEASUREMENT_COLUMNS`.
     """
-    from probeplan.unmixing.pipeline import default_saturation, design_matrix, unmix_stack
+    from probeplan.unmixing.pipeline import _check_noise_model, _Params, default_saturation, design_matrix, unmix_block
+    from probeplan.unmixing.roi import Roi, RoiAccumulator
 
-    data, names, pixel_size, spatial_axes = load_acquisition(acq, channel_axis=settings.channel_axis)
-    refs, match = _matched_references(references, names, acq.where)
-    M, comps = design_matrix(refs, n_channels=data.shape[0])
-    dark = _correction(settings.dark_path, names, data.shape, acq.where, "dark")
-    flat = _correction(settings.flat_path, names, data.shape, acq.where, "flat")
-    if flat is not None and not (flat > 0).all():
-        raise input_error(str(settings.flat_path), "has values <= 0 or NaN", "give a flat field that is > 0 everywhere")
-    shape_yx = data.shape[-2:]
-    rois, labels = _rois(settings, shape_yx)
-    masks = [(roi, roi.mask(shape_yx, labels)) for roi in rois]
-    autos = _auto_specs(settings, comps)
-    sat = default_saturation(data.dtype)
-    unit = abundance_unit(refs, unit)
-    maps = None
-    if out_dir is not None and settings.write_maps:
-        maps = _write_maps(Path(out_dir), acq, data, refs, settings, dark, flat, comps, pixel_size, spatial_axes, unit)
-    if autos:
-        from probeplan.unmixing.roi import otsu_roi
-        from probeplan.unmixing.roifile import write_roi_file
+    src = _AcquisitionRows(acq, settings.channel_axis)
+    opened = [src]
+    writers = []
+    try:
+        names = src.channel_names
+        refs, match = _matched_references(references, names, acq.where)
+        M, comps = design_matrix(refs, n_channels=src.n_channels)
+        K = len(comps)
+        data_shape = (src.n_channels, *src.spatial_shape)
+        dark = flat = None
+        if settings.dark_path is not None:
+            dark = _CorrectionRows(settings.dark_path, names, data_shape, acq.where, "dark")
+            opened.append(dark)
+        if settings.flat_path is not None:
+            flat = _CorrectionRows(settings.flat_path, names, data_shape, acq.where, "flat")
+            opened.append(flat)
+        rows = study_rows_per_block(src.spatial_shape, src.n_channels, src.dtype, K, settings.memory_limit_mb)
+        blocks = [(r0, min(src.n_rows, r0 + rows)) for r0 in range(0, src.n_rows, rows)]
+        if flat is not None:  # refused before any work
+            for r0, r1 in blocks:
+                if not (flat.read_rows(r0, r1) > 0).all():
+                    raise input_error(str(settings.flat_path), "has values <= 0 or NaN",
+                                      "give a flat field that is > 0 everywhere")
+        shape_yx = src.spatial_shape[-2:]
+        rois, labels = _rois(settings, shape_yx)
+        autos = _auto_specs(settings, comps)
+        sat = default_saturation(src.dtype)
+        unit = abundance_unit(refs, unit)
+        write = out_dir is not None and settings.write_maps
+        _check_noise_model(settings.gain_e_per_count, settings.read_noise_e, 1.0)
+        # the options unmix_stack gives (default saturation, variance floor 1 count, automatic engine)
+        params = _Params(M, settings.method, sat, float(settings.gain_e_per_count), float(settings.read_noise_e), 1.0,
+                         "auto", write)
+        if write:
+            from probeplan.io.stacks import StackWriter
+            from probeplan.unmixing.pipeline import _out_axes
 
-        if maps is None:
-            maps = unmix_stack(data, refs, method=settings.method, dark=dark, flat=flat, errors=False).abundances
-        found = []
-        for name, comp in autos:
-            plane = maps[comps.index(comp)].reshape(-1, *shape_yx)
-            with np.errstate(all="ignore"):
-                plane = np.nanmean(plane, axis=0) if plane.shape[0] > 1 else plane[0]
-            roi, lab = otsu_roi(plane, name)
-            masks.append((roi, lab.astype(bool)))
-            found.append((roi, lab))
-        if out_dir is not None:
-            import tifffile
+            axes = _out_axes(src.spatial_axes)
+            paths = map_paths(Path(out_dir), acq.key)
+            spatial = src.spatial_shape
+            writers.append(StackWriter(paths["abundance"], (K, *spatial), axes=axes, channel_names=comps,
+                                       pixel_size_um=src.pixel_size_um))
+            writers.append(StackWriter(paths["stderr"], (K, *spatial), axes=axes,
+                                       channel_names=[f"{c} standard error" for c in comps],
+                                       pixel_size_um=src.pixel_size_um))
+            writers.append(StackWriter(paths["residual"], (1, *spatial), axes=axes,
+                                       channel_names=["residual rms (counts)"], pixel_size_um=src.pixel_size_um))
+        planes = {comp: np.empty(shape_yx) for comp in dict.fromkeys(c for _, c in autos)}
+        acc = RoiAccumulator(rois, comps, labels)
 
-            from probeplan.io.atomic import atomic_path
-            from probeplan.unmixing.roi import Roi
+        def corrections(r0, r1, C):
+            return (None if dark is None else dark.read_rows(r0, r1).reshape(C, -1),
+                    None if flat is None else flat.read_rows(r0, r1).reshape(C, -1))
 
-            saved = []
-            for roi, lab in found:
-                fname = f"{acq.key}_{_safe_name(roi.name)}_auto_roi.tif"
-                with atomic_path(Path(out_dir) / fname) as tmp:
-                    tifffile.imwrite(tmp, lab)
-                saved.append(Roi(roi.name, label=1, labels_file=fname))
-            write_roi_file(Path(out_dir) / f"{acq.key}_auto_rois.json", saved,
-                           image_size=(int(shape_yx[1]), int(shape_yx[0])),
-                           note=f"automatic ROIs of {acq.key}: Otsu's threshold on a component's abundance map")
-    C = data.shape[0]
-    raw = data.reshape(C, -1, *shape_yx).astype(np.float64)
-    y = raw - dark.reshape(raw.shape) if dark is not None else raw
-    if flat is not None:
-        y = y / flat.reshape(raw.shape)
-    bad = ~np.isfinite(y).all(axis=0)
-    if sat is not None:
-        bad |= (raw >= sat).any(axis=0)
+        for r0, r1 in blocks:
+            block = src.read_rows(r0, r1)
+            C, sp = block.shape[0], block.shape[1:]
+            dk, ff = corrections(r0, r1, C)
+            if write or planes:
+                x, se, resid, _ = unmix_block(block.reshape(C, -1), params, dk, ff)
+                x = x.reshape(K, *sp)
+                if write:
+                    writers[0].write_rows(r0, x)
+                    writers[1].write_rows(r0, se.reshape(K, *sp))
+                    writers[2].write_rows(r0, resid.reshape(1, *sp))
+                for comp, plane in planes.items():
+                    part = x[comps.index(comp)].reshape(-1, r1 - r0, shape_yx[1])
+                    with np.errstate(all="ignore"):
+                        plane[r0:r1] = np.nanmean(part, axis=0) if part.shape[0] > 1 else part[0]
+                del x, se, resid
+            acc.add(_roi_abundances(block, dk, ff, M, sat), r0)
+        stat_rows = acc.rows(None)
+        if autos:
+            from probeplan.unmixing.roi import otsu_roi
+            from probeplan.unmixing.roifile import write_roi_file
+
+            found = []
+            for name, comp in autos:
+                roi, lab = otsu_roi(planes[comp], name)
+                found.append((roi, lab))
+            del planes
+            auto_acc = RoiAccumulator([Roi(roi.name, pixel_mask=lab.astype(bool)) for roi, lab in found], comps)
+            for r0, r1 in blocks:  # the automatic ROIs' statistics: a second pass over the rows
+                block = src.read_rows(r0, r1)
+                auto_acc.add(_roi_abundances(block, *corrections(r0, r1, block.shape[0]), M, sat), r0)
+            stat_rows += auto_acc.rows(None)
+            rois = [*rois, *(roi for roi, _ in found)]
+            if out_dir is not None:
+                import tifffile
+
+                from probeplan.io.atomic import atomic_path
+
+                saved = []
+                for roi, lab in found:
+                    fname = f"{acq.key}_{_safe_name(roi.name)}_auto_roi.tif"
+                    with atomic_path(Path(out_dir) / fname) as tmp:
+                        tifffile.imwrite(tmp, lab)
+                    saved.append(Roi(roi.name, label=1, labels_file=fname))
+                write_roi_file(Path(out_dir) / f"{acq.key}_auto_rois.json", saved,
+                               image_size=(int(shape_yx[1]), int(shape_yx[0])),
+                               note=f"automatic ROIs of {acq.key}: Otsu's threshold on a component's abundance map")
+        for w in writers:
+            w.commit()
+    except BaseException:
+        for w in writers:
+            w.abort()
+        raise
+    finally:
+        for r in opened:
+            r.close()
     stats = {}
-    for roi, mask2d in masks:
-        mask = np.broadcast_to(mask2d, bad.shape)
-        sel = mask & ~bad
-        a = roi_least_squares(y[:, sel], M)
-        n = a.shape[1]
-        mean = a.mean(axis=1) if n else np.full(len(comps), np.nan)
-        sd = a.std(axis=1, ddof=1) if n > 1 else np.full(len(comps), np.nan)
-        stats[roi.name] = (mean, sd, n, int((mask & bad).sum()))
+    for i, roi in enumerate(rois):
+        part = stat_rows[i * K : (i + 1) * K]
+        mean = np.array([r["mean"] for r in part])
+        sd = np.array([r["sd"] for r in part])
+        stats[roi.name] = (mean, sd, part[0]["n_pixels"], part[0]["n_nan"])
     bg = stats.get(settings.roi_background)
     rows = []
-    for roi, _ in masks:
+    for roi in rois:
         mean, sd, n, excluded = stats[roi.name]
         se = sd / np.sqrt(n) if n > 1 else np.full(len(comps), np.nan)
         for k, comp in enumerate(comps):
@@ -371,22 +550,6 @@ def map_paths(out_dir: Path, key: str) -> dict[str, Path]:
     """Files written for one acquisition: abundance, standard error and residual maps."""
     return {"abundance": out_dir / f"{key}_abundance.ome.tif", "stderr": out_dir / f"{key}_stderr.ome.tif",
             "residual": out_dir / f"{key}_residual.ome.tif"}
-
-
-def _write_maps(out_dir, acq, data, refs, settings, dark, flat, comps, pixel_size, spatial_axes, unit):
-    from probeplan.io.stacks import write_stack
-    from probeplan.unmixing.pipeline import _out_axes, unmix_stack
-
-    r = unmix_stack(data, refs, method=settings.method, dark=dark, flat=flat,
-                    gain_e_per_count=settings.gain_e_per_count, read_noise_e=settings.read_noise_e)
-    axes = _out_axes(spatial_axes)
-    paths = map_paths(out_dir, acq.key)
-    write_stack(paths["abundance"], r.abundances, axes=axes, channel_names=comps, pixel_size_um=pixel_size)
-    write_stack(paths["stderr"], r.standard_error, axes=axes, channel_names=[f"{c} standard error" for c in comps],
-                pixel_size_um=pixel_size)
-    write_stack(paths["residual"], r.residual_rms[None], axes=axes, channel_names=["residual rms (counts)"],
-                pixel_size_um=pixel_size)
-    return r.abundances
 
 
 def _auto_roi_paths(out_dir: Path, key: str, settings: StudySettings) -> list[Path]:
