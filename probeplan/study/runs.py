@@ -813,6 +813,9 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
 
     if settings.method not in METHODS:
         raise input_error("method", f"{settings.method!r} is not known", f"choose one of {', '.join(METHODS)}")
+    if not 0 < settings.memory_limit_mb < np.inf:
+        raise input_error("memory_limit_mb", f"{settings.memory_limit_mb} is not a finite number > 0",
+                          "give a positive memory bound in MiB")
     for what, p in (("dark_path", settings.dark_path), ("flat_path", settings.flat_path), ("labels_path", settings.labels_path),
                     ("roi_file", settings.roi_file)):
         if p is not None and not Path(p).is_file():

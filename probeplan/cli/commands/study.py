@@ -55,6 +55,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="the target's depth (mm): checked against the calibration phantom's depth (default: the "
                              "plan's target depth) and used by the closure when given")
     parser.add_argument("--no-maps", action="store_true", help="write only the tables, not the maps of each acquisition")
+    parser.add_argument("--memory-mb", type=float, default=None,
+                        help="working-memory bound in MiB for one acquisition, read and written by blocks of rows "
+                             "(default 256)")
     parser.add_argument("--scheduler", default=None, metavar="ADDRESS",
                         help="dask scheduler address (e.g. tcp://host:8786): one task per acquisition on its workers, "
                              "which must see the input and output folders")
@@ -126,6 +129,7 @@ def run(args: argparse.Namespace) -> int:
         flat_path=Path(args.flat) if args.flat else None, channel_axis=args.channel_axis,
         gain_e_per_count=args.gain, read_noise_e=args.read_noise, write_maps=not args.no_maps,
         roi_file=Path(roi_files[0]) if roi_files else None, auto_rois=tuple(args.auto_roi),
+        **({"memory_limit_mb": args.memory_mb} if args.memory_mb is not None else {}),
     )
     references = args.references
     if args.control:
