@@ -168,10 +168,21 @@ def _shaped(spec: str, shape) -> Roi:
             raise input_error("roi", f"{spec!r} is not 'name:polygon:x1,y1,x2,y2,x3,y3,...'",
                               "give at least three x,y vertices in pixels")
         roi = Roi(name, polygon=tuple(zip(values[0::2], values[1::2], strict=True)))
-    if shape is not None and not roi.mask(shape).any():
+    if shape is not None and not _covers_a_pixel(roi, shape):
         raise input_error("roi", f"{spec!r} covers no pixel of the image ({shape[1]} x {shape[0]} pixels)",
                           "keep the shape inside the image")
     return roi
+
+
+def _covers_a_pixel(roi: Roi, shape) -> bool:
+    """Whether ``roi`` holds a pixel of an image of ``shape`` (Y, X), looked at by blocks of rows.
+
+    By blocks so that checking a shape on a large image costs a block's memory, not the image's
+    (the pixel rule builds coordinate grids several times the size of the mask).
+    """
+    ny, nx = int(shape[0]), int(shape[1])
+    step = max(1, (1 << 16) // max(nx, 1))
+    return any(roi.mask_rows(r0, min(ny, r0 + step), nx).any() for r0 in range(0, ny, step))
 
 
 def parse_roi(spec: str, *, shape: tuple[int, int] | None = None) -> Roi:
