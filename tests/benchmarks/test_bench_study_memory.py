@@ -108,3 +108,65 @@ def test_study_memory_is_bounded_by_the_blocks(tmp_path):
     whole = results["--memory-mb 4096 (each stack in one block)"][2] - base
     assert bounded < 0.5 * stack_mib  # the blocks, not the stacks, set the peak
     assert bounded < 0.5 * whole
+
+
+_CLUSTER_RUN = """
+import resource, sys, time
+from pathlib import Path
+import distributed
+from probeplan.study.runs import run_study
+
+folder, out, memory_mb, tiny = Path(sys.argv[1]), Path(sys.argv[2]), float(sys.argv[3]), Path(sys.argv[4])
+
+
+def peak_mib():
+    import resource
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
+                              dashboard_address=None) as cluster, distributed.Client(cluster) as client:
+    # the tiny study first: imports and compiled kernels on both sides before the peaks are read
+    run_study(tiny / "study.csv", tiny / "refs.csv", out_dir=out.with_name(out.name + "_tiny"), scheduler=client,
+              rois=["t:0,0,4,4", "background:8,8,16,16"], dark_path=tiny / "dark.ome.tif",
+              flat_path=tiny / "flat.ome.tif")
+    worker_before = list(client.run(peak_mib).values())[0]
+    client_before = peak_mib()
+    t = time.perf_counter()
+    run_study(folder / "study.csv", folder / "refs.csv", out_dir=out, scheduler=client,
+              rois=["tumour:100,100,900,900", "background:1000,0,2000,2000", "ring:ellipse:1000,1000,600,300"],
+              dark_path=folder / "dark.ome.tif", flat_path=folder / "flat.ome.tif", memory_limit_mb=memory_mb)
+    seconds = time.perf_counter() - t
+    worker_after = list(client.run(peak_mib).values())[0]
+    print(client_before, peak_mib(), worker_before, worker_after, seconds)
+"""
+
+
+def test_study_memory_on_a_cluster(tmp_path):
+    """The same study on a LocalCluster worker process: the client's and the worker's peaks.
+
+    A tiny study runs first on the same cluster, so that the figures "during the run" leave out
+    imports and compiled kernels on both sides.
+    """
+    pytest.importorskip("distributed")
+    rng = np.random.default_rng(2)
+    n = 2048
+    big = tmp_path / "big"
+    big.mkdir()
+    stack_mib = _study(big, n, rng)
+    tiny = tmp_path / "tiny"
+    tiny.mkdir()
+    _study(tiny, 16, rng)
+    results = {}
+    for memory_mb in (8.0, 4096.0):
+        out = subprocess.run([sys.executable, "-c", _CLUSTER_RUN, str(big), str(tmp_path / f"o{memory_mb:g}"),
+                              str(memory_mb), str(tiny)], capture_output=True, text=True, check=True).stdout.split()
+        results[memory_mb] = [float(v) for v in out[-5:]]
+    print(f"\n[probeplan study on a LocalCluster, one worker process] 2 acquisitions x 6 x {n}^2 uint16, "
+          f"one stack {stack_mib:.0f} MiB, study {2 * stack_mib:.0f} MiB")
+    for memory_mb, (c0, c1, w0, w1, seconds) in results.items():
+        print(f"  memory_limit_mb {memory_mb:6g}: client peak {c1:6.1f} MiB (+{c1 - c0:5.1f} during the run), "
+              f"worker peak {w1:6.1f} MiB (+{w1 - w0:6.1f} during the run), {seconds:5.1f} s")
+    c0, c1, w0, w1, _ = results[8.0]
+    assert c1 - c0 < 0.5 * stack_mib  # the client holds only the small tables
+    assert w1 - w0 < 0.5 * stack_mib  # the worker streams the stacks by blocks
