@@ -112,6 +112,21 @@ def test_bad_roi_specs_and_files(tmp_path):
         read_roi_file(tmp_path / "r.json")
 
 
+def test_otsu_threshold_by_blocks_equals_skimage_on_the_whole_map():
+    """The histogram gathered by blocks of rows gives skimage's threshold_otsu of the whole map, exactly."""
+    from skimage.filters import threshold_otsu
+
+    from probeplan.unmixing.roi import otsu_threshold_by_blocks
+
+    rng = np.random.default_rng(8)
+    for trial in range(5):
+        img = rng.lognormal(0.0, 1.0 + trial, (61, 47))
+        img[rng.random(img.shape) < 0.05] = np.nan
+        ok = img[np.isfinite(img)]
+        blocks = (img[r0 : r0 + 7] for r0 in range(0, img.shape[0], 7))
+        assert otsu_threshold_by_blocks(blocks, (ok.min(), ok.max())) == threshold_otsu(ok)
+
+
 def test_otsu_roi_finds_a_bright_disc():
     """Otsu's threshold on a two-level image with noise splits the two levels (Otsu 1979)."""
     from probeplan.unmixing.roi import otsu_roi

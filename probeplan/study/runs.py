@@ -340,6 +340,32 @@ class _CorrectionRows:
         self.reader.close()
 
 
+class _PlaneSpill:
+    """A (Y, X) float64 map written by rows into an unnamed temporary file, with its finite count and range."""
+
+    def __init__(self, width: int):
+        import tempfile
+
+        self.file = tempfile.TemporaryFile(prefix="probeplan-map-")
+        self.width = int(width)
+        self.n, self.lo, self.hi = 0, np.inf, -np.inf
+
+    def write_rows(self, r0: int, rows) -> None:
+        rows = np.ascontiguousarray(rows, dtype=np.float64)
+        os.pwrite(self.file.fileno(), memoryview(rows).cast("B"), r0 * self.width * 8)
+        v = rows[np.isfinite(rows)]
+        if v.size:
+            self.n += int(v.size)
+            self.lo, self.hi = min(self.lo, float(v.min())), max(self.hi, float(v.max()))
+
+    def read_rows(self, r0: int, r1: int) -> np.ndarray:
+        buf = os.pread(self.file.fileno(), (r1 - r0) * self.width * 8, r0 * self.width * 8)
+        return np.frombuffer(buf, np.float64).reshape(r1 - r0, self.width)
+
+    def close(self) -> None:
+        self.file.close()
+
+
 def study_rows_per_block(shape, n_channels: int, dtype, n_components: int, memory_limit_mb: float) -> int:
     """Rows of one acquisition read, unmixed and measured at a time within ``memory_limit_mb``.
 
@@ -379,6 +405,64 @@ def _roi_abundances(block, dk, ff, M, sat):
     return a.reshape(M.shape[1], *block.shape[1:])
 
 
+def _automatic_rois(acq, autos, spills, blocks, src, corrections, M, sat, comps, shape_yx, out_dir) -> list[dict]:
+    """The automatic ROIs of one acquisition, by blocks of rows: thresholds, mask files, statistics rows.
+
+    Otsu's threshold of each map comes from its histogram gathered by blocks
+    (:func:`probeplan.unmixing.roi.otsu_threshold_by_blocks`: the threshold of the whole map);
+    then, in a second pass over the acquisition's rows, each block's mask is written into the
+    ROI's label TIFF at its rows and the ROI's statistics are added up.
+    """
+    import contextlib
+
+    import tifffile
+
+    from probeplan.io.atomic import atomic_path
+    from probeplan.io.stacks import _pwrite_rows
+    from probeplan.unmixing.roi import Roi, RoiAccumulator, otsu_threshold_by_blocks
+    from probeplan.unmixing.roifile import write_roi_file
+
+    thresholds = {}
+    for name, comp in autos:
+        spill = spills[comp]
+        if spill.n < 2 or spill.hi == spill.lo:
+            raise input_error(f"automatic ROI {name!r}", "the component's map is flat or empty",
+                              "draw the ROI instead (--roi), or choose a component with signal")
+        thresholds[name] = otsu_threshold_by_blocks((spill.read_rows(r0, r1) for r0, r1 in blocks),
+                                                    (spill.lo, spill.hi))
+    total = RoiAccumulator([Roi(name) for name, _ in autos], comps)
+    with contextlib.ExitStack() as stack:
+        masks = {}  # the label TIFF of each automatic ROI, written by rows (uint8, 1 inside)
+        if out_dir is not None:
+            for name, _ in autos:
+                path = Path(out_dir) / f"{acq.key}_{_safe_name(name)}_auto_roi.tif"
+                tmp = stack.enter_context(atomic_path(path))
+                offset, _ = tifffile.imwrite(tmp, shape=tuple(shape_yx), dtype=np.uint8, returnoffset=True)
+                fd = os.open(tmp, os.O_RDWR)
+                stack.callback(os.close, fd)
+                masks[name] = (fd, int(offset), path)
+        for r0, r1 in blocks:
+            block = src.read_rows(r0, r1)
+            a = _roi_abundances(block, *corrections(r0, r1, block.shape[0]), M, sat)
+            parts = []
+            for name, comp in autos:
+                plane = spills[comp].read_rows(r0, r1)
+                inside = np.isfinite(plane) & (plane > thresholds[name])
+                if name in masks:
+                    fd, offset, path = masks[name]
+                    _pwrite_rows(fd, offset, tuple(shape_yx), 0, np.uint8, r0, inside.astype(np.uint8), where=path)
+                parts.append(Roi(name, pixel_mask=inside))
+            part = RoiAccumulator(parts, comps)
+            part.add(a, 0)  # the masks hold this block's rows only
+            total.merge(part)
+    if out_dir is not None:
+        saved = [Roi(name, label=1, labels_file=f"{acq.key}_{_safe_name(name)}_auto_roi.tif") for name, _ in autos]
+        write_roi_file(Path(out_dir) / f"{acq.key}_auto_rois.json", saved,
+                       image_size=(int(shape_yx[1]), int(shape_yx[0])),
+                       note=f"automatic ROIs of {acq.key}: Otsu's threshold on a component's abundance map")
+    return total.rows(None)
+
+
 def measure_acquisition(acq: Acquisition, references, settings: StudySettings = StudySettings(), *,
                         out_dir: str | os.PathLike | None = None, unit: str | None = None) -> pd.DataFrame:
     """ROI statistics of one acquisition (and its maps written into ``out_dir``).
@@ -387,9 +471,10 @@ def measure_acquisition(acq: Acquisition, references, settings: StudySettings = 
     ``settings.memory_limit_mb``): each block of every file is read, dark- and flat-corrected,
     unmixed, written into the maps at its rows and added to the ROI statistics
     (:class:`probeplan.unmixing.roi.RoiAccumulator`), so no stack is ever held whole.
-    Automatic ROIs (``settings.auto_rois``) need the whole map of their component: that one
-    (Y, X) plane per automatic ROI is kept, thresholded after the pass, and the ROI's
-    statistics are gathered in a second pass over the rows.
+    Automatic ROIs (``settings.auto_rois``) need the whole map of their component: it is
+    written by rows into an unnamed temporary file (float64, one (Y, X) plane per component),
+    thresholded from its histogram, and the ROI's mask and statistics are made in a second
+    pass over the rows.
 
     Parameters
     ----------
@@ -456,7 +541,11 @@ def measure_acquisition(acq: Acquisition, references, settings: StudySettings = 
                                        pixel_size_um=src.pixel_size_um))
             writers.append(StackWriter(paths["residual"], (1, *spatial), axes=axes,
                                        channel_names=["residual rms (counts)"], pixel_size_um=src.pixel_size_um))
-        planes = {comp: np.empty(shape_yx) for comp in dict.fromkeys(c for _, c in autos)}
+        # automatic ROIs: their component's map, averaged over leading planes, goes to a temporary file by rows
+        spills = {}
+        for comp in dict.fromkeys(c for _, c in autos):
+            spills[comp] = _PlaneSpill(shape_yx[1])
+            opened.append(spills[comp])
         acc = RoiAccumulator(rois, comps, labels)
 
         def corrections(r0, r1, C):
@@ -467,49 +556,24 @@ def measure_acquisition(acq: Acquisition, references, settings: StudySettings = 
             block = src.read_rows(r0, r1)
             C, sp = block.shape[0], block.shape[1:]
             dk, ff = corrections(r0, r1, C)
-            if write or planes:
+            if write or spills:
                 x, se, resid, _ = unmix_block(block.reshape(C, -1), params, dk, ff)
                 x = x.reshape(K, *sp)
                 if write:
                     writers[0].write_rows(r0, x)
                     writers[1].write_rows(r0, se.reshape(K, *sp))
                     writers[2].write_rows(r0, resid.reshape(1, *sp))
-                for comp, plane in planes.items():
+                for comp, spill in spills.items():
                     part = x[comps.index(comp)].reshape(-1, r1 - r0, shape_yx[1])
                     with np.errstate(all="ignore"):
-                        plane[r0:r1] = np.nanmean(part, axis=0) if part.shape[0] > 1 else part[0]
+                        spill.write_rows(r0, np.nanmean(part, axis=0) if part.shape[0] > 1 else part[0])
                 del x, se, resid
             acc.add(_roi_abundances(block, dk, ff, M, sat), r0)
         stat_rows = acc.rows(None)
         if autos:
-            from probeplan.unmixing.roi import otsu_roi
-            from probeplan.unmixing.roifile import write_roi_file
-
-            found = []
-            for name, comp in autos:
-                roi, lab = otsu_roi(planes[comp], name)
-                found.append((roi, lab))
-            del planes
-            auto_acc = RoiAccumulator([Roi(roi.name, pixel_mask=lab.astype(bool)) for roi, lab in found], comps)
-            for r0, r1 in blocks:  # the automatic ROIs' statistics: a second pass over the rows
-                block = src.read_rows(r0, r1)
-                auto_acc.add(_roi_abundances(block, *corrections(r0, r1, block.shape[0]), M, sat), r0)
-            stat_rows += auto_acc.rows(None)
-            rois = [*rois, *(roi for roi, _ in found)]
-            if out_dir is not None:
-                import tifffile
-
-                from probeplan.io.atomic import atomic_path
-
-                saved = []
-                for roi, lab in found:
-                    fname = f"{acq.key}_{_safe_name(roi.name)}_auto_roi.tif"
-                    with atomic_path(Path(out_dir) / fname) as tmp:
-                        tifffile.imwrite(tmp, lab)
-                    saved.append(Roi(roi.name, label=1, labels_file=fname))
-                write_roi_file(Path(out_dir) / f"{acq.key}_auto_rois.json", saved,
-                               image_size=(int(shape_yx[1]), int(shape_yx[0])),
-                               note=f"automatic ROIs of {acq.key}: Otsu's threshold on a component's abundance map")
+            stat_rows += _automatic_rois(acq, autos, spills, blocks, src, corrections, M, sat, comps, shape_yx,
+                                         out_dir)
+            rois = [*rois, *(Roi(name) for name, _ in autos)]
         for w in writers:
             w.commit()
     except BaseException:

@@ -32,6 +32,7 @@ __all__ = [
     "parse_rectangle",
     "region_mask",
     "otsu_roi",
+    "otsu_threshold_by_blocks",
     "rois_from_labels",
     "RoiAccumulator",
     "roi_statistics",
@@ -372,3 +373,27 @@ def otsu_roi(abundance_map, name: str) -> tuple[Roi, np.ndarray]:
     t = threshold_otsu(a[ok])
     labels = (ok & (a > t)).astype(np.uint8)
     return Roi(name, label=1, labels_file=f"{name}.tif"), labels
+
+
+def otsu_threshold_by_blocks(blocks, value_range: tuple[float, float], nbins: int = 256) -> float:
+    """Otsu's threshold of a map given block by block, as :func:`otsu_roi` finds it on the whole map.
+
+    ``blocks`` is an iterable of parts of the map (NaN pixels are left out) and ``value_range``
+    the smallest and largest finite value of the whole map.  The histogram is gathered block by
+    block (numpy's histogram with that range: each value falls in the bin it falls in on the
+    whole map, so the counts are the whole map's) and handed to
+    ``skimage.filters.threshold_otsu`` with its bin centres, which then gives the threshold it
+    gives for the whole map.  Memory: one block, not the map.
+    """
+    from skimage.filters import threshold_otsu
+
+    lo, hi = float(value_range[0]), float(value_range[1])
+    counts = np.zeros(nbins, np.int64)
+    edges = None
+    for block in blocks:
+        v = np.asarray(block, dtype=np.float64)
+        h, edges = np.histogram(v[np.isfinite(v)], bins=nbins, range=(lo, hi))
+        counts += h
+    if edges is None:
+        edges = np.histogram(np.empty(0), bins=nbins, range=(lo, hi))[1]
+    return float(threshold_otsu(hist=(counts, (edges[:-1] + edges[1:]) / 2.0)))
