@@ -149,6 +149,35 @@ def test_study_one_task_per_acquisition(tmp_path, monkeypatch, cluster):
     assert {p.name: p.stat().st_mtime_ns for p in (tmp_path / "dist" / "acquisitions").iterdir()} == before
 
 
+def test_study_streamed_by_blocks_on_the_cluster(tmp_path, monkeypatch, cluster):
+    # the worker streams each acquisition by blocks of a few rows (with an automatic ROI, whose map
+    # goes through a temporary file on the worker): tables and maps equal a local run with the same
+    # bound, and the tables equal one block per image to 1e-12
+    import numpy as np
+    import pandas as pd
+    import tifffile
+    ROIS, make_study = _study_helpers()
+
+    from probeplan.study.runs import read_table_csv
+
+    make_study(tmp_path, animals=("ctrl", "treated"), per_channel=(0,))
+    monkeypatch.chdir(tmp_path)
+    args = ["study", "study.csv", "--references", "refs.csv", *sum((["--roi", r] for r in ROIS), []),
+            "--auto-roi", "found=dotA"]
+    small = ["--memory-mb", "0.04"]  # blocks of 5 of the 24 rows
+    assert main([*args, "--out", "loc", *small]) == 0
+    assert main([*args, "--out", "dist", *small, "--scheduler", cluster.scheduler_address]) == 0
+    assert main([*args, "--out", "one"]) == 0
+    loc, dist, one = (read_table_csv(tmp_path / d / "measurements.csv") for d in ("loc", "dist", "one"))
+    pd.testing.assert_frame_equal(loc, dist)
+    num = ["mean", "se", "tbr", "tbr_se", "sd"]
+    pd.testing.assert_frame_equal(loc.drop(columns=num), one.drop(columns=num))
+    np.testing.assert_allclose(loc[num], one[num], rtol=1e-12, atol=1e-9)
+    for f in sorted((tmp_path / "loc" / "acquisitions").glob("*.tif")):
+        np.testing.assert_array_equal(tifffile.imread(f), tifffile.imread(tmp_path / "dist" / "acquisitions" / f.name))
+        np.testing.assert_array_equal(tifffile.imread(f), tifffile.imread(tmp_path / "one" / "acquisitions" / f.name))
+
+
 def test_study_unreachable_scheduler(tmp_path, capsys):
     ROIS, make_study = _study_helpers()
 
