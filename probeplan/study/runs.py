@@ -8,6 +8,11 @@ runs the acquisitions (a rerun skips those whose inputs, settings and outputs ar
 compares the groups (:mod:`probeplan.study.stats`) and fits the time courses
 (:mod:`probeplan.study.kinetics`).
 
+Memory: an acquisition is never held whole.  :func:`measure_acquisition` reads its files, the
+dark frame and the flat field by blocks of rows (as many as ``StudySettings.memory_limit_mb``
+allows), unmixes each block, writes it into the maps at its rows and adds it to the ROI
+statistics; the client of a distributed run holds only the small tables.
+
 ROI statistics are not biased by the non-negativity constraint: the maps are unmixed by the
 chosen method (exact NNLS by default), but each ROI's mean is the unconstrained
 least-squares abundance of its pixels, which equals the least-squares unmixing of the ROI's
