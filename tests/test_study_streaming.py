@@ -147,3 +147,53 @@ def test_bad_memory_bound_is_refused(streamed):
 
     with pytest.raises(InputError, match="memory_limit_mb"):
         run_study(csv, refs, settings=dataclasses.replace(settings, memory_limit_mb=0.0))
+
+
+def test_planes_of_a_z_stack_and_invalid_pixels_stream_too(tmp_path):
+    """A float32 C x Z x Y x X stack with a NaN pixel, weighted least squares: ROIs pool the planes."""
+    M = np.array([[0.6, 0.1], [0.3, 0.3], [0.1, 0.6]])
+    rng = np.random.default_rng(6)
+    ab = np.full((2, 3, 20, 22), 200.0)
+    ab[0, :, 4:12, 3:12] = 900.0
+    y = rng.poisson(np.einsum("ck,kzyx->czyx", M, ab)).astype(np.float32)
+    y[1, 0, 5, 5] = np.nan
+    write_stack(tmp_path / "z.tif", y, channel_names=CHANNELS, axes="CZYX")
+    (tmp_path / "refs.csv").write_text("channel,dotA,dotB\n" + "".join(
+        f"{c},{M[i, 0]},{M[i, 1]}\n" for i, c in enumerate(CHANNELS)))
+    (tmp_path / "s.csv").write_text("animal,group,time_h,file\nm1,g,1,z.tif\n")
+    rois = ("t:3,4,12,12", "background:14,0,22,20")
+    r = run_study(tmp_path / "s.csv", tmp_path / "refs.csv", out_dir=tmp_path / "out", method="wls", rois=rois,
+                  auto_rois=["found=dotA"], memory_limit_mb=0.02)
+    assert study_rows_per_block((3, 20, 22), 3, np.float32, 2, 0.02) < 8
+    whole = unmix_stack(y, as_references(str(tmp_path / "refs.csv"), normalise="sum"), method="wls")
+    maps = tmp_path / "out" / "acquisitions"
+    np.testing.assert_array_equal(tifffile.imread(maps / "m1_1h_abundance.ome.tif"), whole.abundances)
+    with np.errstate(all="ignore"):
+        plane = np.nanmean(whole.abundances[0], axis=0)
+    found = np.isfinite(plane) & (plane > threshold_otsu(plane[np.isfinite(plane)]))
+    np.testing.assert_array_equal(tifffile.imread(maps / "m1_1h_found_auto_roi.tif"), found.astype(np.uint8))
+    Mn = M / M.sum(axis=0)
+    masks = {spec.split(":")[0]: parse_roi(spec, shape=(20, 22)).mask((20, 22)) for spec in rois}
+    masks["found"] = found
+    bad = ~np.isfinite(y).all(axis=0)
+    for name, mask in masks.items():
+        sel = np.broadcast_to(mask, bad.shape) & ~bad
+        a = np.linalg.lstsq(Mn, y[:, sel].astype(float), rcond=None)[0]
+        row = r.measurements[r.measurements["roi"] == name].set_index("component").loc[["dotA", "dotB"]]
+        np.testing.assert_allclose(row["mean"], a.mean(axis=1), rtol=1e-12)
+        np.testing.assert_allclose(row["sd"], a.std(axis=1, ddof=1), rtol=1e-12)
+        assert (row["n_pixels"] == sel.sum()).all()
+        assert (row["n_excluded"] == (np.broadcast_to(mask, bad.shape) & bad).sum()).all()
+
+
+def test_automatic_roi_on_a_flat_map_is_refused(tmp_path):
+    """Otsu's threshold needs two levels: a component absent everywhere (its NNLS map all 0) is refused."""
+    M = np.array([[0.6, 0.1], [0.3, 0.3], [0.1, 0.6]])
+    y = np.einsum("ck,kyx->cyx", M, np.stack([np.zeros((16, 16)), np.full((16, 16), 300.0)]))
+    write_stack(tmp_path / "a.tif", y, channel_names=CHANNELS)
+    (tmp_path / "refs.csv").write_text("channel,dotA,dotB\n" + "".join(
+        f"{c},{M[i, 0]},{M[i, 1]}\n" for i, c in enumerate(CHANNELS)))
+    (tmp_path / "s.csv").write_text("animal,group,time_h,file\nm1,g,1,a.tif\n")
+    with pytest.raises(InputError, match="automatic ROI 'found'.*flat or empty"):
+        run_study(tmp_path / "s.csv", tmp_path / "refs.csv", rois=["background:0,0,4,4"], auto_rois=["found=dotA"],
+                  memory_limit_mb=0.02)
