@@ -111,3 +111,19 @@ def test_rising_course_has_no_washout_and_table_has_one_row_per_course():
                       "time_h": [1.0, 4.0, 24.0] * 2, "mean": [9.0, 7.0, 2.0, 8.0, 6.0, 1.0]})
     k, notes = fit_time_courses(m)
     assert list(k["animal"]) == ["a", "b"] and (k["model"] == "washout").all()
+
+
+def test_a_flat_time_course_leaves_the_half_life_empty_with_its_lower_bound():
+    # a value that barely falls (autofluorescence-like): the fitted rate is not distinguished from zero, so a
+    # point half-life (noise-driven, thousands of hours) is not reported; its lower 95 % bound stays
+    from probeplan.study.kinetics import RESOLVABLE_SPAN_FACTOR, fit_time_course
+
+    t = np.array([1.0, 4.0, 8.0, 24.0, 48.0, 96.0])
+    c = 100.0 + np.array([0.0, 0.6, -0.4, 0.3, -0.5, -0.2])
+    r = fit_time_course(t, c)
+    assert math.isnan(r["half_life_h"]) and math.isinf(r["half_life_ci_high"])
+    assert 0 < r["half_life_ci_low"] < math.inf
+    assert "at least" in r["note"] and "can measure" in r["note"]
+    # a resolved washout keeps its numbers: 12 h half-life over 95 h (well inside 10x the span)
+    r = fit_time_course(t, 10 * 0.5 ** (t / 12.0) + 1e-3 * np.sin(t))
+    assert r["half_life_h"] == pytest.approx(12.0, rel=1e-3) and r["half_life_h"] < RESOLVABLE_SPAN_FACTOR * 95

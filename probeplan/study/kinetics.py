@@ -29,7 +29,8 @@ import warnings
 import numpy as np
 import pandas as pd
 
-__all__ = ["KINETICS_COLUMNS", "KINETICS_NOTES", "MIN_POINTS_UPTAKE_WASHOUT", "MIN_POINTS_WASHOUT", "bateman",
+__all__ = ["KINETICS_COLUMNS", "KINETICS_NOTES", "MIN_POINTS_UPTAKE_WASHOUT", "MIN_POINTS_WASHOUT", "RESOLVABLE_SPAN_FACTOR",
+           "bateman",
            "washout", "fit_time_course", "fit_time_courses"]
 
 KINETICS_COLUMNS = ("animal", "roi", "component", "model", "half_life_h", "t_peak_h", "half_life_ci_low",
@@ -41,7 +42,13 @@ KINETICS_NOTES = (
     "and elimination (Bateman 1910; Gibaldi & Perrier 1982), used with >= 5 time points and the peak inside; "
     "'washout': C0 exp(-k t) from the observed peak on (>= 3 points); 'none': no washout to fit.",
     "half_life_h = ln 2 / ke; 95 % confidence intervals from the fit covariance (Student t, n - p dof).",
+    "A half-life whose rate is not distinguished from zero and that exceeds 10x the time span observed, or a "
+    "t_peak interval wider than that, is left empty: the data cannot resolve it (the half-life's lower bound "
+    "stays, and the note says so).",
 )
+#: A half-life or an interval longer than this many times the observed time span is not resolved by the data
+#: (our choice: beyond it the point estimate is set by noise, not by the time course).
+RESOLVABLE_SPAN_FACTOR = 10.0
 MIN_POINTS_UPTAKE_WASHOUT = 5
 MIN_POINTS_WASHOUT = 3
 _LN2 = math.log(2.0)
@@ -195,10 +202,25 @@ def fit_time_course(time_h, value) -> dict:
     if n >= MIN_POINTS_UPTAKE_WASHOUT and i_peak > 0 and t[0] >= 0:
         row, note = _fit_bateman(t, c, i_peak)
         if row is not None:
-            return row
+            return _unresolved_left_empty(row, float(t[-1] - t[0]))
     row = _fit_washout(t, c, i_peak)
     if note:
         row["note"] = "; ".join(x for x in (note, row["note"]) if x)
+    return _unresolved_left_empty(row, float(t[-1] - t[0]))
+
+
+def _unresolved_left_empty(row: dict, span_h: float) -> dict:
+    """Empty the figures the time course cannot resolve (see :data:`RESOLVABLE_SPAN_FACTOR`), saying so."""
+    limit = RESOLVABLE_SPAN_FACTOR * span_h
+    notes = [row["note"]] if row["note"] else []
+    if math.isinf(row["half_life_ci_high"]) and row["half_life_h"] > limit:
+        row["half_life_h"] = math.nan
+        notes = [f"washout rate not distinguished from zero: the half-life is at least {row['half_life_ci_low']:.3g} h "
+                 f"(lower 95 % bound), longer than a {span_h:g} h time course can measure"]
+    if row["t_peak_ci_high"] - row["t_peak_ci_low"] > limit:
+        row["t_peak_ci_low"] = row["t_peak_ci_high"] = math.nan
+        notes.append("the peak time's interval is wider than the time course can resolve")
+    row["note"] = "; ".join(notes)
     return row
 
 
