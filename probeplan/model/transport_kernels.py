@@ -4,9 +4,10 @@ The disc escape fraction of :func:`probeplan.model.fluorescence.disc_escape_frac
 ``model="mc_table"`` is evaluated for every (slice depth, wavelength) pair of a depth curve:
 hundreds of thousands of points, each needing three bilinear table look-ups and six
 exponentials.  Written with numpy it makes some forty passes over arrays of that size; here
-one compiled loop (numba, cached on disk) computes each point once, with the same formulas
-in the same order, so the two agree to rounding (``tests/test_fluorescence_fast.py`` checks
-1e-9 relative against the numpy path and against the formula evaluated point by point).
+three compiled passes (numba, cached on disk) compute each point once, with numpy's vectorised
+exponentials between them, the same formulas in the same order, so the two agree to rounding
+(``tests/test_fluorescence_fast.py`` checks 1e-9 relative against the numpy path and against the
+formula evaluated point by point).
 
 Written by hand because no library evaluates this model; numba only compiles the loop.
 The numpy path stays the reference and the fallback (inputs that vary with depth *and*
@@ -21,65 +22,6 @@ import math
 import numpy as np
 
 __all__ = ["disc_escape_mc", "slices_on_fine_grid", "available"]
-
-
-def _kernel(r, d, mu, zb, image, musp, i0w, tiw, esc_factor, table, slopes, z, cell, step, whole, p0, p1,
-            out):  # pragma: no cover - compiled
-    # r, d: (P,) slice radii and depths (mm); mu (mm^-1), zb (mm), image = exp(-2 mu zb), musp (cm^-1),
-    # i0w, tiw, esc_factor: (W,); table: (K, Z, Q) ln C on the common grid (Q = 1: escape; 3: escape,
-    # exitance0, fwhm); slopes (K, Q); cell[k]: the depth cell holding k * step (a uniform index into the
-    # non-uniform grid z, in place of a bisection); rows p0:p1 of out are computed (threads share the rest)
-    n_w = mu.shape[0]
-    n_z = z.shape[0]
-    n_q = table.shape[2]
-    z_first = z[0]
-    z_last = z[n_z - 1]
-    logc = np.empty(3)
-    for p in range(p0, p1):
-        dp = d[p]
-        rp = r[p]
-        for w in range(n_w):
-            m = mu[w]
-            d2 = dp + 2.0 * zb[w]
-            real = math.exp(-m * dp)
-            total = 0.5 * (real + real * image[w])  # exp(-m d2) = exp(-m d) exp(-2 m zb)
-            zr = dp / 10.0 * musp[w]
-            # np.interp(zr, z, arange(n_z)): the depth's fractional cell
-            if zr <= z_first:
-                iz = 0.0
-            elif zr >= z_last:
-                iz = n_z - 1.0
-            else:
-                lo_i = cell[int(zr / step)]
-                while z[lo_i + 1] <= zr:  # z[lo_i] <= zr < z[lo_i + 1]
-                    lo_i += 1
-                iz = (zr - z[lo_i]) / (z[lo_i + 1] - z[lo_i]) + lo_i
-            j0 = min(int(iz), n_z - 2)
-            tj = iz - j0
-            i0 = i0w[w]
-            ti = tiw[w]
-            beyond = max(zr - z_last, 0.0)
-            for q in range(n_q):
-                lo = table[i0, j0, q] * (1 - tj) + table[i0, j0 + 1, q] * tj
-                hi = table[i0 + 1, j0, q] * (1 - tj) + table[i0 + 1, j0 + 1, q] * tj
-                value = lo + (hi - lo) * ti
-                if beyond > 0.0:
-                    value = value + (slopes[i0, q] * (1 - ti) + slopes[i0 + 1, q] * ti) * beyond
-                logc[q] = value
-            escape = math.exp(logc[0] * esc_factor[w])
-            if whole:
-                out[p, w] = escape * total
-                continue
-            peak = math.exp(logc[1])
-            width = math.exp(logc[2])
-            rs = rp / width
-            r1 = math.sqrt(dp * dp + rs * rs)
-            r2 = math.sqrt(d2 * d2 + rs * rs)
-            tail1 = dp * math.exp(-m * r1) / r1 if r1 > 0 else 0.0
-            tail2 = d2 * math.exp(-m * r2) / r2
-            scaled = total - 0.5 * (tail1 + tail2)
-            x = scaled / total if total > 0 else 1.0
-            out[p, w] = scaled * (peak * width**2 * (1.0 - x) + escape * x)
 
 
 def _logs_kernel(d, mu, musp, i0w, tiw, esc_factor, table, slopes, z, cell, step, p0, p1, a):  # pragma: no cover
@@ -187,7 +129,8 @@ def _compiled():
     except ImportError:  # pragma: no cover - numba is a dependency; the numpy path remains
         return None
     jit = numba.njit(cache=True, nogil=True, error_model="numpy")
-    return jit(_kernel), jit(_fine_kernel), jit(_logs_kernel), jit(_tails_kernel), jit(_combine_kernel)
+    return {"fine": jit(_fine_kernel), "logs": jit(_logs_kernel), "tails": jit(_tails_kernel),
+            "combine": jit(_combine_kernel)}
 
 
 def available() -> bool:
@@ -195,8 +138,7 @@ def available() -> bool:
     return _compiled() is not None
 
 
-def disc_escape_mc(radius_mm, depth_mm, mu_eff_per_mm, z_b_mm, mu_s_prime_per_cm, ratio, g: float, n: float, *,
-                   staged: bool = True):
+def disc_escape_mc(radius_mm, depth_mm, mu_eff_per_mm, z_b_mm, mu_s_prime_per_cm, ratio, g: float, n: float):
     """The ``"mc_table"`` disc escape fraction, shape (P, W), from per-point and per-wavelength inputs.
 
     Parameters
@@ -208,10 +150,6 @@ def disc_escape_mc(radius_mm, depth_mm, mu_eff_per_mm, z_b_mm, mu_s_prime_per_cm
     g, n : float
         Anisotropy and refractive index (table axes).
 
-    staged : bool
-        Compute the exponentials with numpy between three compiled passes (vectorised; the
-        default) rather than one at a time inside one compiled loop.
-
     Returns
     -------
     ndarray (P, W), or None when the compiled loop is not available.
@@ -221,7 +159,6 @@ def disc_escape_mc(radius_mm, depth_mm, mu_eff_per_mm, z_b_mm, mu_s_prime_per_cm
     compiled = _compiled()
     if compiled is None:
         return None
-    kernel = compiled[0]
     whole = bool(np.all(np.isinf(radius_mm)))
     quantities = ("escape",) if whole else ("escape", "exitance0", "fwhm")
     table, slopes = tt._stacked(quantities, float(g), float(n))
@@ -243,10 +180,7 @@ def disc_escape_mc(radius_mm, depth_mm, mu_eff_per_mm, z_b_mm, mu_s_prime_per_cm
             np.ascontiguousarray(i0, dtype=np.int64), np.ascontiguousarray(ti), np.ascontiguousarray(factor), table,
             np.ascontiguousarray(slopes), z, cell, step, whole)
     out = np.empty((d.size, r.size))
-    if not staged:
-        _in_threads(lambda p0, p1: kernel(*args, p0, p1, out), d.size, d.size * r.size)
-        return out
-    logs, tails, combine = compiled[2], compiled[3], compiled[4]
+    logs, tails, combine = compiled["logs"], compiled["tails"], compiled["combine"]
     musp, i0c, tic, fac, slc = args[5], args[6], args[7], args[8], args[10]
     image = args[4]
     n_w = r.size
@@ -318,7 +252,7 @@ def slices_on_fine_grid(frac, weight, inside_cm, d_mu_per_cm, coarse_nm, fine_nm
     i = np.clip(np.searchsorted(coarse_nm, fine_nm, side="right") - 1, 0, coarse_nm.size - 2)
     t = (fine_nm - coarse_nm[i]) / (coarse_nm[i + 1] - coarse_nm[i])
     out = np.zeros((frac.shape[0], fine_nm.size))
-    compiled[1](np.ascontiguousarray(frac, dtype=np.float64), np.ascontiguousarray(weight, dtype=np.float64),
+    compiled["fine"](np.ascontiguousarray(frac, dtype=np.float64), np.ascontiguousarray(weight, dtype=np.float64),
                 np.ascontiguousarray(inside_cm, dtype=np.float64), np.ascontiguousarray(d_mu_per_cm, dtype=np.float64),
                 np.ascontiguousarray(i, dtype=np.int64), np.ascontiguousarray(t, dtype=np.float64), out)
     return out
