@@ -74,6 +74,18 @@ def _wait_idle(page) -> None:
     page.locator("[data-testid='stStatusWidget']").wait_for(state="hidden", timeout=UI_TIMEOUT_MS)
 
 
+def _single(locator):
+    """The one element ``locator`` finds, once a rerun under way has replaced the old copy of it.
+
+    While Streamlit reruns a script on a busy machine, the element from the last run can stay in
+    the page beside the new one for a moment; wait for one, and take the newest if two remain.
+    """
+    deadline = time.monotonic() + UI_TIMEOUT_MS / 1000.0
+    while locator.count() != 1 and time.monotonic() < deadline:
+        time.sleep(0.2)
+    return locator.last if locator.count() > 1 else locator
+
+
 def _upload(page, index: int, path: Path, tries: int = 3) -> None:
     """Put ``path`` into the index-th file uploader once the page is idle; retry if a rerun swallowed it."""
     from playwright.sync_api import TimeoutError as PlaywrightTimeout
@@ -135,11 +147,11 @@ def _draw_region(page, name: str, start: tuple[float, float], end: tuple[float, 
         page.mouse.move(x0 + (x1 - x0) * i / 10, y0 + (y1 - y0) * i / 10)
     page.mouse.up()
     _wait_idle(page)
-    field = page.get_by_label("region name", exact=True)
+    field = _single(page.get_by_label("region name", exact=True))
     field.fill(name)
     field.press("Enter")
     _wait_idle(page)
-    page.get_by_role("button", name="Add region").click()
+    _single(page.get_by_role("button", name="Add region")).click()
     _wait_idle(page)
     page.get_by_text(f"{name} (", exact=False).first.wait_for(timeout=UI_TIMEOUT_MS)
 
@@ -203,7 +215,7 @@ def test_page_in_chromium(tmp_path):
 
                 # move a control: the first probe's emission peak 700 -> 720 nm; the plot must change
                 _wait_idle(page)
-                peak = page.get_by_label("probe 1 emission peak (nm)", exact=True)
+                peak = _single(page.get_by_label("probe 1 emission peak (nm)", exact=True))
                 peak.fill("720")
                 peak.press("Enter")
                 deadline = time.monotonic() + UI_TIMEOUT_MS / 1000
@@ -244,7 +256,7 @@ def test_page_in_chromium(tmp_path):
                 # corner far from both dots, then measure them
                 _draw_region(page, "dot A", (0.20, 0.25), (0.43, 0.58))
                 _draw_region(page, "background", (0.86, 0.04), (0.98, 0.18))
-                page.get_by_role("button", name="Measure the regions").click()
+                _single(page.get_by_role("button", name="Measure the regions")).click()
                 page.get_by_text("Mean ± SD of the abundance in each region").wait_for(timeout=UI_TIMEOUT_MS)
                 _wait_idle(page)
                 assert page.locator("[data-testid='stException']").count() == 0
@@ -258,7 +270,7 @@ def test_page_in_chromium(tmp_path):
                 from probeplan.unmixing.roifile import read_roi_file
 
                 with page.expect_download(timeout=UI_TIMEOUT_MS) as download:
-                    page.get_by_role("button", name="Save the regions (ROI file)").click()
+                    _single(page.get_by_role("button", name="Save the regions (ROI file)")).click()
                 roi_path = ARTIFACTS / "browser-rois.json"
                 download.value.save_as(str(roi_path))
                 saved = read_roi_file(roi_path, image_size=(128, 96))
@@ -280,13 +292,13 @@ def test_page_in_chromium(tmp_path):
 
                 # the plan view: check the demo plan, download the report as PDF
                 page.get_by_text("Plan: rules and the protocol report").first.click()
-                page.get_by_role("button", name="Check the plan").click()
+                _single(page.get_by_role("button", name="Check the plan")).click()
                 page.get_by_text("Rule by rule").wait_for(timeout=UI_TIMEOUT_MS)
                 time.sleep(1.0)
                 page.screenshot(path=str(ARTIFACTS / "browser-9-plan.png"))
                 assert page.locator("[data-testid='stException']").count() == 0
                 with page.expect_download(timeout=UI_TIMEOUT_MS) as download:
-                    page.get_by_role("button", name="Report (PDF)").click()
+                    _single(page.get_by_role("button", name="Report (PDF)")).click()
                 pdf_path = ARTIFACTS / "browser-report.pdf"
                 download.value.save_as(str(pdf_path))
                 assert pdf_path.read_bytes()[:5] == b"%PDF-"
