@@ -310,6 +310,30 @@ def _fresnel_scalar(n1: float, n2: float, cos_i: float) -> tuple[float, float]:
     return 0.5 * (rs * rs + rp * rp), cos_t
 
 
+def _scatter(ux: float, uy: float, uz: float, g: float, xi: float, psi: float) -> tuple[float, float, float]:
+    """The direction after one Henyey–Greenstein scattering of direction (ux, uy, uz).
+
+    ``xi`` (uniform in [0, 1)) samples the polar deflection, ``psi`` is the azimuth (rad); the
+    rotation is the standard one of Wang, Jacques & Zheng (MCML, 1995), with the near-polar case
+    taken directly.  Shared by this Monte Carlo and the white one (written in numba's subset).
+    """
+    if g == 0.0:
+        cos_s = 2.0 * xi - 1.0
+    else:
+        tmp = (1.0 - g * g) / (1.0 - g + 2.0 * g * xi)
+        cos_s = (1.0 + g * g - tmp * tmp) / (2.0 * g)
+        cos_s = min(1.0, max(-1.0, cos_s))
+    sin_s = math.sqrt(1.0 - cos_s * cos_s)
+    cos_p = math.cos(psi)
+    sin_p = math.sin(psi)
+    if abs(uz) > _POLAR_LIMIT:
+        return sin_s * cos_p, sin_s * sin_p, (cos_s if uz > 0.0 else -cos_s)
+    root = math.sqrt(1.0 - uz * uz)
+    new_ux = sin_s * (ux * uz * cos_p - uy * sin_p) / root + ux * cos_s
+    new_uy = sin_s * (uy * uz * cos_p + ux * sin_p) / root + uy * cos_s
+    return new_ux, new_uy, -sin_s * cos_p * root + uz * cos_s
+
+
 def _bin_index(edges: np.ndarray, value: float) -> int:
     """Index of the bin holding value, or -1 if outside the edges."""
     if edges.size < 2 or value < edges[0] or value >= edges[-1]:
@@ -430,29 +454,7 @@ def _packet_loop(
             if k >= 0:
                 by_depth[k] += deposit
             interactions += 1
-            g = g_layer[layer]
-            xi = rng.random()
-            if g == 0.0:
-                cos_s = 2.0 * xi - 1.0
-            else:
-                tmp = (1.0 - g * g) / (1.0 - g + 2.0 * g * xi)
-                cos_s = (1.0 + g * g - tmp * tmp) / (2.0 * g)
-                cos_s = min(1.0, max(-1.0, cos_s))
-            sin_s = math.sqrt(1.0 - cos_s * cos_s)
-            psi = two_pi * rng.random()
-            cos_p = math.cos(psi)
-            sin_p = math.sin(psi)
-            if abs(uz) > _POLAR_LIMIT:
-                ux = sin_s * cos_p
-                uy = sin_s * sin_p
-                uz = cos_s if uz > 0.0 else -cos_s
-            else:
-                root = math.sqrt(1.0 - uz * uz)
-                new_ux = sin_s * (ux * uz * cos_p - uy * sin_p) / root + ux * cos_s
-                new_uy = sin_s * (uy * uz * cos_p + ux * sin_p) / root + uy * cos_s
-                uz = -sin_s * cos_p * root + uz * cos_s
-                ux = new_ux
-                uy = new_uy
+            ux, uy, uz = _scatter(ux, uy, uz, g_layer[layer], rng.random(), two_pi * rng.random())
             if w < ROULETTE_THRESHOLD:
                 if w == 0.0 or rng.random() > ROULETTE_SURVIVAL:
                     break
@@ -471,7 +473,8 @@ def _numba_loop():
 
         fresnel = numba.njit(cache=True, nogil=True)(_fresnel_scalar)
         bin_index = numba.njit(cache=True, nogil=True)(_bin_index)
-        globals_ = dict(_packet_loop.__globals__, _fresnel_scalar=fresnel, _bin_index=bin_index)
+        scatter = numba.njit(cache=True, nogil=True)(_scatter)
+        globals_ = dict(_packet_loop.__globals__, _fresnel_scalar=fresnel, _bin_index=bin_index, _scatter=scatter)
         loop = type(_packet_loop)(_packet_loop.__code__, globals_, "_packet_loop_compiled")
         _NUMBA_LOOP = numba.njit(cache=True, nogil=True)(loop)
     return _NUMBA_LOOP

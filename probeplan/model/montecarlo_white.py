@@ -57,28 +57,14 @@ from dataclasses import dataclass
 import numpy as np
 
 from probeplan.errors import input_error
+from probeplan.model.montecarlo import _fresnel_scalar, _scatter
 
 __all__ = ["SOURCES", "WhiteTallies", "simulate_white"]
 
 #: Sources the white run can launch.
 SOURCES: tuple[str, ...] = ("diffuse", "collimated")
-_POLAR_LIMIT = 0.99999
 #: Skip a tally term whose absorption weight is below exp(-_MAX_OPTICAL_PATH).
 _MAX_OPTICAL_PATH = 40.0
-
-
-def _fresnel(n1: float, n2: float, cos_i: float) -> tuple[float, float]:
-    """Unpolarised Fresnel reflectance and cos(transmitted angle), incidence cos_i from n1 into n2."""
-    if cos_i > 1.0 - 1e-12:
-        r = (n2 - n1) / (n2 + n1)
-        return r * r, cos_i
-    sin_t = n1 * math.sqrt(max(0.0, 1.0 - cos_i * cos_i)) / n2
-    if sin_t >= 1.0 or cos_i < 1e-6:
-        return 1.0, 0.0
-    cos_t = math.sqrt(1.0 - sin_t * sin_t)
-    rs = (n1 * cos_i - n2 * cos_t) / (n1 * cos_i + n2 * cos_t)
-    rp = (n2 * cos_i - n1 * cos_t) / (n2 * cos_i + n1 * cos_t)
-    return 0.5 * (rs * rs + rp * rp), cos_t
 
 
 def _walk(rng, n_packets, diffuse, g, n, ratios, max_path, z_edges, z2_edges, s_edges, s_offset, tally_z, tally_zs, counts):
@@ -105,7 +91,7 @@ def _walk(rng, n_packets, diffuse, g, n, ratios, max_path, z_edges, z2_edges, s_
         z = 0.0
         if diffuse:
             cos_air = math.sqrt(rng.random())
-            refl, cos_in = _fresnel(1.0, n, cos_air)
+            refl, cos_in = _fresnel_scalar(1.0, n, cos_air)
             w = 1.0 - refl
             sin_in = math.sqrt(max(0.0, 1.0 - cos_in * cos_in))
             phi = two_pi * rng.random()
@@ -128,7 +114,7 @@ def _walk(rng, n_packets, diffuse, g, n, ratios, max_path, z_edges, z2_edges, s_
                 y += d * uy
                 z = 0.0
                 path += d
-                refl, cos_t = _fresnel(n, 1.0, -uz)
+                refl, cos_t = _fresnel_scalar(n, 1.0, -uz)
                 if refl >= 1.0 or rng.random() <= refl:
                     uz = -uz
                     # continue the unused part of the step after reflection (memoryless: draw afresh)
@@ -166,26 +152,8 @@ def _walk(rng, n_packets, diffuse, g, n, ratios, max_path, z_edges, z2_edges, s_
                         js = n_s - 1
                     for k in range(last):
                         tally_zs[iz2, js, k] += wk[k]
-            # Henyey-Greenstein scattering
-            xi = rng.random()
-            tmp = (1.0 - g * g) / (1.0 - g + 2.0 * g * xi)
-            cos_s = (1.0 + g * g - tmp * tmp) / (2.0 * g)
-            cos_s = min(1.0, max(-1.0, cos_s))
-            sin_s = math.sqrt(1.0 - cos_s * cos_s)
-            psi = two_pi * rng.random()
-            cos_p = math.cos(psi)
-            sin_p = math.sin(psi)
-            if abs(uz) > _POLAR_LIMIT:
-                ux = sin_s * cos_p
-                uy = sin_s * sin_p
-                uz = cos_s if uz > 0.0 else -cos_s
-            else:
-                root = math.sqrt(1.0 - uz * uz)
-                new_ux = sin_s * (ux * uz * cos_p - uy * sin_p) / root + ux * cos_s
-                new_uy = sin_s * (uy * uz * cos_p + ux * sin_p) / root + uy * cos_s
-                uz = -sin_s * cos_p * root + uz * cos_s
-                ux = new_ux
-                uy = new_uy
+            # Henyey-Greenstein scattering (the packet Monte Carlo's own step)
+            ux, uy, uz = _scatter(ux, uy, uz, g, rng.random(), two_pi * rng.random())
     counts[1, 0] += interactions
 
 
@@ -198,8 +166,9 @@ def _compiled_walk():
     if _COMPILED is None:
         import numba
 
-        fresnel = numba.njit(cache=True, nogil=True)(_fresnel)
-        globals_ = dict(_walk.__globals__, _fresnel=fresnel)
+        fresnel = numba.njit(cache=True, nogil=True)(_fresnel_scalar)
+        scatter = numba.njit(cache=True, nogil=True)(_scatter)
+        globals_ = dict(_walk.__globals__, _fresnel_scalar=fresnel, _scatter=scatter)
         loop = type(_walk)(_walk.__code__, globals_, "_walk_compiled")
         _COMPILED = numba.njit(cache=True, nogil=True)(loop)
     return _COMPILED
