@@ -8,8 +8,6 @@ tests/data/make_transport_reference.py) and prints the table quoted in docs/tran
 from __future__ import annotations
 
 import argparse
-import csv
-import math
 from pathlib import Path
 
 import matplotlib
@@ -17,41 +15,29 @@ import matplotlib
 matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
-from scipy import integrate  # noqa: E402
 
 from probeplan.model import transport as tr  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
-REFERENCE = ROOT / "tests" / "data" / "transport_mc_reference.csv"
 
 
-def _rows():
-    with REFERENCE.open() as fh:
-        lines = [line for line in fh if not line.startswith("#")]
-    return [{k: (v if k == "quantity" else float(v)) for k, v in row.items()} for row in csv.DictReader(lines)]
+def _reference():
+    """tests/data/transport_reference.py: the reference rows and the model's value for each, as the test uses them."""
+    import importlib.util
 
-
-def model_value(row, model):
-    g, n, mua, musp, d = row["g"], row["n"], row["mu_a_per_cm"], row["mu_s_prime_per_cm"], row["depth_mm"]
-    q = row["quantity"]
-    if q == "escape":
-        return float(tr.point_source_escape(d, mua, musp, n, g=g, model=model))
-    if q == "fwhm_mm":
-        return float(tr.point_source_blur_fwhm_mm(d, mua, musp, n, g=g, model=model))
-    if q == "exitance_bin":
-        r_max = row["rho_max_mm"]
-        power = integrate.quad(lambda r: 2 * math.pi * r * float(
-            tr.point_source_exitance_per_mm2(r, d, mua, musp, n, g=g, model=model)), 0.0, r_max)[0]
-        return power / (math.pi * r_max**2)
-    z = np.linspace(d - 0.05, d + 0.05, 41)
-    return float(np.trapezoid(tr.broad_beam_fluence(z, mua, musp, n, g=g, model=model), z) / 0.1)
+    spec = importlib.util.spec_from_file_location("_transport_reference", ROOT / "tests" / "data" /
+                                                  "transport_reference.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
 
 
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--out", default=str(Path(__file__).with_name("transport_models.png")))
     args = parser.parse_args(argv)
-    rows = _rows()
+    ref = _reference()
+    rows = ref.reference_rows()
     fig, axes = plt.subplots(1, 2, figsize=(10.0, 4.0))
     # (a) escape against depth, mu_a = 1.03, mu_s' = 5.53 /cm (about 1300 nm), g 0.9, n 1.4
     depth = np.linspace(0.5, 6.0, 120)
@@ -72,8 +58,8 @@ def main(argv=None) -> int:
     print("| --- | --- | --- | --- | --- | --- | --- | --- | --- |")
     for r in rows:
         ratio = r["mu_a_per_cm"] / r["mu_s_prime_per_cm"]
-        dif = model_value(r, "diffusion") / r["value"]
-        tab = model_value(r, "auto") / r["value"]
+        dif = ref.model_value(r, "diffusion") / r["value"]
+        tab = ref.model_value(r, "auto") / r["value"]
         m = markers[r["quantity"]]
         ax.semilogx(ratio * (1.0 + 0.03 * r["depth_mm"]), dif, m, mfc="none", mec="0.4")
         ax.semilogx(ratio * (1.0 + 0.03 * r["depth_mm"]), tab, m, color="tab:blue")

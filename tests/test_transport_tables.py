@@ -8,20 +8,30 @@ tests/data/make_transport_reference.py) and as a few small live runs here.  The 
 
 from __future__ import annotations
 
-import csv
 import math
 from pathlib import Path
 
 import numpy as np
 import pytest
-from scipy import integrate
 
 from probeplan.errors import InputError
 from probeplan.model import transport as tr
 from probeplan.model import transport_tables as tt
 from probeplan.model.montecarlo import Layer, simulate_point_source, simulate_slab
 
-_REFERENCE = Path(__file__).parent / "data" / "transport_mc_reference.csv"
+
+def _load_reference():
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("_transport_reference", Path(__file__).parent / "data" /
+                                                  "transport_reference.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+#: The reference rows and the model's value for each (tests/data/transport_reference.py, shared with docs/).
+_REF = _load_reference()
 #: The accuracy the default model claims against Monte Carlo.
 TOLERANCE = 0.05
 #: What the radial-profile quantities reach today (measured, see docs/transport_models.md): the on-axis
@@ -29,38 +39,14 @@ TOLERANCE = 0.05
 TOLERANCE_BY_QUANTITY = {"escape": TOLERANCE, "broad_beam": TOLERANCE, "exitance_bin": 0.08, "fwhm_mm": 0.12}
 
 
-def _rows():
-    with _REFERENCE.open() as fh:
-        lines = [line for line in fh if not line.startswith("#")]
-    return [{k: (v if k == "quantity" else float(v)) for k, v in row.items()} for row in csv.DictReader(lines)]
-
-
-def _model_value(row, model):
-    g, n, mua, musp, d = row["g"], row["n"], row["mu_a_per_cm"], row["mu_s_prime_per_cm"], row["depth_mm"]
-    q = row["quantity"]
-    if q == "escape":
-        return float(tr.point_source_escape(d, mua, musp, n, g=g, model=model))
-    if q == "fwhm_mm":
-        return float(tr.point_source_blur_fwhm_mm(d, mua, musp, n, g=g, model=model))
-    if q == "exitance_bin":
-        r_max = row["rho_max_mm"]
-        power = integrate.quad(lambda r: 2 * math.pi * r * float(
-            tr.point_source_exitance_per_mm2(r, d, mua, musp, n, g=g, model=model)), 0.0, r_max)[0]
-        return power / (math.pi * r_max**2)
-    if q == "broad_beam":
-        z = np.linspace(d - 0.05, d + 0.05, 41)
-        return float(np.trapezoid(tr.broad_beam_fluence(z, mua, musp, n, g=g, model=model), z) / 0.1)
-    raise AssertionError(q)
-
-
-_ROWS = _rows()
+_ROWS = _REF.reference_rows()
 
 
 @pytest.mark.parametrize("row", _ROWS, ids=[f"{r['quantity']}-g{r['g']:g}-a{r['mu_a_per_cm'] / r['mu_s_prime_per_cm']:.3g}"
                                             f"-d{r['depth_mm']:g}" for r in _ROWS])
 def test_default_model_within_five_percent_of_monte_carlo(row):
     # Monte Carlo reference (precomputed, see the module docstring); allowance: 5 % + 2 standard errors.
-    value = _model_value(row, "auto")
+    value = _REF.model_value(row, "auto")
     allowed = TOLERANCE_BY_QUANTITY[row["quantity"]] + 2.0 * row["se"] / row["value"]
     assert value / row["value"] - 1.0 == pytest.approx(0.0, abs=allowed)
 
@@ -78,7 +64,7 @@ def test_diffusion_misses_where_absorption_is_high():
     # The reason for the tables: at mu_a/mu_s' = 0.19 (about 1300 nm) diffusion overestimates the escape
     # from 1 mm by more than 15 % against the same Monte Carlo reference.
     row = next(r for r in _ROWS if r["quantity"] == "escape" and r["mu_a_per_cm"] == 1.03 and r["depth_mm"] == 1.0)
-    assert _model_value(row, "diffusion") / row["value"] > 1.15
+    assert _REF.model_value(row, "diffusion") / row["value"] > 1.15
 
 
 def test_live_point_source_escape_and_peak():
