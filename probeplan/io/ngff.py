@@ -27,6 +27,7 @@ from pathlib import Path
 import numpy as np
 
 from probeplan.errors import input_error
+from probeplan.io.stackinfo import RowReader
 
 __all__ = ["is_ome_zarr", "inspect_ome_zarr", "ZarrStackReader", "ZarrStackWriter", "ZarrRowSink", "write_ome_zarr", "UNIT_UM"]
 
@@ -112,24 +113,12 @@ def inspect_ome_zarr(path, channel_axis: int | None = None):
     return info, array
 
 
-class ZarrStackReader:
-    """Read an OME-Zarr image by blocks of rows (the interface of :class:`probeplan.io.stacks.StackReader`)."""
+class ZarrStackReader(RowReader):
+    """Read an OME-Zarr image by blocks of rows (the protocol of :class:`probeplan.io.stackinfo.RowReader`)."""
 
     def __init__(self, info, array=None):
         self.info = info
         self._array = array
-
-    def __getstate__(self):
-        return {"info": self.info}
-
-    def __setstate__(self, state):
-        self.__init__(state["info"])
-
-    def __enter__(self):
-        return self
-
-    def __exit__(self, *exc) -> None:
-        self.close()
 
     def close(self) -> None:
         """Drop the open array (reopened when used again)."""
@@ -137,8 +126,7 @@ class ZarrStackReader:
 
     def read_rows(self, r0: int, r1: int) -> np.ndarray:
         """Rows ``r0:r1`` of the Y axis, all other axes whole, in the file's axis order."""
-        if not 0 <= r0 <= r1 <= self.info.n_rows:
-            raise input_error("rows", f"{r0}:{r1} outside 0:{self.info.n_rows}", "ask for rows inside the image")
+        self._check_rows(r0, r1)
         if self._array is None:
             _, self._array = inspect_ome_zarr(self.info.path)
         key = [slice(None)] * len(self.info.shape)
@@ -147,21 +135,6 @@ class ZarrStackReader:
             return np.asarray(self._array[tuple(key)])
         except Exception as exc:  # decoding errors of damaged chunks
             raise input_error(str(self.info.path), f"cannot decode rows {r0}:{r1} ({exc})", _FIX) from None
-
-    def read_rows_channel_first(self, r0: int, r1: int) -> np.ndarray:
-        """Rows ``r0:r1`` with the channel axis moved to the front."""
-        return np.moveaxis(self.read_rows(r0, r1), self.info.channel_axis, 0)
-
-    def iter_row_blocks(self, rows_per_block: int):
-        """``(r0, r1)`` pairs covering all rows."""
-        n = self.info.n_rows
-        step = max(1, int(rows_per_block))
-        for r0 in range(0, n, step):
-            yield r0, min(n, r0 + step)
-
-    def read(self) -> np.ndarray:
-        """The whole image in the file's axis order."""
-        return self.read_rows(0, self.info.n_rows)
 
 
 def _ngff_attrs(axes: str, channel_names, pixel_size_um) -> dict:

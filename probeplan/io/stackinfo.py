@@ -1,13 +1,17 @@
-"""What is known about an image stack file (:class:`StackInfo`), shared by the TIFF and OME-Zarr readers."""
+"""What is known about an image stack file (:class:`StackInfo`) and the row-reading protocol (:class:`RowReader`),
+shared by the TIFF and OME-Zarr readers."""
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-__all__ = ["StackInfo"]
+from probeplan.errors import input_error
+
+__all__ = ["StackInfo", "RowReader"]
 
 
 @dataclass(frozen=True)
@@ -60,3 +64,52 @@ class StackInfo:
     @property
     def n_rows(self) -> int:
         return self.shape[self.row_axis]
+
+
+class RowReader:
+    """Reading a stack by blocks of rows: what the TIFF and the OME-Zarr readers share.
+
+    A subclass sets ``info`` (a :class:`StackInfo`) in ``__init__(info)`` and gives
+    :meth:`read_rows` (after :meth:`_check_rows`) and :meth:`close`.  A reader is a context
+    manager and pickles as its ``info`` alone: the file is reopened where it is used.
+    """
+
+    info: StackInfo
+
+    def __getstate__(self):
+        return {"info": self.info}
+
+    def __setstate__(self, state):
+        self.__init__(state["info"])
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    def close(self) -> None:  # pragma: no cover - every reader has its own
+        raise NotImplementedError
+
+    def _check_rows(self, r0: int, r1: int) -> None:
+        if not 0 <= r0 <= r1 <= self.info.n_rows:
+            raise input_error("rows", f"{r0}:{r1} outside 0:{self.info.n_rows}", "ask for rows inside the image")
+
+    def read_rows(self, r0: int, r1: int) -> np.ndarray:  # pragma: no cover - every reader has its own
+        """Rows ``r0:r1`` of the row (Y) axis, all other axes whole, in the file's axis order."""
+        raise NotImplementedError
+
+    def read_rows_channel_first(self, r0: int, r1: int) -> np.ndarray:
+        """Rows ``r0:r1`` with the channel axis moved to the front."""
+        return np.moveaxis(self.read_rows(r0, r1), self.info.channel_axis, 0)
+
+    def iter_row_blocks(self, rows_per_block: int) -> Iterator[tuple[int, int]]:
+        """``(r0, r1)`` pairs covering all rows."""
+        n = self.info.n_rows
+        step = max(1, int(rows_per_block))
+        for r0 in range(0, n, step):
+            yield r0, min(n, r0 + step)
+
+    def read(self) -> np.ndarray:
+        """The whole stack in the file's axis order."""
+        return self.read_rows(0, self.info.n_rows)

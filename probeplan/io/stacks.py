@@ -22,7 +22,7 @@ import contextlib
 import math
 import os
 import xml.etree.ElementTree as ET
-from collections.abc import Iterator, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -30,7 +30,7 @@ import numpy as np
 
 from probeplan.errors import InputError, input_error
 from probeplan.io.atomic import atomic_path, write_error
-from probeplan.io.stackinfo import StackInfo
+from probeplan.io.stackinfo import RowReader, StackInfo
 
 __all__ = [
     "StackInfo",
@@ -216,7 +216,7 @@ def _inspect(path: Path, channel_axis: int | None, *, allow_plane: bool = False)
     )
 
 
-class StackReader:
+class StackReader(RowReader):
     """Read a stack by blocks of rows without loading the whole file.
 
     Use :func:`open_stack` to make one; it is a context manager.  It can be pickled
@@ -228,18 +228,6 @@ class StackReader:
         self._fd: int | None = None
         self._zarr = None
         self._store = None
-
-    def __getstate__(self):
-        return {"info": self.info}
-
-    def __setstate__(self, state):
-        self.__init__(state["info"])
-
-    def __enter__(self) -> StackReader:
-        return self
-
-    def __exit__(self, *exc) -> None:
-        self.close()
 
     def close(self) -> None:
         """Release the open file handles."""
@@ -298,8 +286,7 @@ class StackReader:
 
     def read_rows(self, r0: int, r1: int) -> np.ndarray:
         """Rows ``r0:r1`` of the row (Y) axis, all other axes whole, in the file's axis order."""
-        if not 0 <= r0 <= r1 <= self.info.n_rows:
-            raise input_error("rows", f"{r0}:{r1} outside 0:{self.info.n_rows}", "ask for rows inside the image")
+        self._check_rows(r0, r1)
         if self.info.data_offset is not None:
             block = self._read_contiguous(r0, r1)
         else:
@@ -307,21 +294,6 @@ class StackReader:
         if block.dtype.byteorder not in ("=", "|"):
             block = block.astype(block.dtype.newbyteorder("="))
         return block
-
-    def read_rows_channel_first(self, r0: int, r1: int) -> np.ndarray:
-        """Rows ``r0:r1`` with the channel axis moved to the front."""
-        return np.moveaxis(self.read_rows(r0, r1), self.info.channel_axis, 0)
-
-    def iter_row_blocks(self, rows_per_block: int) -> Iterator[tuple[int, int]]:
-        """``(r0, r1)`` pairs covering all rows."""
-        n = self.info.n_rows
-        step = max(1, int(rows_per_block))
-        for r0 in range(0, n, step):
-            yield r0, min(n, r0 + step)
-
-    def read(self) -> np.ndarray:
-        """The whole stack in the file's axis order."""
-        return self.read_rows(0, self.info.n_rows)
 
 
 def open_stack(path: str | os.PathLike, *, channel_axis: int | None = None, allow_plane: bool = False) -> StackReader:
