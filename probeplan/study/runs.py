@@ -533,19 +533,10 @@ def measure_acquisition(acq: Acquisition, references, settings: StudySettings = 
         params = _Params(M, settings.method, sat, float(settings.gain_e_per_count), float(settings.read_noise_e), 1.0,
                          "auto", write)
         if write:
-            from probeplan.io.stacks import StackWriter
-            from probeplan.unmixing.pipeline import _out_axes
+            from probeplan.unmixing.pipeline import _out_axes, open_map_writers
 
-            axes = _out_axes(src.spatial_axes)
-            paths = map_paths(Path(out_dir), acq.key)
-            spatial = src.spatial_shape
-            writers.append(StackWriter(paths["abundance"], (K, *spatial), axes=axes, channel_names=comps,
-                                       pixel_size_um=src.pixel_size_um))
-            writers.append(StackWriter(paths["stderr"], (K, *spatial), axes=axes,
-                                       channel_names=[f"{c} standard error" for c in comps],
-                                       pixel_size_um=src.pixel_size_um))
-            writers.append(StackWriter(paths["residual"], (1, *spatial), axes=axes,
-                                       channel_names=["residual rms (counts)"], pixel_size_um=src.pixel_size_um))
+            open_map_writers(writers, map_paths(Path(out_dir), acq.key), comps, src.spatial_shape,
+                             _out_axes(src.spatial_axes), src.pixel_size_um)
         # automatic ROIs: their component's map, averaged over leading planes, goes to a temporary file by rows
         spills = {}
         for comp in dict.fromkeys(c for _, c in autos):

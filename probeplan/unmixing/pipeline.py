@@ -44,6 +44,7 @@ from probeplan.unmixing.nnls import STATUS_CONSTRAINED, STATUS_NAN, STATUS_SATUR
 
 __all__ = [
     "DEPTH_COMPARISON_CAUTION",
+    "open_map_writers",
     "METHODS",
     "CONDITION_WARN",
     "OFFSET_NAME",
@@ -621,6 +622,25 @@ def output_paths(out_path, *, roi: bool = False) -> dict:
     return paths
 
 
+def open_map_writers(writers: list, paths, names, spatial_shape, axes: str, pixel_size_um, *, writer=None) -> list:
+    """Open the writers of the abundance, standard-error and residual maps, appending each to ``writers``.
+
+    ``paths`` maps ``"abundance"``, ``"stderr"`` and ``"residual"`` to files; ``names`` are the
+    components.  Appended one by one, so that when one fails the caller closes those already open.
+    ``writer`` is the writer class (default :class:`probeplan.io.stacks.StackWriter`).
+    """
+    if writer is None:
+        from probeplan.io.stacks import StackWriter as writer  # noqa: N813
+    K = len(names)
+    writers.append(writer(paths["abundance"], (K, *spatial_shape), axes=axes, channel_names=list(names),
+                          pixel_size_um=pixel_size_um))
+    writers.append(writer(paths["stderr"], (K, *spatial_shape), axes=axes,
+                          channel_names=[f"{n} standard error" for n in names], pixel_size_um=pixel_size_um))
+    writers.append(writer(paths["residual"], (1, *spatial_shape), axes=axes, channel_names=["residual rms (counts)"],
+                          pixel_size_um=pixel_size_um))
+    return writers
+
+
 def _out_axes(spatial_axes: str) -> str:
     lead = spatial_axes[:-2]
     mapped = "".join("Z" if a in "QIS" else a for a in lead)
@@ -867,13 +887,7 @@ def unmix_file(stack_path, references, out_path, *, method: str = "nnls", channe
     if zarr_out:
         from probeplan.io.ngff import ZarrStackWriter as StackWriter  # noqa: N813 - same interface
     try:
-        writers.append(StackWriter(paths["abundance"], (K, *spatial), axes=axes, channel_names=names,
-                                   pixel_size_um=info.pixel_size_um))
-        writers.append(StackWriter(paths["stderr"], (K, *spatial), axes=axes,
-                                   channel_names=[f"{n} standard error" for n in names],
-                                   pixel_size_um=info.pixel_size_um))
-        writers.append(StackWriter(paths["residual"], (1, *spatial), axes=axes,
-                                   channel_names=["residual rms (counts)"], pixel_size_um=info.pixel_size_um))
+        open_map_writers(writers, paths, names, spatial, axes, info.pixel_size_um, writer=StackWriter)
 
         def merge(r0, nrows, summary, report=True):
             small, q, r = summary
