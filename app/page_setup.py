@@ -10,9 +10,9 @@ from __future__ import annotations
 
 import streamlit as st
 
-from probeplan.model.fluorescence import DEFAULT_CONCENTRATION_UM
 from app.page_common import fmt
 from app.page_model import Setup, camera_names, material_ranges, skin_mpe
+from probeplan.model.defaults import DEFAULT_CONCENTRATION_UM
 
 __all__ = ["DEFAULTS", "DEFAULT_PROBES", "MAX_PROBES", "init_state", "setup_sidebar", "probe_table",
            "apply_probe_set", "COMPOSITION_FIELDS", "current_setup"]

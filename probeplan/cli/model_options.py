@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import argparse
 
-from probeplan.model.fluorescence import DEFAULT_CONCENTRATION_UM
+from probeplan.model.defaults import DEFAULT_CONCENTRATION_UM
 
 __all__ = ["add_model_options", "add_optics_options", "add_target_options", "setup_from_args", "FLAGS"]
 

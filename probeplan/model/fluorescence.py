@@ -75,6 +75,7 @@ import numpy as np
 
 from probeplan.errors import ProbeAbsorptionWarning, input_error, positive_number, warn_at_caller
 from probeplan.model import transport
+from probeplan.model.defaults import DEFAULT_CONCENTRATION_UM
 from probeplan.model.layers import LayeredTissue, layered_coefficients_and_factor
 from probeplan.model.spectra import grid_nm
 from probeplan.model.tissue import Tissue, as_tissue
@@ -98,11 +99,6 @@ __all__ = [
     "MM_PER_CM",
 ]
 
-#: Probe concentration in the target (µM) assumed when none is given: the one default of the library, the
-#: command line and the page.  10 nM is of the order reached in a tumour a day after an intravenous dose of
-#: about 1 nmol of dots (a few % of the injected dose per gram; typical, an assumption to replace with the
-#: study's own value).
-DEFAULT_CONCENTRATION_UM = 0.01
 
 #: Litres per cubic centimetre.
 L_PER_CM3 = 1e-3

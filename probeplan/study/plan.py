@@ -41,7 +41,7 @@ from typing import Any
 
 from probeplan.errors import did_you_mean, input_error
 from probeplan.io.tomlsource import format_path, line_of, load_toml, parse_toml_text
-from probeplan.model.fluorescence import DEFAULT_CONCENTRATION_UM
+from probeplan.model.defaults import DEFAULT_CONCENTRATION_UM
 
 __all__ = ["Plan", "load_plan", "parse_plan_text", "SCHEMA", "ROUTES", "SPECIES", "MAX_TABLES"]
 
