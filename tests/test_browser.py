@@ -147,10 +147,13 @@ def _draw_region(page, name: str, start: tuple[float, float], end: tuple[float, 
         page.mouse.move(x0 + (x1 - x0) * i / 10, y0 + (y1 - y0) * i / 10)
     page.mouse.up()
     _wait_idle(page)
-    field = _single(page.get_by_label("region name", exact=True))
-    field.fill(name)
-    field.press("Enter")
-    _wait_idle(page)
+    for _ in range(3):  # a rerun still under way can replace the field with an empty one: type again
+        field = _single(page.get_by_label("region name", exact=True))
+        field.fill(name)
+        field.press("Enter")
+        _wait_idle(page)
+        if _single(page.get_by_label("region name", exact=True)).input_value() == name:
+            break
     _single(page.get_by_role("button", name="Add region")).click()
     _wait_idle(page)
     page.get_by_text(f"{name} (", exact=False).first.wait_for(timeout=UI_TIMEOUT_MS)
