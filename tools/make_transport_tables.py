@@ -1,15 +1,17 @@
 """Generate the shipped Monte Carlo transport tables (probeplan/data/transport_tables.npz).
 
-Stage 1 (``simulate``, about 15 minutes on two cores): white Monte Carlo runs
+Stage 1 (``simulate``, about 3 minutes on two cores): white Monte Carlo runs
 (:mod:`probeplan.model.montecarlo_white`) of a semi-infinite medium for every
 anisotropy g in G_GRID and refractive index n in N_GRID, with a diffuse point
 source (escape and exitance by reciprocity) and a collimated pencil beam (broad-beam
-fluence).  The raw tallies (batch means and standard errors) go to RAW, outside the
+fluence).  The radial tally's bins grow with depth (ρ′ = s (z′ + S_OFFSET)) and are fine
+near the surface, where a shallow source's profile is a fraction of a reduced length wide.  The raw tallies (batch means and standard errors) go to RAW, outside the
 package.
 
 Stage 2 (``reduce``, seconds): divide each Monte Carlo quantity by the diffusion
-formula of :mod:`probeplan.model.transport` averaged over the same bins, fit the
-radial profiles, and write the correction tables with their standard errors.
+formula of :mod:`probeplan.model.transport` averaged over the same bins (for the radial
+profiles: the same near-axis estimate of J(0) and of the FWHM applied to both), and write
+the correction tables with their standard errors.
 
     python3 tools/make_transport_tables.py simulate   # writes build/transport_raw.npz
     python3 tools/make_transport_tables.py reduce     # writes probeplan/data/transport_tables.npz
@@ -31,16 +33,16 @@ SEED = 20261203
 G_GRID = (0.8, 0.9, 0.95)
 N_GRID = (1.33, 1.45)
 #: Packets per run at each g (collisions per reduced length grow as 1/(1 - g)).
-PACKETS = {0.8: 160_000, 0.9: 80_000, 0.95: 40_000}
+PACKETS = {0.8: 240_000, 0.9: 120_000, 0.95: 60_000}
 RATIOS = np.array([0.005, 0.01, 0.02, 0.035, 0.05, 0.075, 0.1, 0.15, 0.2, 0.3, 0.4, 0.5, 0.6])
 #: Packets are dropped beyond this reduced path: exp(-0.005 * 1000) < 0.7 % of a packet's weight is left
 #: for the smallest ratio on the grid.
 MAX_REDUCED_PATH = 1000.0
 Z_EDGES = np.concatenate([np.arange(0.0, 2.0, 0.05), np.arange(2.0, 10.0, 0.2), np.arange(10.0, 30.001, 1.0)])
-Z2_EDGES = np.concatenate([np.arange(0.1, 1.0, 0.1), np.arange(1.0, 3.0, 0.25), np.arange(3.0, 6.0, 0.5),
+Z2_EDGES = np.concatenate([np.arange(0.05, 1.0, 0.05), np.arange(1.0, 3.0, 0.25), np.arange(3.0, 6.0, 0.5),
                            np.arange(6.0, 12.0, 1.0), np.arange(12.0, 20.001, 2.0)])
-S_EDGES = np.linspace(0.0, 2.5, 51)
-S_OFFSET = 1.0
+S_EDGES = np.linspace(0.0, 2.5, 101)
+S_OFFSET = 0.1
 N_BATCHES = 8
 
 
@@ -76,10 +78,6 @@ _GX, _GW = np.polynomial.legendre.leggauss(4)
 _GX, _GW = 0.5 * (_GX + 1.0), 0.5 * _GW
 #: A table cell is kept where its relative standard error is below this; deeper cells are extrapolated.
 MAX_RELATIVE_SE = 0.05
-#: The ratio of the Monte Carlo to the diffusion radial profile is fitted with a polynomial of this
-#: degree in (ρ / half the diffusion FWHM)² over ρ < PROFILE_FIT_FWHM × the diffusion FWHM.
-PROFILE_FIT_DEGREE = 3
-PROFILE_FIT_FWHM = 1.5
 #: Reduced scattering used to evaluate the diffusion formulas (1 /mm, so mm = reduced units).
 _MUSP = 10.0
 
@@ -214,7 +212,9 @@ def reduce() -> None:
         "Axes: g, n, mu_a/mu_s', reduced depth (depth x mu_s'). ln(ratio) is smoothed (cubic spline, "
         f"weights 1/sigma) over the cells with relative standard error < {MAX_RELATIVE_SE}; deeper cells continue "
         "ln(ratio) linearly with the stored slope: for escape and exitance diffusion's mu_eff minus the exact "
-        "transport decay constant of the similar isotropic medium (Case & Zweifel 1967); 0 for the broad beam."
+        "transport decay constant of the similar isotropic medium (Case & Zweifel 1967); 0 for the broad beam. "
+        "On-axis exitance and FWHM: a weighted cubic fit in rho^2 of ln J near the axis (to 1.3 x the half-maximum "
+        "radius), applied alike to the Monte Carlo and to the bin-averaged diffusion profile."
     )
     np.savez_compressed(
         OUT, provenance=np.array(provenance), g_grid=np.array(G_GRID), n_grid=np.array(N_GRID), ratios=ratios,
@@ -227,8 +227,54 @@ def reduce() -> None:
     print("wrote", OUT)
 
 
+def _profile_estimate(rho, j, rel, rng=None, draws=0):
+    """On-axis value and FWHM of a binned radial profile, with no transport model involved.
+
+    ln J is fitted (weighted least squares, weights 1/relative error) with a cubic in u = ρ²
+    over the bins out to 1.3 times a first estimate of the half-maximum radius (the first bin
+    below half the mean of the first three); J(0) is the fit at ρ = 0 and the FWHM twice the
+    radius where the fit falls to half of it.  Fitting ln J near the axis, rather than the ratio
+    to a diffusion profile over its whole width, keeps the estimate clear of the knee at the
+    critical angle that a shallow source's profile shows (ρ ≈ d tan θc).  With ``draws`` > 0
+    the standard errors are the spread over coefficient draws from the fit's covariance.
+    """
+    below = np.flatnonzero(j < 0.5 * j[:3].mean())
+    if not below.size:
+        return np.nan, np.nan, np.inf, np.inf
+    first = float(rho[below[0]])
+    use = (rho < 1.3 * first) & (j > 0) & np.isfinite(rel)
+    if use.sum() < 6:
+        return np.nan, np.nan, np.inf, np.inf
+    u = rho[use] ** 2 / first**2
+    a = np.vstack([np.ones_like(u), u, u**2, u**3]).T
+    w = 1.0 / np.maximum(rel[use], 1e-3)
+    coef, *_ = np.linalg.lstsq(a * w[:, None], np.log(j[use]) * w, rcond=None)
+    grid = np.linspace(0.0, 1.3 * first, 1301)
+    x = grid**2 / first**2
+
+    def half(c):
+        ln = c[0] + c[1] * x + c[2] * x**2 + c[3] * x**3
+        b = np.flatnonzero(ln < c[0] - np.log(2.0))
+        if not b.size:
+            return np.nan
+        b = b[0]
+        return 2.0 * float(np.interp(c[0] - np.log(2.0), [ln[b], ln[b - 1]], [grid[b], grid[b - 1]]))
+
+    if not draws:
+        return float(np.exp(coef[0])), half(coef), np.inf, np.inf
+    cov = np.linalg.pinv((a * w[:, None]).T @ (a * w[:, None]))
+    sample = rng.multivariate_normal(coef, cov, size=draws)
+    return (float(np.exp(coef[0])), half(coef), float(np.sqrt(cov[0, 0])) * float(np.exp(coef[0])),
+            float(np.nanstd([half(c) for c in sample])))
+
+
 def _profile_corrections(j_mc, j_se, z2_edges, s_edges, s_offset, mua, n):
-    """On-axis exitance ratio (MC / diffusion), its error, and the FWHM ratio, per 2-D depth bin."""
+    """On-axis exitance ratio (MC / diffusion), its error, and the FWHM ratio, per 2-D depth bin.
+
+    The same estimator (:func:`_profile_estimate`) is applied to the Monte Carlo profile and to the
+    diffusion profile averaged over the same cells with the same weights, so that the binning's bias
+    cancels in the ratio; the ratio then multiplies diffusion's point values at run time.
+    """
     from probeplan.model import transport
 
     nz = z2_edges.size - 1
@@ -237,48 +283,28 @@ def _profile_corrections(j_mc, j_se, z2_edges, s_edges, s_offset, mua, n):
     wr = np.full(nz, np.nan)
     wr_se = np.full(nz, np.inf)
     rng = np.random.default_rng(0)
+    s_lo, s_hi = s_edges[:-1], s_edges[1:]
+    sq = s_lo[:, None] + (s_hi - s_lo)[:, None] * _GX[None, :]  # (S, 4)
     for iz in range(nz):
         z0, z1 = z2_edges[iz], z2_edges[iz + 1]
         zq = z0 + (z1 - z0) * _GX
         zc = 0.5 * (z0 + z1)
         # bin averages of the diffusion exitance, weight s (z + c)^2 ds dz
-        s_lo, s_hi = s_edges[:-1], s_edges[1:]
-        sq = s_lo[:, None] + (s_hi - s_lo)[:, None] * _GX[None, :]  # (S, 4)
         rho = sq[:, :, None] * (zq[None, None, :] + s_offset)  # (S, 4s, 4z)
         jd = transport.point_source_exitance_per_mm2(rho, zq[None, None, :], mua, _MUSP, n, model="diffusion")
         wgt = _GW[None, :, None] * _GW[None, None, :] * sq[:, :, None] * (zq[None, None, :] + s_offset) ** 2
         jd_avg = np.sum(jd * wgt, axis=(1, 2)) / np.sum(wgt, axis=(1, 2))
-        fwhm_d = float(transport.point_source_blur_fwhm_mm(zc, mua, _MUSP, n, model="diffusion"))
         rho_c = 0.5 * (s_lo + s_hi) * (zc + s_offset)
-        use = (rho_c < PROFILE_FIT_FWHM * fwhm_d) & (j_mc[iz] > 0) & np.isfinite(j_se[iz])
-        if use.sum() < 6:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            rel = np.where(j_mc[iz] > 0, j_se[iz] / j_mc[iz], np.inf)
+        j0, f, j0_se, f_se = _profile_estimate(rho_c, j_mc[iz], rel, rng, draws=48)
+        j0_d, f_d, _, _ = _profile_estimate(rho_c, jd_avg, rel)
+        if not (np.isfinite(j0) and np.isfinite(f) and np.isfinite(f_d)):
             continue
-        ratio = j_mc[iz, use] / jd_avg[use]
-        ratio_se = j_se[iz, use] / jd_avg[use]
-        u = (rho_c[use] / (0.5 * fwhm_d)) ** 2
-        A = np.vstack([u**p for p in range(PROFILE_FIT_DEGREE + 1)]).T
-        wts = 1.0 / np.maximum(ratio_se, 1e-6)
-        coef, *_ = np.linalg.lstsq(A * wts[:, None], ratio * wts, rcond=None)
-        cov = np.linalg.pinv((A * wts[:, None]).T @ (A * wts[:, None]))
-        c0[iz] = coef[0]
-        c0_se[iz] = np.sqrt(cov[0, 0])
-        # the Monte Carlo profile is the diffusion profile times the fitted ratio: find its half maximum
-        rr = np.linspace(0.0, 2.0 * fwhm_d, 801)
-        base = transport.point_source_exitance_per_mm2(rr, zc, mua, _MUSP, n, model="diffusion")
-        uu = (rr / (0.5 * fwhm_d)) ** 2
-
-        def width(cf):
-            prof = base * np.clip(sum(c * uu**p for p, c in enumerate(cf)), 1e-6, None)
-            below = np.flatnonzero(prof < 0.5 * prof[0])
-            if not below.size:
-                return np.nan
-            b = below[0]
-            return 2.0 * np.interp(0.5 * prof[0], [prof[b], prof[b - 1]], [rr[b], rr[b - 1]]) / fwhm_d
-
-        wr[iz] = width(coef)
-        # its standard error: spread over coefficient draws from the fit's covariance
-        draws = rng.multivariate_normal(coef, cov, size=24)
-        wr_se[iz] = np.nanstd([width(cf) for cf in draws])
+        c0[iz] = j0 / j0_d
+        c0_se[iz] = j0_se / j0_d
+        wr[iz] = f / f_d
+        wr_se[iz] = f_se / f_d
     return c0, c0_se, wr, wr_se
 
 

