@@ -10,6 +10,7 @@ subclass instead.
 from __future__ import annotations
 
 import difflib
+import functools
 import math
 import sys
 import warnings
@@ -150,6 +151,12 @@ def did_you_mean(name: Any, choices: Iterable[Any], *, cutoff: float = 0.5, list
     return f"{hint}valid: {shown}"
 
 
+@functools.lru_cache(maxsize=1024)
+def _inside_package(filename: str) -> bool:
+    """True when the code file lies inside the package (resolved once per file: the model warns often)."""
+    return str(Path(filename).resolve()).startswith(_PACKAGE_DIR)
+
+
 def warn_at_caller(message: str | Warning, category: type[Warning] = ProbeplanWarning) -> None:
     """Warn, attributing the warning to the first line outside the package (the caller's own code).
 
@@ -169,7 +176,7 @@ def warn_at_caller(message: str | Warning, category: type[Warning] = ProbeplanWa
     """
     level = 2  # 1 is this function, 2 its caller; then one more per frame inside the package
     frame = sys._getframe(1)
-    while frame is not None and str(Path(frame.f_code.co_filename).resolve()).startswith(_PACKAGE_DIR):
+    while frame is not None and _inside_package(frame.f_code.co_filename):
         frame = frame.f_back
         level += 1
     warnings.warn(message, category, stacklevel=level)
