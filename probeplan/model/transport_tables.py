@@ -29,9 +29,14 @@ Why this form (a "hybrid" of diffusion and tabulated Monte Carlo)
 * **Deep in the medium** both fall exponentially, with slightly different decay
   constants when μa/μs′ is large (diffusion's μeff is not the exact transport
   eigenvalue; see e.g. Star 1995).  Beyond the last table cell whose Monte Carlo
-  standard error is below 1 %, ln C is continued linearly with the slope fitted to
-  the Monte Carlo over the last reduced depth unit kept; the FWHM ratio is held
-  at its last kept value.
+  standard error is below 5 %, ln C is continued linearly: for the escape and the
+  on-axis exitance with the slope μeff − k, k the exact decay constant of the similar
+  isotropic medium (Case & Zweifel 1967); the broad-beam correction and the FWHM
+  ratio are held at their last kept values.
+* **On-axis exitance and FWHM** are estimated near the axis of the tabulated radial
+  profiles (a weighted cubic in ρ² of ln J), alike for the Monte Carlo and for the
+  bin-averaged diffusion profile, so that the knee a shallow source's profile shows
+  at ρ = d tan θc (the edge of the light escaping unscattered) does not bias them.
 * δ-P1 (Carp, Prahl & Venugopalan 2004) improves the broad-beam fluence near the
   surface but keeps diffusion's μeff for the decay and was not used: it does not
   reach 5 % for the escape at μa/μs′ near 0.5.
@@ -52,6 +57,7 @@ References
 .. [3] Carp, Prahl & Venugopalan, J. Biomed. Opt. 9, 632 (2004), doi:10.1117/1.1695412.
 .. [4] Star, "Diffusion theory of light transport", ch. 6 in Welch & van Gemert (eds.),
    Optical-Thermal Response of Laser-Irradiated Tissue, Plenum, New York (1995).
+.. [5] Case & Zweifel, Linear Transport Theory, Addison-Wesley, Reading MA (1967), ch. 4.
 """
 
 from __future__ import annotations
