@@ -227,62 +227,22 @@ def reduce() -> None:
     print("wrote", OUT)
 
 
-def _profile_estimate(rho, j, rel, rng=None, draws=0):
-    """On-axis value and FWHM of a binned radial profile, with no transport model involved.
-
-    ln J is fitted (weighted least squares, weights 1/relative error) with a cubic in u = ρ²
-    over the bins out to 1.3 times a first estimate of the half-maximum radius (the first bin
-    below half the mean of the first three); J(0) is the fit at ρ = 0 and the FWHM twice the
-    radius where the fit falls to half of it.  Fitting ln J near the axis, rather than the ratio
-    to a diffusion profile over its whole width, keeps the estimate clear of the knee at the
-    critical angle that a shallow source's profile shows (ρ ≈ d tan θc).  With ``draws`` > 0
-    the standard errors are the spread over coefficient draws from the fit's covariance.
-    """
-    below = np.flatnonzero(j < 0.5 * j[:3].mean())
-    if not below.size:
-        return np.nan, np.nan, np.inf, np.inf
-    first = float(rho[below[0]])
-    use = (rho < 1.3 * first) & (j > 0) & np.isfinite(rel)
-    if use.sum() < 6:
-        return np.nan, np.nan, np.inf, np.inf
-    u = rho[use] ** 2 / first**2
-    a = np.vstack([np.ones_like(u), u, u**2, u**3]).T
-    w = 1.0 / np.maximum(rel[use], 1e-3)
-    coef, *_ = np.linalg.lstsq(a * w[:, None], np.log(j[use]) * w, rcond=None)
-    grid = np.linspace(0.0, 1.3 * first, 1301)
-    x = grid**2 / first**2
-
-    def half(c):
-        ln = c[0] + c[1] * x + c[2] * x**2 + c[3] * x**3
-        b = np.flatnonzero(ln < c[0] - np.log(2.0))
-        if not b.size:
-            return np.nan
-        b = b[0]
-        return 2.0 * float(np.interp(c[0] - np.log(2.0), [ln[b], ln[b - 1]], [grid[b], grid[b - 1]]))
-
-    if not draws:
-        return float(np.exp(coef[0])), half(coef), np.inf, np.inf
-    cov = np.linalg.pinv((a * w[:, None]).T @ (a * w[:, None]))
-    sample = rng.multivariate_normal(coef, cov, size=draws)
-    return (float(np.exp(coef[0])), half(coef), float(np.sqrt(cov[0, 0])) * float(np.exp(coef[0])),
-            float(np.nanstd([half(c) for c in sample])))
-
-
 def _profile_corrections(j_mc, j_se, z2_edges, s_edges, s_offset, mua, n):
     """On-axis exitance ratio (MC / diffusion), its error, and the FWHM ratio, per 2-D depth bin.
 
-    The same estimator (:func:`_profile_estimate`) is applied to the Monte Carlo profile and to the
+    The same estimator (:func:`probeplan.model.montecarlo.radial_profile_peak_and_fwhm`, the reference's
+    own) is applied to the Monte Carlo profile and to the
     diffusion profile averaged over the same cells with the same weights, so that the binning's bias
     cancels in the ratio; the ratio then multiplies diffusion's point values at run time.
     """
     from probeplan.model import transport
+    from probeplan.model.montecarlo import radial_profile_peak_and_fwhm as estimate
 
     nz = z2_edges.size - 1
     c0 = np.full(nz, np.nan)
     c0_se = np.full(nz, np.inf)
     wr = np.full(nz, np.nan)
     wr_se = np.full(nz, np.inf)
-    rng = np.random.default_rng(0)
     s_lo, s_hi = s_edges[:-1], s_edges[1:]
     sq = s_lo[:, None] + (s_hi - s_lo)[:, None] * _GX[None, :]  # (S, 4)
     for iz in range(nz):
@@ -297,8 +257,8 @@ def _profile_corrections(j_mc, j_se, z2_edges, s_edges, s_offset, mua, n):
         rho_c = 0.5 * (s_lo + s_hi) * (zc + s_offset)
         with np.errstate(divide="ignore", invalid="ignore"):
             rel = np.where(j_mc[iz] > 0, j_se[iz] / j_mc[iz], np.inf)
-        j0, f, j0_se, f_se = _profile_estimate(rho_c, j_mc[iz], rel, rng, draws=48)
-        j0_d, f_d, _, _ = _profile_estimate(rho_c, jd_avg, rel)
+        j0, f, j0_se, f_se = estimate(rho_c, j_mc[iz], rel, draws=48, seed=iz)
+        j0_d, f_d, _, _ = estimate(rho_c, jd_avg, rel)
         if not (np.isfinite(j0) and np.isfinite(f) and np.isfinite(f_d)):
             continue
         c0[iz] = j0 / j0_d

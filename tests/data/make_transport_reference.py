@@ -25,7 +25,7 @@ from pathlib import Path
 
 import numpy as np
 
-from probeplan.model.montecarlo import Layer, simulate_point_source, simulate_slab
+from probeplan.model.montecarlo import Layer, radial_profile_peak_and_fwhm, simulate_point_source, simulate_slab
 
 OUT = Path(__file__).with_name("transport_mc_reference.csv")
 SEED = 7321
@@ -63,37 +63,11 @@ def _layer(g, n, mu_a, mu_sp):
 
 
 def _fwhm(res):
-    """FWHM of the radial exitance profile and its standard error, without any transport model.
-
-    ln J is fitted (weighted least squares, weights 1/relative error) with a cubic in u = ρ² over
-    the bins out to 1.3 times a first estimate of the half-maximum radius; the FWHM is twice the
-    radius where the fit falls to half its value at ρ = 0.  The standard error is the spread of
-    that radius over 200 draws of the fitted coefficients from their covariance.
-    """
-    rho = res.rho_mm
-    j = res.radial_reflectance_per_mm2
-    rel = res.radial_reflectance_per_mm2_std / np.maximum(j, 1e-300)
-    first = float(rho[np.flatnonzero(j < 0.5 * j[:3].mean())[0]])
-    use = (rho < 1.3 * first) & (j > 0)
-    u = rho[use] ** 2
-    scale = first**2
-    a = np.vstack([np.ones_like(u), u / scale, (u / scale) ** 2, (u / scale) ** 3]).T
-    w = 1.0 / np.maximum(rel[use], 1e-3)
-    coef, *_ = np.linalg.lstsq(a * w[:, None], np.log(j[use]) * w, rcond=None)
-    cov = np.linalg.pinv((a * w[:, None]).T @ (a * w[:, None]))
-    grid = np.linspace(0.0, 1.3 * first, 2001)
-
-    def half(c):
-        x = grid**2 / scale
-        ln = c[0] + c[1] * x + c[2] * x**2 + c[3] * x**3
-        below = np.flatnonzero(ln < c[0] - math.log(2.0))
-        if not below.size:
-            return np.nan
-        b = below[0]
-        return 2.0 * float(np.interp(c[0] - math.log(2.0), [ln[b], ln[b - 1]], [grid[b], grid[b - 1]]))
-
-    draws = np.random.default_rng(0).multivariate_normal(coef, cov, size=200)
-    return half(coef), float(np.nanstd([half(c) for c in draws]))
+    """FWHM of the radial exitance profile and its standard error, without any transport model
+    (:func:`probeplan.model.montecarlo.radial_profile_peak_and_fwhm`, 200 coefficient draws)."""
+    rel = res.radial_reflectance_per_mm2_std / np.maximum(res.radial_reflectance_per_mm2, 1e-300)
+    _, fwhm, _, fwhm_se = radial_profile_peak_and_fwhm(res.rho_mm, res.radial_reflectance_per_mm2, rel, draws=200)
+    return fwhm, fwhm_se
 
 
 def _point_rows(i: int) -> list[dict]:
