@@ -277,21 +277,24 @@ def _principal_pivoting(T, xu, mask, tol, x, v):
     return False
 
 @njit(cache=True, fastmath={"contract"})
-def _accumulate(P, Y, i0, n, acc):
-    # acc[:, :n] = P @ Y[:, i0:i0+n] in float64; one-dimensional views let LLVM vectorise the
-    # inner loop over pixels
+def _accumulate(P, Y, i0, n, acc, yrow):
+    # acc[:, :n] = P @ Y[:, i0:i0+n] in float64: each channel's row is converted once (yrow), then added
+    # into every component's row; one-dimensional views let LLVM vectorise the loops over pixels
     K, C = P.shape
-    for k in range(K):
-        a = acc[k, :n]
-        p = P[k, 0]
-        yy = Y[0, i0 : i0 + n]
+    for c in range(C):
+        src = Y[c, i0 : i0 + n]
+        yy = yrow[:n]
         for i in range(n):
-            a[i] = p * yy[i]
-        for c in range(1, C):
+            yy[i] = src[i]
+        for k in range(K):
+            a = acc[k, :n]
             p = P[k, c]
-            yy = Y[c, i0 : i0 + n]
-            for i in range(n):
-                a[i] += p * yy[i]
+            if c == 0:
+                for i in range(n):
+                    a[i] = p * yy[i]
+            else:
+                for i in range(n):
+                    a[i] += p * yy[i]
 
 @njit(cache=True)
 def _lawson_hanson_pixel(Y, col, Mt, G, tol_rel, normM, max_enum, x, passive, w, s, A, idx, y, b):
@@ -498,6 +501,7 @@ def _nnls_range(Y, P, Mt, G, T, use_table, sat, check_sat, nonneg, tol_rel, tabl
     C, N = Y.shape
     K = P.shape[0]
     acc = np.empty((K, _BLOCK))
+    yrow = np.empty(_BLOCK)
     flag = np.empty(_BLOCK, dtype=np.uint8)
     bad = np.empty(_BLOCK, dtype=np.bool_)
     table = nonneg and use_table
@@ -511,7 +515,7 @@ def _nnls_range(Y, P, Mt, G, T, use_table, sat, check_sat, nonneg, tol_rel, tabl
         i0 = bi * _BLOCK
         n = min(N, i0 + _BLOCK) - i0
         # unconstrained solution for the block, vectorised over pixels (float64 arithmetic)
-        _accumulate(P, Y, i0, n, acc)
+        _accumulate(P, Y, i0, n, acc, yrow)
         # flag 0: done; 1: a negative component (NNLS to solve); >= 2: NaN/inf/saturated
         for i in range(n):
             flag[i] = 0

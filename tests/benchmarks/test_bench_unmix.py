@@ -54,12 +54,23 @@ def _realistic_stack(C, K, ny, nx, rng):
     return M, rng.poisson(lam).astype(np.float32)
 
 
+#: Pause before each timed case (s).  After a BLAS call (the floor's matrix product) OpenBLAS keeps its
+#: worker threads spinning for 2^28 clock cycles, about 0.1 s (its THREAD_TIMEOUT; OpenMathLib/OpenBLAS
+#: issues 1614 and 5171); on a two-core machine they took the cores from whichever case came next, which
+#: then measured up to 1.7x slower than the same call after a pause.
+_SETTLE_S = 0.3
+#: Interleaved rounds of the NNLS timing (the shared machine's load varies from second to second).
+_ROUNDS = 15
+
+
 def _medians(fns, reps):
     # interleaved repeats (each case once per round) so that load from other processes falls on
-    # every case alike; medians over the rounds
+    # every case alike; medians over the rounds; a pause before each case so that none inherits the
+    # previous one's spinning threads
     times = {name: [] for name in fns}
     for _ in range(reps):
         for name, fn in fns.items():
+            time.sleep(_SETTLE_S)
             t = time.perf_counter()
             fn()
             times[name].append(time.perf_counter() - t)
@@ -100,8 +111,8 @@ def test_nnls_speed(C, K, scipy_target, floor_target):
         "easy": lambda: unmix(easy, M, method="nnls"),
         "hard": lambda: unmix(hard, M, method="nnls"),
         "ls": lambda: unmix(hard, M, method="ls"),
-    }, 7)
-    print(f"\n[unmix nnls] {C} channels x 2048^2 float32, {K} references (medians of 7 interleaved runs)")
+    }, _ROUNDS)
+    print(f"\n[unmix nnls] {C} channels x 2048^2 float32, {K} references (medians of {_ROUNDS} interleaved runs)")
     print(f"  {'case':<12}{'constrained':>12}{'time':>11}{'/ floor':>9}{'scipy loop':>12}{'speed-up':>10}")
     print(f"  {'LS floor':<12}{'':>12}{t['floor'] * 1e3:>8.1f} ms{1.0:>8.2f}x  (pinv @ Y, float32)")
     print(f"  {'unmix ls':<12}{'':>12}{t['ls'] * 1e3:>8.1f} ms{t['ls'] / t['floor']:>8.2f}x")
