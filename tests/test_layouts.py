@@ -168,3 +168,51 @@ def test_ome_zarr_read_write_and_unmix(tmp_path, capsys):
     assert not list((tmp_path / "res").glob(".*.part"))
     stderr_info, _ = inspect_ome_zarr(tmp_path / "res" / "a_stderr.ome.zarr")
     assert all(n.endswith("standard error") for n in stderr_info.channel_names)
+
+
+def test_ome_zarr_read_from_fsspec_urls(tmp_path):
+    """An OME-Zarr image read by fsspec URL (file:// and an in-memory store) equals the one read by path;
+    the unmixing of a URL-read stack equals that of the path-read one; a URL that is not an OME-Zarr image
+    is refused in one line."""
+    import fsspec
+
+    from probeplan.io.ngff import is_ome_zarr
+    from probeplan.io.stacks import write_stack
+    from probeplan.unmixing.pipeline import unmix
+
+    rng = np.random.default_rng(4)
+    data = rng.integers(0, 4000, size=(3, 40, 24)).astype(np.uint16)
+    p = tmp_path / "s.ome.zarr"
+    write_stack(p, data, channel_names=["a", "b", "c"], pixel_size_um=(2.0, 2.0), dtype=data.dtype)
+    local, linfo = read_stack(p)
+    memory = fsspec.filesystem("memory")
+    memory.put(str(p), "/probeplan-test/s.ome.zarr", recursive=True)
+    try:
+        for url in (p.absolute().as_uri(), "memory://probeplan-test/s.ome.zarr"):
+            assert is_ome_zarr(url)
+            back, info = read_stack(url)
+            np.testing.assert_array_equal(back, local)
+            assert info.channel_names == linfo.channel_names and info.pixel_size_um == (2.0, 2.0)
+            assert str(info.path) == url
+            with open_stack(url) as reader:  # by blocks of rows, as a worker reads
+                np.testing.assert_array_equal(reader.read_rows(10, 17), local[:, 10:17])
+        M = np.abs(rng.normal(size=(3, 2))) + 0.1
+        np.testing.assert_array_equal(unmix(p.absolute().as_uri(), M), unmix(p, M))
+        with pytest.raises(InputError, match="not an OME-Zarr image"):
+            read_stack("memory://probeplan-test/missing.ome.zarr")
+    finally:
+        memory.rm("/probeplan-test", recursive=True)
+
+
+def test_urls_on_the_command_line_and_in_a_study_table_are_refused_in_one_line(tmp_path, capsys):
+    from probeplan.cli.main import main
+    from probeplan.study.table import read_study_table
+
+    url = (tmp_path / "s.ome.zarr").absolute().as_uri()
+    assert main(["unmix", url, "--references", str(tmp_path / "r.csv"), "--out", str(tmp_path / "o.tif")]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "is a URL" in err and "read_stack" in err
+    table = tmp_path / "study.csv"
+    table.write_text(f"animal,group,time_h,file\nm1,a,24,{url}\n")
+    with pytest.raises(InputError, match=r"study.csv:2: file .* is a URL"):
+        read_study_table(table)

@@ -9,6 +9,11 @@ most tools today): axes ``c[, z], y, x`` (and ``t`` first when present), one sca
 pixel size as the scale of y and x in micrometres, the channel names as ``omero`` labels.
 The folder is written under a temporary name beside the target and renamed on success.
 
+An image can also be read from an fsspec URL (``s3://bucket/a.ome.zarr``, ``file:///data/a.ome.zarr``,
+``memory://a.ome.zarr``; zarr opens it through fsspec, and remote schemes need their fsspec
+back-end installed, e.g. s3fs), so that cluster workers read their input where it lies.  Writing
+stays local (a path the client and the workers share): object stores have no atomic rename.
+
 Specification: OME-NGFF, https://ngff.openmicroscopy.org/0.4/ (Moore et al. 2021, Nat. Methods
 18, 1496–1498, doi:10.1038/s41592-021-01326-w).
 """
@@ -29,7 +34,7 @@ import numpy as np
 from probeplan.errors import input_error
 from probeplan.io.stackinfo import RowReader
 
-__all__ = ["is_ome_zarr", "inspect_ome_zarr", "ZarrStackReader", "ZarrStackWriter", "ZarrRowSink", "write_ome_zarr", "UNIT_UM"]
+__all__ = ["is_url", "is_ome_zarr", "inspect_ome_zarr", "ZarrStackReader", "ZarrStackWriter", "ZarrRowSink", "write_ome_zarr", "UNIT_UM"]
 
 #: Spatial units of NGFF axes (UDUNITS-2 names) in µm.
 UNIT_UM = {"micrometer": 1.0, "nanometer": 1e-3, "millimeter": 1e3, "centimeter": 1e4, "meter": 1e6,
@@ -37,10 +42,33 @@ UNIT_UM = {"micrometer": 1.0, "nanometer": 1e-3, "millimeter": 1e3, "centimeter"
 _FIX = "give an OME-Zarr image folder (OME-NGFF 0.4 or 0.5) with 'multiscales' metadata"
 
 
+_GROUP_FILES = (".zgroup", ".zattrs", "zarr.json")
+
+
+def is_url(path) -> bool:
+    """True for an fsspec URL (``scheme://...``) rather than a local path.
+
+    Examples
+    --------
+    >>> is_url("s3://bucket/a.ome.zarr"), is_url("data/a.ome.zarr")
+    (True, False)
+    """
+    return isinstance(path, str) and "://" in path
+
+
 def is_ome_zarr(path) -> bool:
-    """True for a folder that looks like a Zarr group (``.zattrs``/``.zgroup`` or ``zarr.json``)."""
+    """True for a folder (or an fsspec URL of one) that looks like a Zarr group (``.zattrs``/``.zgroup`` or
+    ``zarr.json``)."""
+    if is_url(path):
+        import fsspec
+
+        try:
+            fs, root = fsspec.core.url_to_fs(path)
+            return any(fs.isfile(f"{root.rstrip('/')}/{n}") for n in _GROUP_FILES)
+        except (ImportError, ValueError, OSError):  # unknown scheme or back-end missing: not readable here
+            return False
     p = Path(path)
-    return p.is_dir() and any((p / n).is_file() for n in (".zgroup", ".zattrs", "zarr.json"))
+    return p.is_dir() and any((p / n).is_file() for n in _GROUP_FILES)
 
 
 def _open_group(path: Path, mode="r"):
@@ -56,7 +84,7 @@ def inspect_ome_zarr(path, channel_axis: int | None = None):
     """The :class:`~probeplan.io.stacks.StackInfo` of an OME-Zarr image and its full-resolution array."""
     from probeplan.io.stackinfo import StackInfo
 
-    path = Path(path)
+    path = path if is_url(path) else Path(path)
     where = str(path)
     group = _open_group(path)
     attrs = dict(group.attrs)

@@ -301,7 +301,7 @@ def open_stack(path: str | os.PathLike, *, channel_axis: int | None = None, allo
 
     Parameters
     ----------
-    path : path-like
+    path : path-like, or an fsspec URL of an OME-Zarr image (``s3://...``, ``file://...``)
     channel_axis : int, optional
         Needed only when the file does not name its axes and has more than 3 dimensions,
         or to read a plain 3-D file whose channels are last (``channel_axis=2``).
@@ -327,10 +327,14 @@ def open_stack(path: str | os.PathLike, *, channel_axis: int | None = None, allo
     ...     r.info.n_channels, r.info.channel_axis_source, r.read_rows(1, 3).shape
     (3, 'channel-first convention', (3, 2, 5))
     """
-    from probeplan.io.ngff import ZarrStackReader, inspect_ome_zarr, is_ome_zarr
+    from probeplan.io.ngff import ZarrStackReader, inspect_ome_zarr, is_ome_zarr, is_url
 
     if is_ome_zarr(path):
         return ZarrStackReader(*inspect_ome_zarr(path, channel_axis))
+    if is_url(path):
+        raise input_error(path, "is not an OME-Zarr image that can be opened at that URL",
+                          "give the URL of an OME-Zarr image folder (with its fsspec back-end installed, e.g. s3fs "
+                          "for s3://), or copy a TIFF to a local or shared path")
     return StackReader(_inspect(Path(path), channel_axis, allow_plane=allow_plane))
 
 

@@ -145,6 +145,10 @@ def read_study_table(path: str | os.PathLike) -> list[Acquisition]:
             raise input_error(loc, f"time_h {row['time_h']!r} is not a number", "give the time in hours, e.g. 24") from None
         if not (math.isfinite(t) and t >= 0):
             raise input_error(loc, f"time_h {row['time_h']!r} is not a finite number >= 0", "give the time in hours, >= 0")
+        if "://" in row["file"]:
+            raise input_error(loc, f"file {row['file']!r} is a URL; a study table names local or shared paths",
+                              "give a path every worker can read (copy or mount the images); URLs of OME-Zarr "
+                              "images are read from Python (probeplan.io.stacks.read_stack)")
         f = Path(row["file"])
         f = f if f.is_absolute() else base / f
         if not (f.is_file() or (f.is_dir() and _is_zarr(f))):

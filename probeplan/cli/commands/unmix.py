@@ -242,10 +242,15 @@ def run(args: argparse.Namespace) -> int:
     from probeplan.cli.common import print_json, print_table
     from probeplan.errors import input_error
     from probeplan.io.atomic import current_policy, output_batch, readable_path, signals_held
+    from probeplan.io.ngff import is_url
     from probeplan.io.stacks import open_stack
     from probeplan.unmixing.pipeline import DEFAULT_MEMORY_MB, unmix_file
     from probeplan.unmixing.references import read_references_csv
 
+    if is_url(args.stack):
+        raise input_error(args.stack, "is a URL; the command line reads local or shared paths",
+                          "give a path this machine (and every worker) can read; URLs of OME-Zarr images are read "
+                          "from Python (probeplan.io.stacks.read_stack, probeplan.unmix)")
     stack = Path(args.stack)
     out = Path(args.out)
     created = None
