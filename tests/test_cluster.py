@@ -252,3 +252,44 @@ def test_roi_file_with_a_label_image_on_the_cluster(tmp_path, cluster):
     for x, y in zip(rows_a, rows_b, strict=True):
         for key in ("n_pixels", "mean", "sd"):
             assert float(x[key]) == pytest.approx(float(y[key]), rel=1e-9), key
+
+
+def test_study_reads_ome_zarr_by_fsspec_url_locally_and_on_the_cluster(tmp_path, cluster):
+    # the study's images as OME-Zarr named by file:// URLs (read through fsspec, where they lie): the same
+    # measurements as the table naming them by path, locally and on the cluster; a rerun skips them all
+    import pandas as pd
+
+    from probeplan.io.stacks import read_stack, write_stack
+    from probeplan.study.runs import read_table_csv
+
+    ROIS, make_study = _study_helpers()
+    csv, refs = make_study(tmp_path, animals=("ctrl", "treated"), per_channel=())
+    lines = csv.read_text().splitlines()
+    by_path, by_url = [lines[0]], [lines[0]]
+    for line in lines[1:]:
+        animal, group, t, f, ch = line.split(",")
+        data, info = read_stack(tmp_path / f)
+        z = tmp_path / f.replace(".tif", ".ome.zarr")
+        write_stack(z, data, channel_names=info.channel_names, dtype=data.dtype)
+        by_path.append(f"{animal},{group},{t},{z.name},{ch}")
+        by_url.append(f"{animal},{group},{t},{z.absolute().as_uri()},{ch}")
+    (tmp_path / "paths.csv").write_text("\n".join(by_path) + "\n")
+    (tmp_path / "urls.csv").write_text("\n".join(by_url) + "\n")
+    rois = sum((["--roi", r] for r in ROIS), [])
+    common = ["--references", str(refs), *rois, "--json"]
+    assert main(["study", str(tmp_path / "paths.csv"), "--out", str(tmp_path / "p"), *common]) == 0
+    assert main(["study", str(tmp_path / "urls.csv"), "--out", str(tmp_path / "u"), *common]) == 0
+    assert main(["study", str(tmp_path / "urls.csv"), "--out", str(tmp_path / "c"), *common,
+                 "--scheduler", cluster.scheduler_address]) == 0
+    expected = read_table_csv(tmp_path / "p" / "measurements.csv")
+    for out in ("u", "c"):
+        pd.testing.assert_frame_equal(read_table_csv(tmp_path / out / "measurements.csv"), expected)
+    before = {p.name: p.stat().st_mtime_ns for p in (tmp_path / "c" / "acquisitions").iterdir()}
+    assert main(["study", str(tmp_path / "urls.csv"), "--out", str(tmp_path / "c"), *common]) == 0
+    assert {p.name: p.stat().st_mtime_ns for p in (tmp_path / "c" / "acquisitions").iterdir()} == before
+    # a URL that holds no OME-Zarr image is refused on its line
+    (tmp_path / "bad.csv").write_text(by_url[0] + "\n" + by_url[1].replace(".ome.zarr", ".missing.zarr") + "\n")
+    with pytest.raises(InputError, match=r"bad.csv:2: file .* is not an OME-Zarr image"):
+        from probeplan.study.table import read_study_table
+
+        read_study_table(tmp_path / "bad.csv")

@@ -204,15 +204,10 @@ def test_ome_zarr_read_from_fsspec_urls(tmp_path):
         memory.rm("/probeplan-test", recursive=True)
 
 
-def test_urls_on_the_command_line_and_in_a_study_table_are_refused_in_one_line(tmp_path, capsys):
+def test_a_url_given_to_the_unmix_command_is_refused_in_one_line(tmp_path, capsys):
     from probeplan.cli.main import main
-    from probeplan.study.table import read_study_table
 
     url = (tmp_path / "s.ome.zarr").absolute().as_uri()
     assert main(["unmix", url, "--references", str(tmp_path / "r.csv"), "--out", str(tmp_path / "o.tif")]) == 2
     err = capsys.readouterr().err.strip()
-    assert len(err.splitlines()) == 1 and "is a URL" in err and "read_stack" in err
-    table = tmp_path / "study.csv"
-    table.write_text(f"animal,group,time_h,file\nm1,a,24,{url}\n")
-    with pytest.raises(InputError, match=r"study.csv:2: file .* is a URL"):
-        read_study_table(table)
+    assert len(err.splitlines()) == 1 and "is a URL" in err and "study table" in err

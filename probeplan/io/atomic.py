@@ -655,10 +655,22 @@ def update_json_file(path: str | Path, update: Callable[[Any], Any], *, read: Ca
 
 
 def file_sha256(path) -> str:
-    """Checksum of a file, or of every file in a folder (an OME-Zarr image) with its relative name."""
+    """Checksum of a file, or of every file in a folder (an OME-Zarr image) with its relative name; an
+    fsspec URL of a folder is read through fsspec the same way."""
     import hashlib
 
     h = hashlib.sha256()
+    if isinstance(path, str) and "://" in path:
+        import fsspec
+
+        fs, root = fsspec.core.url_to_fs(path)
+        root = root.rstrip("/")
+        for f in sorted(fs.find(root)):
+            h.update(f[len(root) + 1:].encode())
+            with fs.open(f, "rb") as fh:
+                for block in iter(lambda: fh.read(1 << 22), b""):
+                    h.update(block)
+        return h.hexdigest()
     p = Path(path)
     files = sorted(f for f in p.rglob("*") if f.is_file()) if p.is_dir() else [p]
     for f in files:

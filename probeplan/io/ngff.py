@@ -34,7 +34,7 @@ import numpy as np
 from probeplan.errors import input_error
 from probeplan.io.stackinfo import RowReader
 
-__all__ = ["is_url", "is_ome_zarr", "inspect_ome_zarr", "ZarrStackReader", "ZarrStackWriter", "ZarrRowSink", "write_ome_zarr", "UNIT_UM"]
+__all__ = ["is_url", "location_name", "is_ome_zarr", "inspect_ome_zarr", "ZarrStackReader", "ZarrStackWriter", "ZarrRowSink", "write_ome_zarr", "UNIT_UM"]
 
 #: Spatial units of NGFF axes (UDUNITS-2 names) in µm.
 UNIT_UM = {"micrometer": 1.0, "nanometer": 1e-3, "millimeter": 1e3, "centimeter": 1e4, "meter": 1e6,
@@ -54,6 +54,19 @@ def is_url(path) -> bool:
     (True, False)
     """
     return isinstance(path, str) and "://" in path
+
+
+def location_name(path) -> str:
+    """The last part of a path or URL, for messages.
+
+    Examples
+    --------
+    >>> location_name("s3://bucket/m1/a.ome.zarr/"), location_name("data/b.tif")
+    ('a.ome.zarr', 'b.tif')
+    """
+    if is_url(path):
+        return path.rstrip("/").rsplit("/", 1)[-1]
+    return Path(path).name
 
 
 def is_ome_zarr(path) -> bool:

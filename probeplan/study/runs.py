@@ -38,6 +38,7 @@ import pandas as pd
 
 from probeplan.errors import input_error
 from probeplan.io.atomic import check_outputs, current_policy, file_sha256, make_output_folder, output_batch, readable_path
+from probeplan.io.ngff import is_url, location_name
 from probeplan.study.table import Acquisition, read_study_table
 from probeplan.unmixing.references import abundance_unit
 
@@ -169,10 +170,10 @@ def load_acquisition(acq: Acquisition, *, channel_axis: int | None = None):
     for f, ch in zip(acq.files, acq.channels, strict=True):
         d, info = _read_one(f, None, True)
         if d.shape[0] != 1:
-            raise input_error(f"{acq.where} ({f.name})", f"channel {ch!r} is a file of {d.shape[0]} channels",
+            raise input_error(f"{acq.where} ({location_name(f)})", f"channel {ch!r} is a file of {d.shape[0]} channels",
                               "list a multi-channel file with an empty channel cell, or give one file per channel")
         if shape is not None and d.shape != shape:
-            raise input_error(f"{acq.where} ({f.name})", f"shape {d.shape[1:]} differs from {shape[1:]} of the other "
+            raise input_error(f"{acq.where} ({location_name(f)})", f"shape {d.shape[1:]} differs from {shape[1:]} of the other "
                               "channels", "give every channel of one acquisition the same image size")
         shape = d.shape
         planes.append(d[0])
@@ -281,11 +282,11 @@ class _AcquisitionRows:
                     self.readers.append(r)
                     info = r.info
                     if info.n_channels != 1:
-                        raise input_error(f"{acq.where} ({f.name})", f"channel {ch!r} is a file of {info.n_channels} "
+                        raise input_error(f"{acq.where} ({location_name(f)})", f"channel {ch!r} is a file of {info.n_channels} "
                                           "channels", "list a multi-channel file with an empty channel cell, or give "
                                           "one file per channel")
                     if shape is not None and info.spatial_shape != shape:
-                        raise input_error(f"{acq.where} ({f.name})", f"shape {info.spatial_shape} differs from {shape} "
+                        raise input_error(f"{acq.where} ({location_name(f)})", f"shape {info.spatial_shape} differs from {shape} "
                                           "of the other channels", "give every channel of one acquisition the same "
                                           "image size")
                     shape = info.spatial_shape
@@ -729,7 +730,7 @@ def _check_acquisition(acq: Acquisition, refs, settings: StudySettings):
         with open_stack(f, channel_axis=settings.channel_axis if ch is None else None, allow_plane=ch is not None) as r:
             info = r.info
         if ch is not None and info.n_channels != 1:
-            raise input_error(f"{acq.where} ({f.name})", f"channel {ch!r} is a file of {info.n_channels} channels",
+            raise input_error(f"{acq.where} ({location_name(f)})", f"channel {ch!r} is a file of {info.n_channels} channels",
                               "list a multi-channel file with an empty channel cell, or give one file per channel")
         shapes.append(info.spatial_shape)
         names = info.channel_names if ch is None else None
@@ -802,7 +803,8 @@ def _acquisition_task(job) -> pd.DataFrame:
 def _absolute_acquisition(acq: Acquisition) -> Acquisition:
     import dataclasses
 
-    return dataclasses.replace(acq, files=tuple(Path(f).absolute() for f in acq.files))
+    # paths made absolute for the workers; fsspec URLs are sent as they are
+    return dataclasses.replace(acq, files=tuple(f if is_url(f) else Path(f).absolute() for f in acq.files))
 
 
 def _absolute_settings(settings: StudySettings) -> StudySettings:
@@ -895,7 +897,7 @@ def run_study(study_csv: str | os.PathLike, references, *, out_dir: str | os.Pat
 
         if out.exists() and not out.is_dir():
             raise input_error("out", f"{str(out)!r} is a file", "give a folder for the study's outputs")
-        inputs = [Path(study_csv), *(f for a in acqs for f in a.files)]
+        inputs = [Path(study_csv), *(f for a in acqs for f in a.files if not is_url(f))]
         inputs += [p for p in (settings.dark_path, settings.flat_path, settings.labels_path, settings.roi_file)
                    if p is not None]
         if isinstance(references, (str, os.PathLike)):

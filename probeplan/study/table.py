@@ -40,7 +40,7 @@ class Acquisition:
     animal, group : str
     time_h : float
         Hours after injection (or the study's own time origin).
-    files : tuple of Path
+    files : tuple of Path (or str: the fsspec URL of an OME-Zarr image)
     channels : tuple of str or None
         The channel name of each file (one file per channel), or None for one multi-channel file.
     lines : tuple of int
@@ -64,10 +64,16 @@ class Acquisition:
 _FIX_COLUMNS = "give the columns animal, group, time_h, file and optionally channel"
 
 
-def _is_zarr(path: Path) -> bool:
+def _is_zarr(path) -> bool:
     from probeplan.io.ngff import is_ome_zarr
 
     return is_ome_zarr(path)
+
+
+def location_name(path) -> str:
+    from probeplan.io.ngff import location_name as name
+
+    return name(path)
 
 
 def _safe(text: str) -> str:
@@ -146,9 +152,14 @@ def read_study_table(path: str | os.PathLike) -> list[Acquisition]:
         if not (math.isfinite(t) and t >= 0):
             raise input_error(loc, f"time_h {row['time_h']!r} is not a finite number >= 0", "give the time in hours, >= 0")
         if "://" in row["file"]:
-            raise input_error(loc, f"file {row['file']!r} is a URL; a study table names local or shared paths",
-                              "give a path every worker can read (copy or mount the images); URLs of OME-Zarr "
-                              "images are read from Python (probeplan.io.stacks.read_stack)")
+            # an fsspec URL of an OME-Zarr image (s3://, gs://, file://...): read where it lies, by every worker
+            f = row["file"]
+            if not _is_zarr(f):
+                raise input_error(loc, f"file {f!r} is not an OME-Zarr image that can be opened at that URL",
+                                  "give the URL of an OME-Zarr image folder (with its fsspec back-end installed, e.g. "
+                                  "s3fs for s3://), or a local or shared path")
+            rows.append((lineno, row["animal"], row["group"], t, f, row.get("channel", "") or None))
+            continue
         f = Path(row["file"])
         f = f if f.is_absolute() else base / f
         if not (f.is_file() or (f.is_dir() and _is_zarr(f))):
@@ -190,6 +201,7 @@ def read_study_table(path: str | os.PathLike) -> list[Acquisition]:
         out.append(Acquisition(
             animal=animal, group=items[0][2], time_h=t, files=tuple(r[4] for r in items),
             channels=None if chans[0] is None else tuple(chans), lines=lines_, key=key,
-            where=f"{where}:{','.join(str(n) for n in lines_)}" + (f" ({items[0][4].name})" if len(items) == 1 else ""),
+            where=f"{where}:{','.join(str(n) for n in lines_)}" + (f" ({location_name(items[0][4])})"
+                                                                   if len(items) == 1 else ""),
         ))
     return out

@@ -248,9 +248,9 @@ def run(args: argparse.Namespace) -> int:
     from probeplan.unmixing.references import read_references_csv
 
     if is_url(args.stack):
-        raise input_error(args.stack, "is a URL; the command line reads local or shared paths",
-                          "give a path this machine (and every worker) can read; URLs of OME-Zarr images are read "
-                          "from Python (probeplan.io.stacks.read_stack, probeplan.unmix)")
+        raise input_error(args.stack, "is a URL; 'unmix' reads local or shared paths",
+                          "give a path this machine (and every worker) can read, or name the OME-Zarr image's URL in a "
+                          "study table ('probeplan study') or read it from Python (probeplan.unmix)")
     stack = Path(args.stack)
     out = Path(args.out)
     created = None
