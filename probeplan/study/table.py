@@ -70,11 +70,6 @@ def _is_zarr(path) -> bool:
     return is_ome_zarr(path)
 
 
-def location_name(path) -> str:
-    from probeplan.io.ngff import location_name as name
-
-    return name(path)
-
 
 def _safe(text: str) -> str:
     return re.sub(r"[^A-Za-z0-9._-]+", "_", text).strip("._") or "x"
@@ -176,6 +171,8 @@ def read_study_table(path: str | os.PathLike) -> list[Acquisition]:
     acquisitions: dict[tuple[str, float], list] = {}
     for r in rows:
         acquisitions.setdefault((r[1], r[3]), []).append(r)
+    from probeplan.io.ngff import location_name
+
     out = []
     keys: set[str] = set()
     for (animal, t), items in acquisitions.items():
