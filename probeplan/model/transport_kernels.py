@@ -2,8 +2,8 @@
 
 The disc escape fraction of :func:`probeplan.model.fluorescence.disc_escape_fraction` with
 ``model="mc_table"`` is evaluated for every (slice depth, wavelength) pair of a depth curve:
-hundreds of thousands of points, each needing three bilinear table look-ups and six
-exponentials.  Written with numpy it makes some forty passes over arrays of that size; here
+hundreds of thousands of points, each needing three table look-ups (linear in depth, the tables first
+interpolated once to each wavelength's absorption ratio) and six exponentials.  Written with numpy it makes some forty passes over arrays of that size; here
 three compiled passes (numba, cached on disk) compute each point once, with numpy's vectorised
 exponentials between them, the same formulas in the same order, so the two agree to rounding
 (``tests/test_fluorescence_fast.py`` checks 1e-9 relative against the numpy path and against the
