@@ -112,16 +112,23 @@ def test_warns_when_the_emission_spectrum_is_typical(nir2):
     assert float(est.depth_mm) == pytest.approx(DEFAULT_DEPTH_GRID_MM[55], abs=0.05)
 
 
-def test_command_per_roi_and_map(tmp_path, capsys, nir2):
-    plan, curves, names = nir2
-    (tmp_path / "plan.toml").write_text(plan.text)
-    rng = np.random.default_rng(7)
+def _target_at_4mm(tmp_path, curves, names, *, seed):
+    """An OME-TIFF of Poisson background (200 counts) with a 20 x 20 target at 4 mm in rows and columns
+    10:30, at a usable signal in the brightest channel (see _image); its path."""
+    rng = np.random.default_rng(seed)
     stack = rng.poisson(200.0, size=(3, 40, 60)).astype(np.float32)
     i = int(np.argmin(np.abs(DEFAULT_DEPTH_GRID_MM - 4.0)))
-    level = 5000.0 / float(np.max(curves[i]))  # a usable signal in the brightest channel (see _image)
+    level = 5000.0 / float(np.max(curves[i]))
     stack[:, 10:30, 10:30] += rng.poisson(curves[i][:, None, None] * level, size=(3, 20, 20))
     f = tmp_path / "stack.ome.tif"
     tifffile.imwrite(f, stack, ome=True, photometric="minisblack", metadata={"axes": "CYX", "Channel": {"Name": names}})
+    return f
+
+
+def test_command_per_roi_and_map(tmp_path, capsys, nir2):
+    plan, curves, names = nir2
+    (tmp_path / "plan.toml").write_text(plan.text)
+    f = _target_at_4mm(tmp_path, curves, names, seed=7)
     out = tmp_path / "depth"
     assert main(["depth-from-spectrum", str(f), "--plan", str(tmp_path / "plan.toml"), "--probe", "probe N (1350)",
                  "--roi", "target:10,10,30,30", "--roi", "background:40,0,60,40", "--out", str(out), "--json"]) == 0
@@ -149,12 +156,7 @@ def test_command_takes_drawn_shapes_and_roi_files(tmp_path, capsys, nir2):
 
     plan, curves, names = nir2
     (tmp_path / "plan.toml").write_text(plan.text)
-    rng = np.random.default_rng(11)
-    stack = rng.poisson(200.0, size=(3, 40, 60)).astype(np.float32)
-    i = int(np.argmin(np.abs(DEFAULT_DEPTH_GRID_MM - 4.0)))
-    stack[:, 10:30, 10:30] += rng.poisson(curves[i][:, None, None] * 5000.0 / float(np.max(curves[i])), size=(3, 20, 20))
-    f = tmp_path / "stack.ome.tif"
-    tifffile.imwrite(f, stack, ome=True, photometric="minisblack", metadata={"axes": "CYX", "Channel": {"Name": names}})
+    f = _target_at_4mm(tmp_path, curves, names, seed=11)
     rois = tmp_path / "rois.json"
     write_roi_file(rois, [RoiShape("wedge", "polygon", (12.0, 28.0, 12.0), (12.0, 12.0, 28.0)),
                           RoiShape("background", "rectangle", (40.0, 60.0), (0.0, 40.0))])

@@ -87,13 +87,7 @@ def test_a_study_measures_ellipse_and_polygon_rois_from_the_file(tmp_path):
     true abundance averaged over the scikit-image mask."""
     from probeplan.study.runs import run_study
 
-    refs = np.array([[0.6, 0.1], [0.3, 0.3], [0.1, 0.6]])
-    channels = ["ch650", "ch700", "ch750"]
-    (tmp_path / "refs.csv").write_text("channel,dotA,dotB\n" + "".join(
-        f"{c},{refs[i, 0]},{refs[i, 1]}\n" for i, c in enumerate(channels)))
-    maps = _maps()
-    write_stack(tmp_path / "m1.tif", np.einsum("ck,kyx->cyx", refs / refs.sum(axis=0), maps).astype(np.float32),
-                channel_names=channels)
+    maps = _study_folder(tmp_path)
     (tmp_path / "study.csv").write_text("animal,group,time_h,file\nm1,a,1,m1.tif\n")
     write_roi_file(tmp_path / "rois.json", REGIONS, image_size=(30, 24), background="background")
     out = tmp_path / "out"
@@ -181,6 +175,7 @@ def test_another_image_size_and_a_missing_label_image_are_refused(tmp_path):
 
 
 def _study_folder(tmp_path):
+    """References and one noise-free float stack of the true maps (m1.tif); the maps."""
     refs = np.array([[0.6, 0.1], [0.3, 0.3], [0.1, 0.6]])
     channels = ["ch650", "ch700", "ch750"]
     (tmp_path / "refs.csv").write_text("channel,dotA,dotB\n" + "".join(

@@ -20,8 +20,9 @@ import pytest
 
 pytestmark = pytest.mark.benchmark
 
-_KIB = 1024
 _MIB = 1024 * 1024
+#: Rows and columns of the big study's images.
+_SIZE = 2048
 CHANNELS = ["c1", "c2", "c3", "c4", "c5", "c6"]
 
 
@@ -30,18 +31,6 @@ def _only_when_asked(request):
     markexpr = request.config.getoption("-m") or ""
     if "benchmark" not in markexpr:
         pytest.skip("benchmark: run with -m benchmark")
-
-
-def _child_peak_rss_mib(args):
-    # a fresh interpreter that only waits for the command: RUSAGE_CHILDREN of that interpreter
-    code = (
-        "import resource, subprocess, sys, time\n"
-        "t = time.perf_counter()\n"
-        f"rc = subprocess.run({args!r}).returncode\n"
-        "print(rc, time.perf_counter() - t, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss)\n"
-    )
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split()
-    return int(out[-3]), float(out[-2]), int(out[-1]) * _KIB / _MIB
 
 
 def _study(folder, n, rng):
@@ -68,20 +57,25 @@ def _study(folder, n, rng):
     return (folder / "m1.ome.tif").stat().st_size / _MIB
 
 
-def test_study_memory_is_bounded_by_the_blocks(tmp_path):
+def _big_and_tiny(tmp_path):
+    """The _SIZE² study (big/) and a 16² one to warm up on (tiny/), seeded alike; the big stacks' MiB each."""
     rng = np.random.default_rng(2)
-    n = 2048
     big = tmp_path / "big"
     big.mkdir()
-    stack_mib = _study(big, n, rng)
+    stack_mib = _study(big, _SIZE, rng)
     tiny = tmp_path / "tiny"
     tiny.mkdir()
     _study(tiny, 16, rng)
+    return big, tiny, stack_mib
+
+
+def test_study_memory_is_bounded_by_the_blocks(tmp_path, child_peak_rss_mib):
+    big, tiny, stack_mib = _big_and_tiny(tmp_path)
     rois = ["--roi", "tumour:100,100,900,900", "--roi", "background:1000,0,2000,2000",
             "--roi", "ring:ellipse:1000,1000,600,300", "--auto-roi", "found=dotA"]
 
     def run(folder, out, *extra):
-        return _child_peak_rss_mib([sys.executable, "-m", "probeplan", "study", str(folder / "study.csv"),
+        return child_peak_rss_mib([sys.executable, "-m", "probeplan", "study", str(folder / "study.csv"),
                                     "--references", str(folder / "refs.csv"), "--out", str(tmp_path / out),
                                     "--dark", str(folder / "dark.ome.tif"), "--flat", str(folder / "flat.ome.tif"),
                                     *(rois if folder is big else ["--roi", "t:0,0,4,4", "--roi", "background:8,8,16,16",
@@ -98,9 +92,9 @@ def test_study_memory_is_bounded_by_the_blocks(tmp_path):
     for rc, _, _ in results.values():
         assert rc == 0
     base = next(iter(results.values()))[2]
-    print(f"\n[probeplan study] 2 acquisitions x 6 channels x {n}^2 uint16: one stack {stack_mib:.0f} MiB, "
+    print(f"\n[probeplan study] 2 acquisitions x 6 channels x {_SIZE}^2 uint16: one stack {stack_mib:.0f} MiB, "
           f"study {2 * stack_mib:.0f} MiB of pixels (maps written: 5 float32 planes per acquisition, "
-          f"{2 * 5 * n * n * 4 / _MIB:.0f} MiB)")
+          f"{2 * 5 * _SIZE * _SIZE * 4 / _MIB:.0f} MiB)")
     for name, (_, seconds, rss) in results.items():
         print(f"  {name:<52} peak {rss:7.1f} MiB, above baseline {rss - base:7.1f} MiB "
               f"({(rss - base) / stack_mib:4.2f} x one stack), {seconds:5.1f} s")
@@ -150,20 +144,13 @@ def test_study_memory_on_a_cluster(tmp_path):
     imports and compiled kernels on both sides.
     """
     pytest.importorskip("distributed")
-    rng = np.random.default_rng(2)
-    n = 2048
-    big = tmp_path / "big"
-    big.mkdir()
-    stack_mib = _study(big, n, rng)
-    tiny = tmp_path / "tiny"
-    tiny.mkdir()
-    _study(tiny, 16, rng)
+    big, tiny, stack_mib = _big_and_tiny(tmp_path)
     results = {}
     for memory_mb in (8.0,):  # one block per stack is shown by the local test
         out = subprocess.run([sys.executable, "-c", _CLUSTER_RUN, str(big), str(tmp_path / f"o{memory_mb:g}"),
                               str(memory_mb), str(tiny)], capture_output=True, text=True, check=True).stdout.split()
         results[memory_mb] = [float(v) for v in out[-5:]]
-    print(f"\n[probeplan study on a LocalCluster, one worker process] 2 acquisitions x 6 x {n}^2 uint16, "
+    print(f"\n[probeplan study on a LocalCluster, one worker process] 2 acquisitions x 6 x {_SIZE}^2 uint16, "
           f"one stack {stack_mib:.0f} MiB, study {2 * stack_mib:.0f} MiB")
     for memory_mb, (c0, c1, w0, w1, seconds) in results.items():
         print(f"  memory_limit_mb {memory_mb:6g}: client peak {c1:6.1f} MiB (+{c1 - c0:5.1f} during the run), "

@@ -23,7 +23,6 @@ from probeplan.unmixing.pipeline import unmix
 
 pytestmark = pytest.mark.benchmark
 
-_KIB = 1024
 _MIB = 1024 * 1024
 
 
@@ -130,20 +129,7 @@ def test_nnls_speed(C, K, scipy_target, floor_target):
     assert ratios["hard"][1] >= scipy_target
 
 
-def _child_peak_rss_mib(args):
-    # run in a fresh interpreter that only waits for the command: RUSAGE_CHILDREN of that interpreter
-    code = (
-        "import resource, subprocess, sys, time\n"
-        "t = time.perf_counter()\n"
-        f"rc = subprocess.run({args!r}).returncode\n"
-        "print(rc, time.perf_counter() - t, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss)\n"
-    )
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split()
-    rc, seconds, maxrss_kib = int(out[-3]), float(out[-2]), int(out[-1])
-    return rc, seconds, maxrss_kib * _KIB / _MIB
-
-
-def test_cli_memory_and_bounded_chunks(tmp_path):
+def test_cli_memory_and_bounded_chunks(tmp_path, child_peak_rss_mib):
     import tifffile
 
     rng = np.random.default_rng(1)
@@ -163,14 +149,14 @@ def test_cli_memory_and_bounded_chunks(tmp_path):
     small = tmp_path / "small.tif"
     tifffile.imwrite(small, np.ones((C, 8, 8), np.uint16), photometric="minisblack")
     (tmp_path / "o0").mkdir()
-    rc, t0, rss0 = _child_peak_rss_mib([*base[:4], str(small), *base[5:], "--out", str(tmp_path / "o0" / "s.tif")])
+    rc, t0, rss0 = child_peak_rss_mib([*base[:4], str(small), *base[5:], "--out", str(tmp_path / "o0" / "s.tif")])
     assert rc == 0
     (tmp_path / "o1").mkdir()
-    rc, t1, rss1 = _child_peak_rss_mib([*base, "--out", str(tmp_path / "o1" / "a.tif")])
+    rc, t1, rss1 = child_peak_rss_mib([*base, "--out", str(tmp_path / "o1" / "a.tif")])
     assert rc == 0
     bound_mib = 32.0
     (tmp_path / "o2").mkdir()
-    rc, t2, rss2 = _child_peak_rss_mib([*base, "--out", str(tmp_path / "o2" / "a.tif"), "--memory-mb", str(bound_mib)])
+    rc, t2, rss2 = child_peak_rss_mib([*base, "--out", str(tmp_path / "o2" / "a.tif"), "--memory-mb", str(bound_mib)])
     assert rc == 0
     print(f"\n[probeplan unmix] 8 x 4096^2 uint16 ({size_mib:.0f} MiB file)")
     print(f"  baseline (8x8 stack: interpreter, imports): peak {rss0:7.1f} MiB, {t0:.1f} s")
