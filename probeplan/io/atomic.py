@@ -660,23 +660,27 @@ def file_sha256(path) -> str:
     import hashlib
 
     h = hashlib.sha256()
-    if isinstance(path, str) and "://" in path:
+
+    def add(name: str | None, fh) -> None:
+        if name is not None:  # a folder's files: each under its relative name
+            h.update(name.encode())
+        for block in iter(lambda: fh.read(1 << 22), b""):
+            h.update(block)
+
+    from probeplan.io.ngff import is_url
+
+    if is_url(path):
         import fsspec
 
         fs, root = fsspec.core.url_to_fs(path)
         root = root.rstrip("/")
         for f in sorted(fs.find(root)):
-            h.update(f[len(root) + 1:].encode())
             with fs.open(f, "rb") as fh:
-                for block in iter(lambda: fh.read(1 << 22), b""):
-                    h.update(block)
+                add(f[len(root) + 1:], fh)
         return h.hexdigest()
     p = Path(path)
     files = sorted(f for f in p.rglob("*") if f.is_file()) if p.is_dir() else [p]
     for f in files:
-        if p.is_dir():
-            h.update(str(f.relative_to(p)).encode())
         with open(f, "rb") as fh:
-            for block in iter(lambda: fh.read(1 << 22), b""):
-                h.update(block)
+            add(str(f.relative_to(p)) if p.is_dir() else None, fh)
     return h.hexdigest()
