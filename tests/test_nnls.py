@@ -212,3 +212,30 @@ def test_fallback_lawson_hanson_pixel_matches_scipy():
                              x, np.zeros(K, np.bool_), np.empty(K), np.empty(K), np.empty((K, K)),
                              np.empty(K, np.int64), np.empty(7), np.empty(K))
         _assert_close(x[:, None], _scipy(M, Y[:, col : col + 1]))
+
+
+def test_one_and_two_dropped_components_match_scipy():
+    # the block-wide first tests of the compiled kernel: pixels whose unconstrained solution has one
+    # negative component (settled by the rank-one update, or not), and pixels where a pair is dropped
+    # (its gradient test decides on the pixels of random signs).
+    # Which case each pixel is in is decided here with numpy.linalg.lstsq on the reduced columns;
+    # every case must be present, and every pixel must equal scipy.optimize.nnls
+    rng = np.random.default_rng(21)
+    C, K, n = 8, 4, 4000
+    M = _gaussian_references(C, K, rng)
+    X = rng.gamma(2.0, 100.0, (K, n))
+    X[3, : n // 3] = 0.0  # one probe absent
+    X[2:, n // 3 : 3 * n // 4] = 0.0  # two probes absent
+    X[::2, 3 * n // 4 :] = rng.uniform(-100.0, 30.0, (2, n - 3 * n // 4))  # over-subtracted background
+    Y = M @ X + rng.normal(0, 3.0, (C, n))
+    xu = np.linalg.lstsq(M, Y, rcond=None)[0]
+    nneg = (xu < 0).sum(axis=0)
+    one = np.flatnonzero(nneg == 1)
+    rank_one_ok = np.array([
+        (np.linalg.lstsq(M[:, xu[:, i] >= 0], Y[:, i], rcond=None)[0] >= 0).all() for i in one
+    ])
+    assert rank_one_ok.sum() > 200 and (~rank_one_ok).sum() > 50
+    assert (nneg == 2).sum() > 200
+    x, status = nnls_pixels(M, Y)
+    _assert_close(x, _scipy(M, Y))
+    assert (status[nneg > 0] == STATUS_CONSTRAINED).all() and (status[nneg == 0] == STATUS_INTERIOR).all()

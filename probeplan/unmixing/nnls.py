@@ -14,7 +14,14 @@ Two engines give the same answer (both in float64 arithmetic whatever the input 
     per matrix: for every passive set ``P`` (all ``2^K`` of them) a ``K x K`` matrix that
     turns ``x`` into the least-squares solution on ``P`` and the gradient off ``P``, so that
     testing ``P`` against the Karush–Kuhn–Tucker conditions costs one small product.
-    Starting from ``P = {k: x_k > 0}``, pending pixels are sorted by passive set and tested
+    Two cheap tests come first, on the whole block at once with no data moved: where exactly
+    one component ``j`` is negative, the solution without ``j`` is the rank-one update
+    ``x − x_j H_{:j} / H_jj`` (``H = G⁻¹``), whose gradient at ``j`` is negative by construction;
+    where a pair ``Z`` of components is negative (in ``x`` or in that update), the solution
+    off ``Z`` is ``x − H_{:Z} α`` with ``α = (H_ZZ)⁻¹ x_Z``, its gradient on ``Z`` (the Schur
+    complement form of the restricted normal equations).  Pixels these settle are done; on
+    images where half the probes are absent from half the field they are most of them.
+    Starting from ``P = {k: x_k > 0}``, the other pending pixels are sorted by passive set and tested
     together (vectorised over pixels); every variable that breaks a condition is exchanged
     at once (block principal pivoting, Júdice & Pires 1994; Kim & Park 2011).  Pixels not
     settled after a few rounds finish one by one with the method's backup rule, which
@@ -69,6 +76,7 @@ ENGINES = ("auto", "numba", "numpy")
 
 _BATCH = 4096  # pending constrained pixels solved together on the table
 _ROUNDS = 4  # vectorised exchange rounds before the remaining pixels finish one by one
+_DROP_PAIRS = 4  # most pairs of components tried per block by _drop_two
 _BLOCK = 256  # pixels per block in the compiled kernel (its float64 work arrays stay in L1 for K <= 8)
 
 
@@ -278,23 +286,36 @@ def _principal_pivoting(T, xu, mask, tol, x, v):
 
 @njit(cache=True, fastmath={"contract"})
 def _accumulate(P, Y, i0, n, acc, yrow):
-    # acc[:, :n] = P @ Y[:, i0:i0+n] in float64: each channel's row is converted once (yrow), then added
-    # into every component's row; one-dimensional views let LLVM vectorise the loops over pixels
+    # acc[:, :n] = P @ Y[:, i0:i0+n] in float64.  The channels go four at a time: their rows are
+    # converted once into yrow (4, _BLOCK), then each component's row takes all four in one pass, so
+    # that acc is loaded and stored once per four multiply-adds; one-dimensional views let LLVM
+    # vectorise the loops over pixels.
     K, C = P.shape
-    for c in range(C):
-        src = Y[c, i0 : i0 + n]
-        yy = yrow[:n]
-        for i in range(n):
-            yy[i] = src[i]
+    for c0 in range(0, C, 4):
+        m = min(4, C - c0)
+        for r in range(m):
+            src = Y[c0 + r, i0 : i0 + n]
+            yy = yrow[r, :n]
+            for i in range(n):
+                yy[i] = src[i]
+        for r in range(m, 4):
+            yrow[r, :n] = 0.0
+        y0 = yrow[0, :n]
+        y1 = yrow[1, :n]
+        y2 = yrow[2, :n]
+        y3 = yrow[3, :n]
         for k in range(K):
             a = acc[k, :n]
-            p = P[k, c]
-            if c == 0:
+            p0 = P[k, c0]
+            p1 = P[k, c0 + 1] if m > 1 else 0.0
+            p2 = P[k, c0 + 2] if m > 2 else 0.0
+            p3 = P[k, c0 + 3] if m > 3 else 0.0
+            if c0 == 0:
                 for i in range(n):
-                    a[i] = p * yy[i]
+                    a[i] = p0 * y0[i] + p1 * y1[i] + p2 * y2[i] + p3 * y3[i]
             else:
                 for i in range(n):
-                    a[i] += p * yy[i]
+                    a[i] += p0 * y0[i] + p1 * y1[i] + p2 * y2[i] + p3 * y3[i]
 
 @njit(cache=True)
 def _lawson_hanson_pixel(Y, col, Mt, G, tol_rel, normM, max_enum, x, passive, w, s, A, idx, y, b):
@@ -494,14 +515,134 @@ def _slow_pixels(Y, acc, bad, i0, n, Mt, G, sat, check_sat, nonneg, tol_rel, nor
         for k in range(K):
             out[k, i0 + i] = x[k]
 
+@njit(cache=True, fastmath={"contract"})
+def _drop_one(acc, flag, n, R, i0, out, status, cand, cnt, s):
+    # Pixels of the block with exactly one negative unconstrained component j: the least-squares
+    # solution without j is the rank-one update x - x_j R[j] (R[j] = H[j] / H[j, j], H = G⁻¹), and
+    # the gradient at j is x_j / H[j, j] < 0, so that set is optimal when the update has no negative
+    # component.  Computed for every pixel at once, vectorised (a pixel's j enters through a select);
+    # the pixels settled this way are written out and their flag cleared.
+    K = acc.shape[0]
+    cn = cnt[:n]
+    cn[:] = 0
+    for k in range(K):
+        a = acc[k, :n]
+        for i in range(n):
+            cn[i] += a[i] < 0.0
+    for k in range(K):
+        cand[k, :n] = acc[k, :n]
+    sj = s[:n]
+    for j in range(K):
+        a = acc[j, :n]
+        for i in range(n):
+            sj[i] = a[i] if (a[i] < 0.0) & (cn[i] == 1) else 0.0
+        for k in range(K):
+            r = R[j, k]
+            c = cand[k, :n]
+            for i in range(n):
+                c[i] -= sj[i] * r
+    for i in range(n):
+        cn[i] = (cn[i] == 1) & (flag[i] == 1)
+    for k in range(K):
+        c = cand[k, :n]
+        for i in range(n):
+            cn[i] &= c[i] >= 0.0
+    for k in range(K):
+        c = cand[k, :n]
+        o = out[k, i0 : i0 + n]
+        for i in range(n):
+            o[i] = c[i] if cn[i] else o[i]
+    for i in range(n):
+        status[i0 + i] = cn[i]
+        flag[i] = flag[i] & ~cn[i]
+
+
+@njit(cache=True, fastmath={"contract"})
+def _drop_two(acc, cand, flag, n, H, i0, tol_scale, out, status, zm, ok, scale, al, bl, seen, distinct):
+    # Pixels still pending after _drop_one whose negative components, in x or in the rank-one update,
+    # form a pair Z = {a, b}: the least-squares solution off Z is x - H[:, Z] α with α = (H_ZZ)⁻¹ x_Z,
+    # and α is the gradient on Z, so that set is optimal when α <= tol and the solution has no negative
+    # component.  One vectorised pass over the block per pair present (at most _DROP_PAIRS of them).
+    K = acc.shape[0]
+    z = zm[:n]
+    sc = scale[:n]
+    z[:] = 0
+    sc[:] = 0.0
+    for k in range(K):
+        a = acc[k, :n]
+        c = cand[k, :n]
+        for i in range(n):
+            z[i] |= ((a[i] < 0.0) | (c[i] < 0.0)) << k
+            sc[i] = max(sc[i], abs(a[i]))
+    nd = 0
+    for i in range(n):
+        zi = z[i] if flag[i] == 1 else 0
+        z[i] = zi
+        rest = zi & (zi - 1)
+        if rest != 0 and (rest & (rest - 1)) == 0 and not seen[zi]:
+            seen[zi] = True
+            distinct[nd] = zi
+            nd += 1
+    for d in range(nd):
+        seen[distinct[d]] = False
+    if nd > _DROP_PAIRS:
+        return
+    o_k = ok[:n]
+    aa = al[:n]
+    bb = bl[:n]
+    for d in range(nd):
+        zz = distinct[d]
+        ia = 0
+        while not (zz >> ia) & 1:
+            ia += 1
+        ib = ia + 1
+        while not (zz >> ib) & 1:
+            ib += 1
+        haa = H[ia, ia]
+        hbb = H[ib, ib]
+        hab = H[ia, ib]
+        det = haa * hbb - hab * hab
+        xa = acc[ia, :n]
+        xb = acc[ib, :n]
+        for i in range(n):
+            u = (hbb * xa[i] - hab * xb[i]) / det
+            v = (haa * xb[i] - hab * xa[i]) / det
+            aa[i] = u
+            bb[i] = v
+            o_k[i] = (z[i] == zz) & (u <= tol_scale * sc[i]) & (v <= tol_scale * sc[i])
+        for k in range(K):
+            if k == ia or k == ib:
+                continue
+            a = acc[k, :n]
+            c = cand[k, :n]
+            h1 = H[k, ia]
+            h2 = H[k, ib]
+            for i in range(n):
+                c[i] = a[i] - aa[i] * h1 - bb[i] * h2
+                o_k[i] &= c[i] >= 0.0
+        for k in range(K):
+            o = out[k, i0 : i0 + n]
+            c = cand[k, :n]
+            if k == ia or k == ib:
+                for i in range(n):
+                    o[i] = 0.0 if o_k[i] else o[i]
+            else:
+                for i in range(n):
+                    o[i] = c[i] if o_k[i] else o[i]
+        for i in range(n):
+            status[i0 + i] |= o_k[i]
+            flag[i] = flag[i] & ~o_k[i]
+            z[i] = 0 if o_k[i] else z[i]
+
+
 @njit(cache=True, nogil=True)
-def _nnls_range(Y, P, Mt, G, T, use_table, sat, check_sat, nonneg, tol_rel, table_tol, max_enum, normM, gnorm,
+def _nnls_range(Y, P, Mt, G, T, R, H, use_table, sat, check_sat, nonneg, tol_rel, table_tol, max_enum, normM, gnorm,
                 out, status, b0, b1):
     # blocks b0..b1-1 of _BLOCK pixels, one thread
     C, N = Y.shape
     K = P.shape[0]
     acc = np.empty((K, _BLOCK))
-    yrow = np.empty(_BLOCK)
+    yrow = np.empty((4, _BLOCK))
     flag = np.empty(_BLOCK, dtype=np.uint8)
     bad = np.empty(_BLOCK, dtype=np.bool_)
     table = nonneg and use_table
@@ -511,6 +652,16 @@ def _nnls_range(Y, P, Mt, G, T, use_table, sat, check_sat, nonneg, tol_rel, tabl
     tols = np.empty(nbatch)
     cols = np.empty(nbatch, dtype=np.int64)
     npend = 0
+    cand = np.empty((K, _BLOCK))
+    cnt = np.empty(_BLOCK, dtype=np.uint8)
+    sbuf = np.empty(_BLOCK)
+    zm = np.empty(_BLOCK, dtype=np.int64)
+    okb = np.empty(_BLOCK, dtype=np.uint8)
+    scale_b = np.empty(_BLOCK)
+    al = np.empty(_BLOCK)
+    bl = np.empty(_BLOCK)
+    seen = np.zeros(1 << K if table else 1, dtype=np.bool_)
+    distinct = np.empty(1 << K if table else 1, dtype=np.int64)
     for bi in range(b0, b1):
         i0 = bi * _BLOCK
         n = min(N, i0 + _BLOCK) - i0
@@ -541,6 +692,8 @@ def _nnls_range(Y, P, Mt, G, T, use_table, sat, check_sat, nonneg, tol_rel, tabl
         if not nonneg:
             nneg = 0
         if nneg and table:
+            _drop_one(acc, flag, n, R, i0, out, status, cand, cnt, sbuf)
+            _drop_two(acc, cand, flag, n, H, i0, table_tol * gnorm, out, status, zm, okb, scale_b, al, bl, seen, distinct)
             for i in range(n):
                 if flag[i] == 1:
                     mask = 0
@@ -645,6 +798,8 @@ def _run(M, Y, out_dtype, sat, nonneg, engine, tol_rel):
         Mt = np.ascontiguousarray(M.T)
         use_table = nonneg and K <= MAX_TABLE_COMPONENTS
         T = _passive_set_table(G) if use_table else np.zeros((1, 1, 1))
+        H = np.linalg.inv(G)
+        R = np.ascontiguousarray(H / np.diag(H)[:, None])  # R[j] = H[j] / H[j, j] (H is symmetric)
         normM = float(np.abs(M).sum(axis=0).max())
         gnorm = float(np.abs(G).sum(axis=1).max())
         P = np.ascontiguousarray(P)
@@ -653,7 +808,7 @@ def _run(M, Y, out_dtype, sat, nonneg, engine, tol_rel):
         nranges = min(nblocks, 4 * nthreads)
 
         def blocks(r):
-            _nnls_range(Y, P, Mt, G, T, use_table, sat, check_sat, nonneg, tol_rel, max(tol_rel, _TABLE_TOL),
+            _nnls_range(Y, P, Mt, G, T, R, H, use_table, sat, check_sat, nonneg, tol_rel, max(tol_rel, _TABLE_TOL),
                         MAX_ENUMERATION_COMPONENTS, normM, gnorm, out, status,
                         r * nblocks // nranges, (r + 1) * nblocks // nranges)
 
