@@ -294,7 +294,10 @@ def unmix_block(Y, params: _Params, dark=None, flat=None):
     if not params.errors:
         return x, None, None, status
     x64 = np.asarray(x, dtype=np.float64)
-    resid = np.sqrt(np.mean((y - M @ x64) ** 2, axis=0))
+    # one temporary, reused in place (the plain expression makes three of (C, N) and took 5x longer)
+    r = M @ x64
+    np.subtract(y, r, out=r)
+    resid = np.sqrt(np.einsum("cn,cn->n", r, r) / C)
     var = _noise_variance(s, flat, params.gain, params.read_noise, params.floor)
     if params.method == "wls":
         se = np.sqrt(np.einsum("nkk->kn", np.linalg.inv(A)))
