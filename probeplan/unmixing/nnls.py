@@ -601,12 +601,12 @@ def _drop_two(acc, cand, flag, n, H, i0, tol_scale, out, status, zm, ok, scale, 
         haa = H[ia, ia]
         hbb = H[ib, ib]
         hab = H[ia, ib]
-        det = haa * hbb - hab * hab
+        rdet = 1.0 / (haa * hbb - hab * hab)
         xa = acc[ia, :n]
         xb = acc[ib, :n]
         for i in range(n):
-            u = (hbb * xa[i] - hab * xb[i]) / det
-            v = (haa * xb[i] - hab * xa[i]) / det
+            u = (hbb * xa[i] - hab * xb[i]) * rdet
+            v = (haa * xb[i] - hab * xa[i]) * rdet
             aa[i] = u
             bb[i] = v
             o_k[i] = (z[i] == zz) & (u <= tol_scale * sc[i]) & (v <= tol_scale * sc[i])
